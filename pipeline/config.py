@@ -1,0 +1,159 @@
+"""Typed run configuration: one TOML file, overridable from the command line.
+
+Every stage receives a ``Config``; nothing reads settings from globals or the
+environment. Unknown keys are refused so that a typo never silently falls back
+to a default.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from pipeline.features import StateSpace
+from pipeline.policies import DEFAULT_ACTIONS, SetbackRule
+
+
+class ConfigError(ValueError):
+    """A configuration file or override that cannot be used."""
+
+
+def _default_candidates() -> tuple[SetbackRule, ...]:
+    return (
+        SetbackRule("setback-1", depth_c=1, lead_steps=0),
+        SetbackRule("setback-2", depth_c=2, lead_steps=0),
+        SetbackRule("setback-2-early", depth_c=2, lead_steps=1),
+    )
+
+
+@dataclass(frozen=True)
+class Config:
+    """All settings of one pipeline run."""
+
+    lake: Path = Path("sample_lake")
+    """Folder holding ``landing/`` (the input files)."""
+    out: Path = Path("out")
+    """Folder for ``warehouse.duckdb`` and ``ledger/``."""
+    seed: int = 20260601
+    """Seed for every random draw (bootstrap, tie-breaking)."""
+    step_hours: int = 1
+    """Length of one decision step, hours."""
+    actions: tuple[int, ...] = DEFAULT_ACTIONS
+    """Allowed setpoint changes per decision, whole °C in the setback direction."""
+    cool_band_c: tuple[float, float] = (22.0, 30.0)
+    """Safety band for cooling setpoints, °C (common practice, from memory)."""
+    heat_band_c: tuple[float, float] = (13.0, 23.0)
+    """Safety band for heating setpoints, °C; 13 °C guards against frozen pipes (common practice)."""
+    min_episode_hours: int = 3
+    """Shortest away episode kept, in fully-away hours."""
+    max_episode_hours: int = 14
+    """Longest away episode kept, in fully-away hours."""
+    recovery_hours: int = 1
+    """Hours after the return hour charged to the episode (pull-back to comfort)."""
+    comfort_penalty_usd_per_degree_hour: float = 0.10
+    """Price put on each °C-hour of setback still in force over the recovery window, USD."""
+    behavior_prior_strength: float = 5.0
+    """Pseudo-counts by which a premise's action counts are shrunk toward its cohort's."""
+    behavior_floor: float = 0.01
+    """Smallest behaviour probability assigned to any allowed action."""
+    target_epsilon: float = 0.05
+    """Mix of the uniform policy into each candidate rule, so weights stay bounded."""
+    bootstrap_replicates: int = 400
+    """Bootstrap resamples of episodes for confidence intervals."""
+    confidence: float = 0.95
+    """Level of confidence intervals and of the lower bound."""
+    cooling_days_per_year: int = 122
+    """Days a year the cooling schedule is in force, for annualising per-episode savings."""
+    state: StateSpace = field(default_factory=StateSpace)
+    """How step features are binned into state keys."""
+    candidates: tuple[SetbackRule, ...] = field(default_factory=_default_candidates)
+    """Candidate setback rules evaluated in every run."""
+    columns: dict[str, dict[str, str]] = field(default_factory=dict)
+    """Per landing folder, canonical column name -> the name used in the files."""
+
+    @property
+    def warehouse_path(self) -> Path:
+        """The DuckDB warehouse file."""
+        return self.out / "warehouse.duckdb"
+
+    @property
+    def ledger_path(self) -> Path:
+        """Root of the Parquet ledger."""
+        return self.out / "ledger"
+
+    def to_json(self) -> str:
+        """The configuration as JSON, recorded in the run table."""
+        return json.dumps(dataclasses.asdict(self), default=str, sort_keys=True)
+
+
+_SCALARS = {f.name for f in dataclasses.fields(Config)} - {"state", "candidates", "columns"}
+
+
+def _coerce(name: str, value: Any) -> Any:
+    kind = {f.name: f.type for f in dataclasses.fields(Config)}[name]
+    if name in ("lake", "out"):
+        return Path(value)
+    if isinstance(value, list):
+        return tuple(value)
+    if kind == "int" and not isinstance(value, int):
+        raise ConfigError(f"{name} must be a whole number, got {value!r}")
+    if kind == "float" and isinstance(value, int | float):
+        return float(value)
+    return value
+
+
+def from_mapping(data: dict[str, Any], base: Config | None = None) -> Config:
+    """Build a Config from a parsed TOML mapping laid over ``base`` (defaults when None)."""
+    base = base or Config()
+    changes: dict[str, Any] = {}
+    for key, value in data.items():
+        if key in _SCALARS:
+            changes[key] = _coerce(key, value)
+        elif key == "state":
+            try:
+                changes["state"] = dataclasses.replace(
+                    base.state, **{k: tuple(v) if isinstance(v, list) else v for k, v in value.items()}
+                )
+            except TypeError as exc:
+                raise ConfigError(f"[state]: {exc}") from exc
+        elif key == "candidate":
+            try:
+                changes["candidates"] = tuple(SetbackRule(**c) for c in value)
+            except TypeError as exc:
+                raise ConfigError(f"[[candidate]]: {exc}") from exc
+        elif key == "columns":
+            changes["columns"] = {folder: dict(m) for folder, m in value.items()}
+        else:
+            raise ConfigError(f"unknown setting {key!r}")
+    return dataclasses.replace(base, **changes)
+
+
+def parse_override(text: str) -> dict[str, Any]:
+    """Parse one ``key=value`` override (TOML value syntax; bare words are strings)."""
+    if "=" not in text:
+        raise ConfigError(f"override {text!r} must look like key=value")
+    key, raw = (part.strip() for part in text.split("=", 1))
+    try:
+        value = tomllib.loads(f"v = {raw}")["v"]
+    except tomllib.TOMLDecodeError:
+        value = raw
+    return {key: value}
+
+
+def load(path: Path | None = None, overrides: dict[str, Any] | None = None) -> Config:
+    """Read the TOML file (if any) and apply command-line overrides on top."""
+    config = Config()
+    if path is not None:
+        try:
+            config = from_mapping(tomllib.loads(Path(path).read_text()), config)
+        except FileNotFoundError as exc:
+            raise ConfigError(f"config file {path} not found") from exc
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError(f"config file {path}: {exc}") from exc
+    if overrides:
+        config = from_mapping(overrides, config)
+    return config

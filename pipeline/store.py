@@ -1,0 +1,96 @@
+"""The one place that owns paths, the DuckDB connection and Parquet writes.
+
+SQL that builds a table lives in ``sql/<table>.sql`` at the project root and is
+loaded by name; values always go in as bound parameters.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import polars as pl
+
+SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
+
+
+class StoreError(RuntimeError):
+    """The warehouse or ledger cannot be read or written as asked."""
+
+
+def sql_text(name: str) -> str:
+    """The text of ``sql/<name>.sql``."""
+    path = SQL_DIR / f"{name}.sql"
+    if not path.exists():
+        raise StoreError(f"no SQL file {path}")
+    return path.read_text()
+
+
+@contextmanager
+def warehouse(path: Path, read_only: bool = False) -> Iterator[duckdb.DuckDBPyConnection]:
+    """Open the warehouse with UTC as the session time zone; closes on exit."""
+    path = Path(path)
+    if read_only and not path.exists():
+        raise StoreError(f"warehouse {path} does not exist: run the ingest stage first")
+    path.parent.mkdir(parents=True, exist_ok=True)
+    con = duckdb.connect(str(path), read_only=read_only)
+    try:
+        con.execute("set TimeZone = 'UTC'")
+        yield con
+    finally:
+        con.close()
+
+
+def run_sql(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None) -> None:
+    """Execute ``sql/<name>.sql`` (may hold several statements) with named parameters."""
+    statements = [s for s in sql_text(name).split(";\n") if _has_code(s)]
+    for statement in statements:
+        con.execute(statement, params_for(statement, params or {}))
+
+
+def build_table(
+    con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None
+) -> int:
+    """Replace table ``name`` with the result of ``sql/<name>.sql``; return its row count."""
+    query = sql_text(name)
+    con.execute(f"create or replace table {name} as {query}", params_for(query, params or {}))
+    return con.execute(f"select count(*) from {name}").fetchone()[0]
+
+
+def query(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None) -> pl.DataFrame:
+    """Result of ``sql/<name>.sql`` as a polars frame."""
+    text = sql_text(name)
+    return con.execute(text, params_for(text, params or {})).pl()
+
+
+def _has_code(statement: str) -> bool:
+    return any(line.strip() and not line.strip().startswith("--") for line in statement.splitlines())
+
+
+def params_for(statement: str, params: dict[str, Any]) -> dict[str, Any]:
+    # DuckDB refuses named parameters a statement does not use.
+    return {k: v for k, v in params.items() if f"${k}" in statement}
+
+
+def write_ledger(ledger: Path, table: str, frame: pl.DataFrame, run_id: str, run_date: dt.date) -> Path:
+    """Write one ledger table of one run to ``<ledger>/<table>/run_date=YYYY-MM-DD/<run_id>.parquet``."""
+    folder = Path(ledger) / table / f"run_date={run_date.isoformat()}"
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / f"{run_id}.parquet"
+    tmp = path.with_suffix(".parquet.tmp")
+    frame.write_parquet(tmp)
+    tmp.replace(path)
+    return path
+
+
+def connect_ledger(ledger: Path) -> duckdb.DuckDBPyConnection:
+    """An in-memory DuckDB connection with the analyst views of ``sql/views.sql`` over the ledger."""
+    con = duckdb.connect()
+    con.execute("set TimeZone = 'UTC'")
+    con.execute("set variable ledger_root = $root", {"root": str(Path(ledger).resolve())})
+    run_sql(con, "views")
+    return con

@@ -1,0 +1,88 @@
+-- Warehouse schema: typed tables for each landing folder plus the bookkeeping that
+-- proves nothing was lost (quarantine, ingest_log). Created once, kept across runs,
+-- so that ingest can be incremental.
+create table if not exists premise (
+    premise_id varchar primary key,
+    timezone varchar not null,
+    weather_station_id varchar not null,
+    rate_plan_id varchar not null,
+    comfort_cool_c double not null,
+    comfort_heat_c double not null,
+    cohort varchar not null,
+    floor_area_m2 double,
+    source_file varchar not null
+);
+create table if not exists meter_read (
+    premise_id varchar not null,
+    interval_start_utc timestamptz not null,
+    interval_minutes integer not null,
+    kwh double not null,
+    quality varchar not null,
+    source_file varchar not null,
+    primary key (premise_id, interval_start_utc)
+);
+create table if not exists weather_obs (
+    station_id varchar not null,
+    observed_at_utc timestamptz not null,
+    dry_bulb_c double not null,
+    source_file varchar not null,
+    primary key (station_id, observed_at_utc)
+);
+create table if not exists thermostat_event (
+    premise_id varchar not null,
+    changed_at_utc timestamptz not null,
+    mode varchar not null,
+    cool_setpoint_c double,
+    heat_setpoint_c double,
+    occupied boolean,
+    indoor_c double,
+    source_row bigint not null,
+    source_file varchar not null
+);
+create table if not exists tariff_rate (
+    rate_plan_id varchar not null,
+    month_from integer not null,
+    month_to integer not null,
+    day_type varchar not null,
+    start_hour integer not null,
+    end_hour integer not null,
+    price_per_kwh double not null,
+    source_file varchar not null
+);
+create table if not exists quarantine (
+    source_file varchar not null,
+    row_number bigint not null,
+    reason varchar not null,
+    raw varchar
+);
+create table if not exists ingest_log (
+    source_file varchar primary key,
+    folder varchar not null,
+    content_hash varchar not null,
+    rows_read bigint not null,
+    rows_loaded bigint not null,
+    rows_quarantined bigint not null,
+    rows_duplicate bigint not null,
+    status varchar not null,
+    message varchar,
+    seconds double not null,
+    ingested_at timestamptz not null
+);
+-- An instant in UTC from landing text: with an offset (or Z) it is absolute; without,
+-- it is local wall-clock time in the premise's zone.
+create or replace macro utc_instant(txt, tz) as
+    case
+        when regexp_matches(trim(txt), '(Z|[+-][0-9]{2}(:?[0-9]{2})?)$') then try_cast(trim(txt) as timestamptz)
+        else timezone(tz, try_cast(trim(txt) as timestamp))
+    end;
+-- Wall-clock text without an offset that names no instant (spring-forward gap).
+create or replace macro local_time_missing(txt, tz) as
+    not regexp_matches(trim(txt), '(Z|[+-][0-9]{2}(:?[0-9]{2})?)$')
+    and timezone(tz, timezone(tz, try_cast(trim(txt) as timestamp))) <> try_cast(trim(txt) as timestamp);
+-- Wall-clock text without an offset that names two instants (fall-back hour).
+create or replace macro local_time_ambiguous(txt, tz) as
+    not regexp_matches(trim(txt), '(Z|[+-][0-9]{2}(:?[0-9]{2})?)$')
+    and (
+        timezone(tz, timezone(tz, try_cast(trim(txt) as timestamp)) - interval 1 hour) = try_cast(trim(txt) as timestamp)
+        or timezone(tz, timezone(tz, try_cast(trim(txt) as timestamp)) + interval 1 hour) = try_cast(trim(txt) as timestamp)
+    )
