@@ -138,9 +138,7 @@ def ingest_file(con: duckdb.DuckDBPyConnection, folder: Folder, path: Path, conf
     started = time.perf_counter()
     name = _relative(path, config)
     content_hash = _content_hash(path)
-    seen = con.execute(
-        "select content_hash from ingest_log where source_file = $f", {"f": name}
-    ).fetchone()
+    seen = con.execute("select content_hash from ingest_log where source_file = $f", {"f": name}).fetchone()
     if seen is not None and seen[0] == content_hash:
         return FileResult(name, folder.name, "unchanged", 0, 0, 0, 0)
 

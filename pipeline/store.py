@@ -52,9 +52,7 @@ def run_sql(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | 
         con.execute(statement, params_for(statement, params or {}))
 
 
-def build_table(
-    con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None
-) -> int:
+def build_table(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None) -> int:
     """Replace table ``name`` with the result of ``sql/<name>.sql``; return its row count."""
     query = sql_text(name)
     con.execute(f"create or replace table {name} as {query}", params_for(query, params or {}))

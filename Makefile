@@ -1,0 +1,30 @@
+# Two commands do all set-up on a fresh machine: `make demo` and `make test`.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+OUT ?= out
+LAKE ?= sample_lake
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test lint bench clean
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+
+$(STAMP): pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/thermal-ledger run --lake $(LAKE) --out $(OUT)
+
+test: $(STAMP)
+	$(BIN)/python -m pytest
+
+lint: $(STAMP)
+	$(BIN)/ruff check pipeline flows tests
+	$(BIN)/ruff format --check pipeline flows tests
+
+clean:
+	rm -rf $(OUT) .pytest_cache

@@ -1,0 +1,1 @@
+"""Prefect flows: orchestration only; every task is a thin call into ``pipeline``."""

@@ -1,0 +1,152 @@
+"""The ``thermal-ledger`` command: one subcommand per stage, plus ``run`` for all of them.
+
+Exit code 0 on success; 1 when any landing file was refused (the rest still
+loads); 2 for unusable settings or a stage that cannot run.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from pipeline import config as config_module
+from pipeline import stages
+from pipeline.config import ConfigError
+from pipeline.ledger import Run
+
+EXIT_OK, EXIT_REFUSED, EXIT_USAGE = 0, 1, 2
+
+
+def _common(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--lake", type=Path, help="folder holding landing/ (default: sample_lake)")
+    parser.add_argument("--out", type=Path, help="folder for warehouse.duckdb and ledger/ (default: out)")
+    parser.add_argument("--config", type=Path, help="TOML file of settings (see DEVELOPERS.md)")
+    parser.add_argument("--seed", type=int, help="seed for every random draw")
+    parser.add_argument(
+        "--set",
+        action="append",
+        default=[],
+        metavar="KEY=VALUE",
+        help="override one setting, TOML syntax (repeatable), e.g. --set recovery_hours=2",
+    )
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser with every subcommand."""
+    parser = argparse.ArgumentParser(
+        prog="thermal-ledger",
+        description="Learn and audit thermostat setpoint policies from utility interval data.",
+    )
+    sub = parser.add_subparsers(dest="stage", required=True, metavar="STAGE")
+    helps = {
+        "ingest": "load landing files into the warehouse; rows that fail checks go to quarantine",
+        "episodes": "build the hourly grid, away episodes and decision steps",
+        "learn": "estimate the residents' behaviour policy from the logged steps",
+        "evaluate": "estimate each candidate policy's value and savings off-policy",
+        "run": "all stages in order as one Prefect flow, then print a summary",
+    }
+    for name, text in helps.items():
+        p = sub.add_parser(name, help=text, description=text)
+        _common(p)
+        if name == "run":
+            p.add_argument(
+                "--no-prefect", action="store_true", help="run the stages directly, without a Prefect flow"
+            )
+    return parser
+
+
+def overrides_from(args: argparse.Namespace) -> dict[str, Any]:
+    """Settings given on the command line: --set items, then the explicit flags."""
+    overrides: dict[str, Any] = {}
+    for item in args.set:
+        overrides.update(config_module.parse_override(item))
+    for flag in ("lake", "out", "seed"):
+        value = getattr(args, flag, None)
+        if value is not None:
+            overrides[flag] = str(value) if isinstance(value, Path) else value
+    return overrides
+
+
+def _table(frame: pl.DataFrame) -> str:
+    with pl.Config(
+        tbl_rows=60, tbl_cols=20, tbl_width_chars=160, tbl_hide_dataframe_shape=True, fmt_str_lengths=40
+    ):
+        return str(frame)
+
+
+def print_ingest(summary: stages.IngestSummary) -> None:
+    print(_table(summary.files.drop("message")))
+    for row in summary.files.filter(pl.col("message") != "").iter_rows(named=True):
+        print(f"refused: {row['message']}")
+
+
+def print_summary(summary: stages.RunSummary) -> None:
+    """The short end-of-run table: premises, episodes, policies, savings with intervals."""
+    counts = summary.episodes
+    savings = summary.evaluation.savings
+    premises = savings.filter(pl.col("scope") == "premise")["key"].n_unique()
+    print(f"\nrun {summary.run_id}")
+    print(
+        f"premises evaluated: {premises}   episodes used: {counts.episodes_used} of {counts.episodes}"
+        f"   decision steps: {counts.steps}"
+    )
+    if counts.excluded:
+        print("episodes excluded: " + ", ".join(f"{k} {v}" for k, v in sorted(counts.excluded.items())))
+    portfolio = savings.filter(pl.col("scope") == "portfolio").select(
+        "policy_name",
+        "estimator",
+        "n_episodes",
+        pl.col("savings_usd_per_episode").round(3),
+        pl.col("ci_low").round(3),
+        pl.col("ci_high").round(3),
+        pl.col("lower_bound_usd").round(3),
+        pl.col("ess").round(1),
+        "support_ok",
+        pl.col("savings_usd_annual").round(2),
+    )
+    print("portfolio savings per episode, USD (95 % interval, lower bound), and per premise per year:")
+    print(_table(portfolio))
+    print("Estimates only: local codes, program rules and licensed practice govern what is sent to a device.")
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of ``thermal-ledger``."""
+    args = build_parser().parse_args(argv)
+    try:
+        overrides = overrides_from(args)
+        config = config_module.load(args.config, overrides)
+        if args.stage == "ingest":
+            summary = stages.ingest(config)
+            print_ingest(summary)
+            return EXIT_REFUSED if summary.refused else EXIT_OK
+        if args.stage == "run":
+            if args.no_prefect:
+                result = stages.run_all(config)
+            else:
+                from flows.thermal_run import thermal_ledger_run
+
+                result = thermal_ledger_run(str(args.config) if args.config else None, overrides)
+            print_ingest(result.ingest)
+            print_summary(result)
+            return EXIT_REFUSED if result.ingest.refused else EXIT_OK
+        run = Run(config)
+        if args.stage == "episodes":
+            counts = stages.episodes(config, run)
+            print(counts)
+        elif args.stage == "learn":
+            print(f"behaviour policy rows: {stages.learn(config, run)}")
+        elif args.stage == "evaluate":
+            print(_table(stages.evaluate(config, run).savings))
+        stages.finish(config, run)
+        return EXIT_OK
+    except (ConfigError, stages.StageError) as exc:
+        print(f"thermal-ledger: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,112 @@
+"""The decision process built from the warehouse: hourly grid, away episodes, decision steps.
+
+The heavy lifting is SQL (``sql/hourly.sql``, ``sql/episode.sql``, ``sql/step.sql``);
+this module binds the configuration into it and packs each step's features into a
+state key with the shared ``StateSpace``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import duckdb
+import numpy as np
+import polars as pl
+
+from pipeline import store
+from pipeline.config import Config
+
+
+@dataclass(frozen=True)
+class EpisodeCounts:
+    """Row counts of one episode build."""
+
+    hours: int
+    episodes: int
+    episodes_used: int
+    steps: int
+    clipped_actions: int
+    excluded: dict[str, int]
+
+
+def _params(config: Config) -> dict[str, object]:
+    return {
+        "recovery_hours": config.recovery_hours,
+        "min_hours": config.min_episode_hours,
+        "max_hours": config.max_episode_hours,
+        "step_hours": config.step_hours,
+        "action_min": min(config.actions),
+        "action_max": max(config.actions),
+        "penalty_usd": config.comfort_penalty_usd_per_degree_hour,
+    }
+
+
+def add_state_keys(steps: pl.DataFrame, config: Config) -> pl.DataFrame:
+    """Add ``degrees_c`` and ``state_key`` columns computed from the step features."""
+    space = config.state
+    heating = (steps["mode"] == "heat").to_numpy()
+    degrees = space.degrees(steps["outdoor_c"].to_numpy(), heating)
+    keys = space.encode(
+        steps["local_hour"].to_numpy(),
+        degrees,
+        steps["price_tier"].to_numpy(),
+        steps["offset_before_c"].to_numpy(),
+        steps["steps_left"].to_numpy(),
+    )
+    return steps.with_columns(pl.Series("degrees_c", degrees), pl.Series("state_key", keys))
+
+
+def build(con: duckdb.DuckDBPyConnection, config: Config) -> EpisodeCounts:
+    """Rebuild ``hourly``, ``episode`` and ``step`` in the warehouse from the typed tables."""
+    params = _params(config)
+    hours = store.build_table(con, "hourly", params)
+    episodes = store.build_table(con, "episode", params)
+    raw_steps = store.query(con, "step", params).sort("episode_id", "t")
+    steps = add_state_keys(raw_steps, config)
+    con.register("step_frame", steps.to_arrow())
+    con.execute("create or replace table step as select * from step_frame")
+    con.unregister("step_frame")
+    excluded = dict(
+        con.execute(
+            "select excluded_reason, count(*) from episode where excluded_reason is not null group by all"
+        ).fetchall()
+    )
+    used = con.execute("select count(*) from episode where excluded_reason is null").fetchone()[0]
+    return EpisodeCounts(
+        hours=hours,
+        episodes=episodes,
+        episodes_used=used,
+        steps=steps.height,
+        clipped_actions=int(steps["action_clipped"].sum() or 0),
+        excluded=excluded,
+    )
+
+
+def load_steps(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
+    """All decision steps with their cohort, sorted by (episode_id, t)."""
+    return con.execute(
+        "select s.*, p.cohort from step s join premise p using (premise_id) order by episode_id, t"
+    ).pl()
+
+
+def episode_summary(steps: pl.DataFrame) -> pl.DataFrame:
+    """One row per episode: start, steps, return, kWh and comfort penalty (ledger contract)."""
+    return (
+        steps.group_by("episode_id", maintain_order=True)
+        .agg(
+            pl.col("premise_id").first(),
+            pl.col("step_start_utc").min().alias("start_utc"),
+            pl.len().alias("n_steps"),
+            pl.col("reward").sum().alias("return_usd"),
+            (pl.col("kwh").sum() + pl.col("recovery_kwh").sum()).alias("kwh"),
+            pl.col("comfort_penalty_usd").sum(),
+        )
+        .select(
+            "premise_id", "episode_id", "start_utc", "n_steps", "return_usd", "kwh", "comfort_penalty_usd"
+        )
+    )
+
+
+def action_values(steps: pl.DataFrame) -> np.ndarray:
+    """The logged actions as an integer array."""
+    return steps["action"].to_numpy().astype(np.int64)

@@ -1,0 +1,118 @@
+"""The pipeline's stages as plain functions of a Config (and the Run they belong to).
+
+Each stage reads what the previous one left in the warehouse, so a stage can be
+run alone from the command line, as a Prefect task, or from a test.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import polars as pl
+
+from pipeline import evaluate as evaluation
+from pipeline import ingest as ingestion
+from pipeline import store
+from pipeline.behavior import BehaviorPolicy
+from pipeline.config import Config
+from pipeline.episodes import EpisodeCounts, build, episode_summary, load_steps
+from pipeline.ledger import Run
+
+__all__ = ["EpisodeCounts", "EvaluationSummary", "IngestSummary", "RunSummary"]
+
+
+class StageError(RuntimeError):
+    """A stage cannot run because an earlier one has not produced its input."""
+
+
+@dataclass(frozen=True)
+class IngestSummary:
+    """Per-file ingest results and whether any file was refused."""
+
+    files: pl.DataFrame
+    refused: int
+
+
+@dataclass(frozen=True)
+class EvaluationSummary:
+    """The savings rows of one evaluation."""
+
+    savings: pl.DataFrame
+
+
+@dataclass(frozen=True)
+class RunSummary:
+    """What one whole run did."""
+
+    run_id: str
+    ingest: IngestSummary
+    episodes: EpisodeCounts
+    evaluation: EvaluationSummary
+
+
+def ingest(config: Config) -> IngestSummary:
+    """Load the landing files into the warehouse."""
+    results = ingestion.results_frame(ingestion.ingest(config))
+    return IngestSummary(results, int((results["status"] == "refused").sum()))
+
+
+def episodes(config: Config, run: Run) -> EpisodeCounts:
+    """Rebuild the hourly grid, episodes and steps; write ``episode_summary`` to the ledger."""
+    with store.warehouse(config.warehouse_path) as con:
+        counts = build(con, config)
+        steps = load_steps(con)
+    run.row_counts.update(hourly=counts.hours, episode=counts.episodes, step=counts.steps)
+    run.write("episode_summary", episode_summary(steps))
+    return counts
+
+
+def _steps(config: Config) -> pl.DataFrame:
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        steps = load_steps(con)
+    if steps.is_empty():
+        raise StageError("no usable decision steps: check the episode stage's exclusions")
+    return steps
+
+
+def learn(config: Config, run: Run) -> int:
+    """Estimate the behaviour policy; keep it in the warehouse and write it to the ledger."""
+    steps = _steps(config)
+    model = BehaviorPolicy(config.behavior_prior_strength, config.behavior_floor, config.actions).fit(steps)
+    table = model.table().with_columns(pl.col("count").cast(pl.Int64))
+    with store.warehouse(config.warehouse_path) as con:
+        con.register("behavior_frame", table.to_arrow())
+        con.execute("create or replace table behavior_policy as select * from behavior_frame")
+        con.unregister("behavior_frame")
+    run.write("behavior_policy", table)
+    return table.height
+
+
+def evaluate(config: Config, run: Run) -> EvaluationSummary:
+    """Evaluate the behaviour policy and every candidate; write savings, policy and diagnostics."""
+    steps = _steps(config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        behavior = BehaviorPolicy.from_table(
+            con.execute("select * from behavior_policy").pl(), config.actions
+        )
+    result = evaluation.evaluate_candidates(steps, behavior, config)
+    run.write("savings", result.savings)
+    run.write("policy", result.policy)
+    run.write("diagnostics", result.diagnostics)
+    return EvaluationSummary(result.savings)
+
+
+def finish(config: Config, run: Run) -> str:
+    """Write the run record; return the path of its file."""
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        return str(run.finish(con))
+
+
+def run_all(config: Config) -> RunSummary:
+    """Every stage in order, without Prefect."""
+    run = Run(config)
+    ingested = ingest(config)
+    counts = episodes(config, run)
+    learn(config, run)
+    evaluated = evaluate(config, run)
+    finish(config, run)
+    return RunSummary(run.run_id, ingested, counts, evaluated)
