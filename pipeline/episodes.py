@@ -64,14 +64,15 @@ def build(con: duckdb.DuckDBPyConnection, config: Config) -> EpisodeCounts:
     raw_steps = store.query(con, "step", params).sort("episode_id", "t")
     steps = add_state_keys(raw_steps, config)
     con.register("step_frame", steps.to_arrow())
-    con.execute("create or replace table step as select * from step_frame")
+    store.execute(con, "create or replace table step as select * from step_frame")
     con.unregister("step_frame")
     excluded = dict(
-        con.execute(
-            "select excluded_reason, count(*) from episode where excluded_reason is not null group by all"
-        ).fetchall()
+        store.execute(
+            con,
+            "select excluded_reason, count(*) from episode where excluded_reason is not null group by all",
+        )
     )
-    used = con.execute("select count(*) from episode where excluded_reason is null").fetchone()[0]
+    used = store.execute(con, "select count(*) from episode where excluded_reason is null")[0][0]
     return EpisodeCounts(
         hours=hours,
         episodes=episodes,
@@ -84,9 +85,9 @@ def build(con: duckdb.DuckDBPyConnection, config: Config) -> EpisodeCounts:
 
 def load_steps(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
     """All decision steps with their cohort, sorted by (episode_id, t)."""
-    return con.execute(
-        "select s.*, p.cohort from step s join premise p using (premise_id) order by episode_id, t"
-    ).pl()
+    return store.frame(
+        con, "select s.*, p.cohort from step s join premise p using (premise_id) order by episode_id, t"
+    )
 
 
 def episode_summary(steps: pl.DataFrame) -> pl.DataFrame:

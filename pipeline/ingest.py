@@ -138,8 +138,8 @@ def ingest_file(con: duckdb.DuckDBPyConnection, folder: Folder, path: Path, conf
     started = time.perf_counter()
     name = _relative(path, config)
     content_hash = _content_hash(path)
-    seen = con.execute("select content_hash from ingest_log where source_file = $f", {"f": name}).fetchone()
-    if seen is not None and seen[0] == content_hash:
+    seen = con.execute("select content_hash from ingest_log where source_file = $f", {"f": name}).fetchall()
+    if seen and seen[0][0] == content_hash:
         return FileResult(name, folder.name, "unchanged", 0, 0, 0, 0)
 
     try:
@@ -151,16 +151,17 @@ def ingest_file(con: duckdb.DuckDBPyConnection, folder: Folder, path: Path, conf
         present = None
         unreadable = f"{name}: file cannot be read: {exc}".splitlines()[0]
 
-    con.execute("begin transaction")
+    store.execute(con, "begin transaction")
     try:
-        con.execute(f"delete from {folder.table} where source_file = $f", {"f": name})
-        con.execute("delete from quarantine where source_file = $f", {"f": name})
-        con.execute("delete from ingest_log where source_file = $f", {"f": name})
+        store.execute(con, f"delete from {folder.table} where source_file = $f", {"f": name})
+        store.execute(con, "delete from quarantine where source_file = $f", {"f": name})
+        store.execute(con, "delete from ingest_log where source_file = $f", {"f": name})
         if present is None:
             result = _refuse_unreadable(con, folder, path, name, unreadable)
         else:
             result = _load(con, folder, path, name, present, config)
-        con.execute(
+        store.execute(
+            con,
             "insert into ingest_log values ($f, $folder, $h, $read, $loaded, $quar, $dup, $status, $msg,"
             " $secs, now())",
             {
@@ -176,9 +177,9 @@ def ingest_file(con: duckdb.DuckDBPyConnection, folder: Folder, path: Path, conf
                 "secs": time.perf_counter() - started,
             },
         )
-        con.execute("commit")
+        store.execute(con, "commit")
     except Exception:
-        con.execute("rollback")
+        store.execute(con, "rollback")
         raise
     return result
 
@@ -210,7 +211,8 @@ def _load(
         f'cast(t."{src}" as varchar) as "{canon}"' if src else f'cast(null as varchar) as "{canon}"'
         for canon, src in selected.items()
     )
-    con.execute(
+    store.execute(
+        con,
         f"create or replace temp table landing as select row_number() over () as source_row,"
         f" to_json(t)::varchar as raw, {columns} from {_reader(path)} t",
         {"path": str(path)},
@@ -225,16 +227,18 @@ def _load(
         "max_kw": MAX_PREMISE_KW,
     }
     check = store.sql_text(folder.table)
-    con.execute(f"create or replace temp table checked as {check}", store.params_for(check, params))
+    store.execute(con, f"create or replace temp table checked as {check}", store.params_for(check, params))
 
     target_columns = [r[1] for r in con.execute(f"pragma table_info('{folder.table}')").fetchall()]
     value_columns = ", ".join(c for c in target_columns if c != "source_file")
-    con.execute(
+    store.execute(
+        con,
         f"insert into {folder.table} ({value_columns}, source_file)"
         f" select {value_columns}, $f from checked where reason is null order by source_row",
         {"f": name},
     )
-    con.execute(
+    store.execute(
+        con,
         "insert into quarantine select $f, source_row, reason, raw from checked"
         " where reason is not null and reason <> 'exact_duplicate'",
         {"f": name},
@@ -242,7 +246,7 @@ def _load(
     read, loaded, dup = con.execute(
         "select count(*), count(*) filter (reason is null), count(*) filter (reason = 'exact_duplicate')"
         " from checked"
-    ).fetchone()
+    ).fetchall()[0]
     quarantined = read - loaded - dup
     status = "loaded" if quarantined == 0 else "loaded_with_quarantine"
     return FileResult(name, folder.name, status, read, loaded, quarantined, dup)
@@ -252,12 +256,13 @@ def _refuse_all_rows(
     con: duckdb.DuckDBPyConnection, folder: Folder, path: Path, name: str, message: str
 ) -> FileResult:
     # The rows are kept in quarantine so the refusal loses nothing.
-    con.execute(
+    store.execute(
+        con,
         f"insert into quarantine select $f, row_number() over (), 'missing_column', to_json(t)::varchar"
         f" from {_reader(path)} t",
         {"f": name, "path": str(path)},
     )
-    read = con.execute("select count(*) from quarantine where source_file = $f", {"f": name}).fetchone()[0]
+    read = con.execute("select count(*) from quarantine where source_file = $f", {"f": name}).fetchall()[0][0]
     return FileResult(name, folder.name, "refused", read, 0, read, 0, message)
 
 
@@ -265,13 +270,14 @@ def _refuse_unreadable(
     con: duckdb.DuckDBPyConnection, folder: Folder, path: Path, name: str, message: str
 ) -> FileResult:
     # An unreadable file is kept whole, line by line, as raw text in quarantine.
-    con.execute(
+    store.execute(
+        con,
         "insert into quarantine select $f, row_number() over (), 'unreadable_file', line"
         " from (select unnest(string_split(content, chr(10))) as line from read_text($path))"
         " where trim(line) <> ''",
         {"f": name, "path": str(path)},
     )
-    read = con.execute("select count(*) from quarantine where source_file = $f", {"f": name}).fetchone()[0]
+    read = con.execute("select count(*) from quarantine where source_file = $f", {"f": name}).fetchall()[0][0]
     return FileResult(name, folder.name, "refused", read, 0, read, 0, message)
 
 

@@ -48,7 +48,7 @@ class Run:
         """Write the ``run`` table: configuration, code version, data watermark and row counts."""
         watermark = None
         if con is not None:
-            watermark = con.execute("select max(interval_start_utc) from meter_read").fetchone()[0]
+            watermark = con.execute("select max(interval_start_utc) from meter_read").fetchall()[0][0]
         record = pl.DataFrame(
             {
                 "started_at": [self.started_at],

@@ -81,7 +81,7 @@ def learn(config: Config, run: Run) -> int:
     table = model.table().with_columns(pl.col("count").cast(pl.Int64))
     with store.warehouse(config.warehouse_path) as con:
         con.register("behavior_frame", table.to_arrow())
-        con.execute("create or replace table behavior_policy as select * from behavior_frame")
+        store.frame(con, "create or replace table behavior_policy as select * from behavior_frame")
         con.unregister("behavior_frame")
     run.write("behavior_policy", table)
     return table.height
@@ -92,7 +92,7 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     steps = _steps(config)
     with store.warehouse(config.warehouse_path, read_only=True) as con:
         behavior = BehaviorPolicy.from_table(
-            con.execute("select * from behavior_policy").pl(), config.actions
+            store.frame(con, "select * from behavior_policy"), config.actions
         )
     result = evaluation.evaluate_candidates(steps, behavior, config)
     run.write("savings", result.savings)

@@ -39,30 +39,39 @@ def warehouse(path: Path, read_only: bool = False) -> Iterator[duckdb.DuckDBPyCo
     path.parent.mkdir(parents=True, exist_ok=True)
     con = duckdb.connect(str(path), read_only=read_only)
     try:
-        con.execute("set TimeZone = 'UTC'")
+        execute(con, "set TimeZone = 'UTC'")
         yield con
     finally:
         con.close()
+
+
+def execute(con: duckdb.DuckDBPyConnection, text: str, params: dict[str, Any] | None = None) -> list[tuple]:
+    """Run one statement to completion and return its rows (DuckDB refuses new work while a result is open)."""
+    return con.execute(text, params or {}).fetchall()
 
 
 def run_sql(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None) -> None:
     """Execute ``sql/<name>.sql`` (may hold several statements) with named parameters."""
     statements = [s for s in sql_text(name).split(";\n") if _has_code(s)]
     for statement in statements:
-        con.execute(statement, params_for(statement, params or {}))
+        execute(con, statement, params_for(statement, params or {}))
 
 
 def build_table(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None) -> int:
     """Replace table ``name`` with the result of ``sql/<name>.sql``; return its row count."""
     query = sql_text(name)
-    con.execute(f"create or replace table {name} as {query}", params_for(query, params or {}))
-    return con.execute(f"select count(*) from {name}").fetchone()[0]
+    execute(con, f"create or replace table {name} as {query}", params_for(query, params or {}))
+    return con.execute(f"select count(*) from {name}").fetchall()[0][0]
 
 
 def query(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None) -> pl.DataFrame:
     """Result of ``sql/<name>.sql`` as a polars frame."""
-    text = sql_text(name)
-    return con.execute(text, params_for(text, params or {})).pl()
+    return frame(con, sql_text(name), params)
+
+
+def frame(con: duckdb.DuckDBPyConnection, text: str, params: dict[str, Any] | None = None) -> pl.DataFrame:
+    """Result of a SQL query as a polars frame."""
+    return con.sql(text, params=params_for(text, params or {}) or None).pl()
 
 
 def _has_code(statement: str) -> bool:
@@ -88,7 +97,7 @@ def write_ledger(ledger: Path, table: str, frame: pl.DataFrame, run_id: str, run
 def connect_ledger(ledger: Path) -> duckdb.DuckDBPyConnection:
     """An in-memory DuckDB connection with the analyst views of ``sql/views.sql`` over the ledger."""
     con = duckdb.connect()
-    con.execute("set TimeZone = 'UTC'")
-    con.execute("set variable ledger_root = $root", {"root": str(Path(ledger).resolve())})
+    execute(con, "set TimeZone = 'UTC'")
+    execute(con, "set variable ledger_root = $root", {"root": str(Path(ledger).resolve())})
     run_sql(con, "views")
     return con

@@ -41,7 +41,7 @@ windows as (
         count(h.hour_utc) filter (h.mode_changed) as mode_change_hours,
         count(distinct h.mode_end) as modes,
         any_value(h.mode_end) as mode,
-        bool_or(h.hour_index = r.first_index and h.cool_before is null and h.heat_before is null) as no_setting
+        bool_or(h.hour_utc = r.start_utc and h.cool_before is null and h.heat_before is null) as no_setting
     from runs r
     left join hours h
         on h.premise_id = r.premise_id

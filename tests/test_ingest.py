@@ -22,7 +22,9 @@ PREMISES = """
 
 
 def _ingest(tmp_path, files):
-    config = lake_config(write_landing(tmp_path, {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES, **files}))
+    config = lake_config(
+        write_landing(tmp_path, {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES, **files})
+    )
     results = ingest.results_frame(ingest.ingest(config))
     con = duckdb.connect(str(config.warehouse_path), read_only=True)
     return config, results, con
@@ -100,10 +102,10 @@ def test_warehouse_keys_are_unique_and_not_null(tmp_path):
     ):
         total, distinct, nulls = con.execute(
             f"select count(*), count(distinct ({key})), count(*) filter (({key}) is null) from {table}"
-        ).fetchone()
+        ).fetchall()[0]
         assert total == distinct and nulls == 0, table
     # Wh are converted to kWh and °F to °C (95 °F = 35 °C); 212 °F is out of physical range.
-    assert con.execute("select sum(kwh) from meter_read").fetchone()[0] == pytest.approx(2.7)
+    assert con.execute("select sum(kwh) from meter_read").fetchall()[0][0] == pytest.approx(2.7)
     assert con.execute("select dry_bulb_c from weather_obs").fetchall() == [(pytest.approx(35.0),)]
     assert _reasons(con, "landing/weather/w.csv") == {2: "temperature_out_of_range"}
 
@@ -149,5 +151,5 @@ def test_reingesting_unchanged_files_changes_nothing_and_changed_file_replaces_r
     ingest.ingest(config)
     with store.warehouse(config.warehouse_path, read_only=True) as con:
         after = con.execute("select kwh from meter_read").fetchall()
-        logged = con.execute("select count(*) from ingest_log").fetchone()[0]
+        logged = con.execute("select count(*) from ingest_log").fetchall()[0][0]
     assert len(before) == 1 and after == [(2.0,)] and logged == 3
