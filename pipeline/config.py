@@ -66,6 +66,8 @@ class Config:
     """Bootstrap resamples of episodes for confidence intervals."""
     confidence: float = 0.95
     """Level of confidence intervals and of the lower bound."""
+    min_ess: float = 10.0
+    """Smallest Kish effective sample size at which an estimate counts as supported."""
     cooling_days_per_year: int = 122
     """Days a year the cooling schedule is in force, for annualising per-episode savings."""
     state: StateSpace = field(default_factory=StateSpace)

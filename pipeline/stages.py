@@ -94,7 +94,12 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
         behavior = BehaviorPolicy.from_table(
             store.frame(con, "select * from behavior_policy"), config.actions
         )
-    result = evaluation.evaluate_candidates(steps, behavior, config)
+        days = store.frame(
+            con,
+            "select premise_id, p.cohort, count(distinct h.local_date) as days_observed"
+            " from hourly h join premise p using (premise_id) group by all",
+        )
+    result = evaluation.evaluate_candidates(steps, behavior, days, config)
     run.write("savings", result.savings)
     run.write("policy", result.policy)
     run.write("diagnostics", result.diagnostics)
