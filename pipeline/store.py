@@ -46,7 +46,7 @@ def warehouse(path: Path, read_only: bool = False) -> Iterator[duckdb.DuckDBPyCo
 
 
 def execute(con: duckdb.DuckDBPyConnection, text: str, params: dict[str, Any] | None = None) -> list[tuple]:
-    """Run one statement to completion and return its rows (DuckDB refuses new work while a result is open)."""
+    """Run one statement to completion and return its rows (DuckDB refuses work while one is open)."""
     return con.execute(text, params or {}).fetchall()
 
 

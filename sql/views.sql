@@ -1,0 +1,42 @@
+-- Analyst views over the Parquet ledger: one view per ledger table (every run), plus
+-- *_latest views holding only the newest run, so a query never mixes runs by accident.
+-- Before running this file set the ledger folder, e.g. in the duckdb shell:
+--     set variable ledger_root = '/path/to/out/ledger';
+-- (pipeline.store.connect_ledger does this for you from Python.)
+create or replace view run as
+    select * from read_parquet(getvariable('ledger_root') || '/run/*/*.parquet', hive_partitioning = true);
+create or replace view savings as
+    select * from read_parquet(getvariable('ledger_root') || '/savings/*/*.parquet', hive_partitioning = true);
+create or replace view policy as
+    select * from read_parquet(getvariable('ledger_root') || '/policy/*/*.parquet', hive_partitioning = true);
+create or replace view behavior_policy as
+    select * from read_parquet(
+        getvariable('ledger_root') || '/behavior_policy/*/*.parquet', hive_partitioning = true
+    );
+create or replace view diagnostics as
+    select * from read_parquet(getvariable('ledger_root') || '/diagnostics/*/*.parquet', hive_partitioning = true);
+create or replace view episode_summary as
+    select * from read_parquet(
+        getvariable('ledger_root') || '/episode_summary/*/*.parquet', hive_partitioning = true
+    );
+create or replace view latest_run as
+    select run_id from run order by finished_at desc limit 1;
+create or replace view savings_latest as
+    select s.* from savings s semi join latest_run using (run_id);
+create or replace view savings_by_premise as
+    select
+        key as premise_id,
+        policy_name,
+        estimator,
+        n_episodes,
+        round(savings_usd_per_episode, 3) as savings_usd_per_episode,
+        round(ci_low, 3) as ci_low,
+        round(ci_high, 3) as ci_high,
+        round(lower_bound_usd, 3) as lower_bound_usd,
+        round(ess, 1) as ess,
+        support_ok,
+        round(savings_usd_annual, 2) as savings_usd_annual,
+        round(savings_kwh_annual, 1) as savings_kwh_annual
+    from savings_latest
+    where scope = 'premise'
+    order by premise_id, policy_name

@@ -1,0 +1,69 @@
+"""Evaluation wiring: target probabilities, scopes and savings arithmetic."""
+
+from __future__ import annotations
+
+import numpy as np
+import polars as pl
+import pytest
+
+from pipeline import estimators
+from pipeline.config import Config
+from pipeline.evaluate import evaluate_policy, target_probabilities
+from pipeline.policies import SetbackRule
+
+# Three tiny episodes; weights rho = prod pi / b are 4, 0.5 and 1, returns -3, -4 and -2.
+THREE = pl.DataFrame(
+    {
+        "episode_id": [1, 1, 2, 3, 3, 3],
+        "t": [0, 1, 0, 0, 1, 2],
+        "reward": [-1.0, -2.0, -4.0, -1.0, -1.0, 0.0],
+        "pi": [0.5, 1.0, 0.2, 0.9, 0.3, 1.0],
+        "b": [0.25, 0.5, 0.4, 0.9, 0.6, 0.5],
+    }
+)
+
+
+def test_weighted_importance_sampling_matches_hand_computation_on_three_episodes():
+    """WIS = sum(rho G) / sum(rho) = (4*-3 + 0.5*-4 + 1*-2) / 5.5 (Sutton and Barto 2018, eq. 5.6)."""
+    row = estimators.weighted_is(THREE).row(0, named=True)
+    assert row["estimate"] == pytest.approx(-16 / 5.5)
+    assert row["n_episodes"] == 3
+    # Kish (1965): (sum w)^2 / sum w^2 = 5.5^2 / 17.25.
+    assert row["ess"] == pytest.approx(5.5**2 / 17.25)
+    assert estimators.ordinary_is(THREE)["estimate"][0] == pytest.approx(-16 / 3)
+
+
+def test_target_probability_of_logged_actions_reads_the_rule_table():
+    """A deterministic rule softened by epsilon gives 1 - eps + eps/3 to its own action, eps/3 otherwise."""
+    config = Config()
+    rule = SetbackRule("r", depth_c=2)
+    keys = config.state.encode([8, 8], [5.0, 5.0], [0, 0], [0, 0], [4, 4])
+    steps = pl.DataFrame({"state_key": keys, "action": [1, 0]})
+    pi = target_probabilities(steps, rule.table(config.state, config.actions, 0.3), config)
+    np.testing.assert_allclose(pi, [0.7 + 0.1, 0.1])
+
+
+def test_target_equal_to_behaviour_gives_zero_savings_at_every_scope():
+    """When pi equals b every estimate is the on-policy average, so savings are exactly zero."""
+    rng = np.random.default_rng(7)
+    n_episodes, horizon = 40, 3
+    steps = pl.DataFrame(
+        {
+            "episode_id": np.repeat(np.arange(n_episodes), horizon),
+            "t": np.tile(np.arange(horizon), n_episodes),
+            "reward": -rng.uniform(0.1, 1.0, n_episodes * horizon),
+            "kwh": rng.uniform(0.5, 2.0, n_episodes * horizon),
+            "recovery_kwh": np.zeros(n_episodes * horizon),
+            "premise_id": np.repeat(np.where(np.arange(n_episodes) < 20, "A", "B"), horizon),
+            "cohort": "c",
+        }
+    )
+    b = rng.uniform(0.2, 0.9, steps.height)
+    days = pl.DataFrame({"premise_id": ["A", "B"], "cohort": ["c", "c"], "days_observed": [30, 30]})
+    savings, diagnostics = evaluate_policy(steps, b, b, days, Config(bootstrap_replicates=50))
+    assert set(savings["scope"]) == {"premise", "cohort", "portfolio"}
+    np.testing.assert_allclose(savings["savings_usd_per_episode"].to_numpy(), 0.0, atol=1e-12)
+    np.testing.assert_allclose(savings["savings_kwh_annual"].to_numpy(), 0.0, atol=1e-9)
+    portfolio = savings.filter(pl.col("scope") == "portfolio").row(0, named=True)
+    assert portfolio["n_episodes"] == n_episodes and portfolio["ess"] == pytest.approx(n_episodes)
+    assert diagnostics.filter(pl.col("scope") == "premise").height == 2
