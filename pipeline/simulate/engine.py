@@ -282,6 +282,7 @@ def episode_frame(world: World, episodes: Episodes, rollout: Rollout, run: Run) 
             "kwh": e.sum(axis=1),
             "comfort_penalty_usd": pen,
             "final_offset_c": final,
+            "presence_sensing": h.presence[episodes.home],
         }
     ).with_columns(pl.col("episode_start").dt.replace_time_zone("UTC"))
 

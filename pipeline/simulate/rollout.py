@@ -51,7 +51,8 @@ def simulate_policy(
     -------
     polars.DataFrame
         premise_id, episode_start (UTC), n_steps, return_usd, kwh,
-        comfort_penalty_usd, final_offset_c.
+        comfort_penalty_usd, final_offset_c, presence_sensing (whether the
+        pipeline can see the episode at all).
     """
     params = replace(params or SimParams(), **overrides)
     world = build_world(params)

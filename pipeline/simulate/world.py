@@ -314,8 +314,8 @@ def build_world(params: SimParams) -> World:
         cols["keenness"].append(rng.normal(0.0, 0.4))
         p_away = np.where(weekday_of_day, rng.uniform(*params.weekday_away_prob), params.weekend_away_prob)
         away[i] = rng.random(nd) < p_away
-        dep[i] = np.floor(60 * rng.uniform(*params.depart_window_h, nd)).astype(np.int64)
-        ret[i] = np.floor(60 * rng.uniform(*params.return_window_h, nd)).astype(np.int64)
+        dep[i] = _off_the_hour(np.floor(60 * rng.uniform(*params.depart_window_h, nd)).astype(np.int64))
+        ret[i] = _off_the_hour(np.floor(60 * rng.uniform(*params.return_window_h, nd)).astype(np.int64))
         hot_draw = rng.random(nd) < params.hidden_hot_prob
         hot[i] = hot_draw & params.hidden_confounder
         sd = 0.3
@@ -330,6 +330,11 @@ def build_world(params: SimParams) -> World:
     shape = _base_shape(local_hour_q, occ_q) * (1.0 + 0.2 * hot_q)
     base_kwh = homes.base_kw[None, :] * shape * noise * 0.25
     return World(params, clock, weather, tariffs, homes, days, base_kwh, estimated)
+
+
+def _off_the_hour(minutes: np.ndarray) -> np.ndarray:
+    """Move comings and goings off hh:00, which belongs to the hourly setpoint decision."""
+    return minutes + (minutes % 60 == 0)
 
 
 def local_day_of_hour(clock: Clock, homes: Homes) -> tuple[np.ndarray, np.ndarray]:
