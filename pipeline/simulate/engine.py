@@ -1,0 +1,319 @@
+"""Episodes, residents' choices, the thermal run over the whole grid, and episode returns.
+
+Decision process (the pipeline cuts episodes the same way):
+
+* An away episode of a premise on a local day is the run of fully unoccupied
+  local clock hours h_0 .. h_{n-1} (n >= 1). The return hour h_n is partly away;
+  it and the ``recovery_hours`` hours after it form the recovery window.
+* At h_t:00 the resident picks a_t in {-1, 0, +1} (°C, raising the cooling
+  setpoint is +1); the setpoint during h_t is sp_t = sp_{t-1} + a_t with
+  sp_{-1} = comfort. The setpoint sp_{n-1} stays in force until the resident
+  walks in during h_n and restores comfort.
+* State s_t = StateSpace().encode(local hour of h_t, degrees(outdoor °C
+  observed at h_t:00), price tier of h_t, sp_{t-1} - comfort, n - t).
+* Step reward r_t = -(kWh of hour h_t) * (price of h_t), kWh being the meter's
+  whole-house reads. The last step also carries the recovery cost and the
+  comfort penalty, so the episode return is
+
+      G = -sum_{h in steps and recovery window} kWh_h * price_h - comfort_penalty,
+      comfort_penalty = penalty_usd_per_degree_hour * max(0, sp_{n-1} - comfort) * recovery_hours.
+
+  See ``comfort_penalty`` and ``episode_return``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+import polars as pl
+
+from pipeline.simulate import physics
+from pipeline.simulate.behavior import allowed, behavior_probs, mask_and_normalise
+from pipeline.simulate.world import STREAM_CHOICE, World, away_window, stream
+
+MAX_STEPS = 24
+
+
+def comfort_penalty(
+    final_offset_c: np.ndarray | float, recovery_hours: int = 1, usd_per_degree_hour: float = 0.10
+) -> np.ndarray:
+    """Comfort penalty of an episode, USD (positive): setback left at return, per recovery hour."""
+    return usd_per_degree_hour * np.maximum(0.0, np.asarray(final_offset_c, dtype=float)) * recovery_hours
+
+
+def episode_return(
+    step_cost_usd: np.ndarray | float,
+    recovery_cost_usd: np.ndarray | float,
+    final_offset_c: np.ndarray | float,
+    recovery_hours: int = 1,
+    usd_per_degree_hour: float = 0.10,
+) -> np.ndarray:
+    """Episode return, USD (negative): minus energy cost of step and recovery hours, minus the penalty."""
+    return -(
+        np.asarray(step_cost_usd, dtype=float)
+        + np.asarray(recovery_cost_usd, dtype=float)
+        + comfort_penalty(final_offset_c, recovery_hours, usd_per_degree_hour)
+    )
+
+
+@dataclass(frozen=True)
+class Episodes:
+    """Away episodes of a world, one entry per episode."""
+
+    home: np.ndarray
+    """Premise index."""
+    day: np.ndarray
+    """Local day index."""
+    n: np.ndarray
+    """Decision steps."""
+    h0: np.ndarray
+    """Grid hour of the first decision step."""
+
+
+def find_episodes(world: World) -> Episodes:
+    """Runs of fully-away local hours on each away day, skipping days whose hours fall off the grid."""
+    d = world.days
+    first = -(-d.depart_min // 60)
+    ret_hour = d.return_min // 60
+    n = ret_hour - first
+    home, day = np.nonzero(d.away & (n >= 1))
+    tz = world.homes.tz[home]
+    h0 = world.clock.hour_index[tz, day + 1, first[home, day]]
+    n_ep = n[home, day]
+    keep = (h0 >= 0) & (h0 + n_ep + world.params.recovery_hours < world.clock.n_hours)
+    if (n_ep > MAX_STEPS).any():
+        raise ValueError("episode longer than MAX_STEPS")
+    return Episodes(home[keep], day[keep], n_ep[keep], h0[keep])
+
+
+Chooser = Callable[[np.ndarray, np.ndarray, np.ndarray], np.ndarray]
+
+
+def table_chooser(world: World, probs: np.ndarray) -> Chooser:
+    """Chooser reading a policy table (n_states, 3) or per-premise tables (n_premises, n_states, 3)."""
+    probs = np.asarray(probs, dtype=float)
+    if probs.ndim == 2:
+        return lambda keys, home, day: probs[keys]
+    return lambda keys, home, day: probs[home, keys]
+
+
+def behavior_chooser(world: World) -> Chooser:
+    """Chooser drawing from the residents' true model, hidden 'feeling hot' state included."""
+    h, p = world.homes, world.params
+
+    def choose(keys: np.ndarray, home: np.ndarray, day: np.ndarray) -> np.ndarray:
+        return behavior_probs(
+            p.state, keys, h.depth_pref[home], h.keenness[home], h.comfort_cool_c[home],
+            p.cool_band_c, world.days.feeling_hot[home, day],
+        )
+
+    return choose
+
+
+@dataclass(frozen=True)
+class Rollout:
+    """Choices of one policy on one world: arrays (n_episodes, MAX_STEPS), valid where t < n."""
+
+    state_key: np.ndarray
+    """State key at each step."""
+    action: np.ndarray
+    """Action taken, °C."""
+    prob: np.ndarray
+    """Probability the acting policy gave the action taken."""
+    offset: np.ndarray
+    """Setback offset in force during the step, sp_t - comfort, °C."""
+
+
+def roll(world: World, episodes: Episodes, chooser: Chooser, choice_stream: int = 0) -> Rollout:
+    """Draw every episode's actions step by step; uniforms come from each premise's choice stream."""
+    p, h, c = world.params, world.homes, world.clock
+    n_days = p.days
+    uniforms = np.zeros((len(h.tz), n_days, MAX_STEPS))
+    for i in range(len(h.tz)):
+        uniforms[i] = stream(p.seed, STREAM_CHOICE, i, choice_stream).random((n_days, MAX_STEPS))
+    m = len(episodes.n)
+    keys = np.zeros((m, MAX_STEPS), dtype=np.int64)
+    acts = np.zeros((m, MAX_STEPS), dtype=np.int64)
+    prob = np.ones((m, MAX_STEPS))
+    offs = np.zeros((m, MAX_STEPS), dtype=np.int64)
+    offset = np.zeros(m, dtype=np.int64)
+    home, tz = episodes.home, h.tz[episodes.home]
+    comfort = h.comfort_cool_c[home]
+    station, plan = h.station[home], h.plan[home]
+    for t in range(int(episodes.n.max(initial=0))):
+        act = t < episodes.n
+        hour = np.where(act, episodes.h0 + t, 0)
+        k = p.state.encode(
+            c.local_hour[tz, hour],
+            p.state.degrees(world.weather.temp_c[station, hour]),
+            world.tariffs.tier[plan, tz, hour],
+            offset,
+            episodes.n - t,
+        )
+        ok = allowed(offset, comfort, p.cool_band_c, p.state)
+        probs = mask_and_normalise(chooser(k, home, episodes.day), ok)
+        u = uniforms[home, episodes.day, t]
+        idx = np.minimum((u[:, None] >= np.cumsum(probs, axis=1)).sum(axis=1), 2)
+        a = np.where(act, idx - 1, 0)
+        offset = offset + a
+        keys[:, t] = np.where(act, k, 0)
+        acts[:, t] = a
+        prob[:, t] = np.where(act, probs[np.arange(m), idx], 1.0)
+        offs[:, t] = offset
+    return Rollout(keys, acts, prob, offs)
+
+
+def away_setpoints(world: World, episodes: Episodes, rollout: Rollout) -> np.ndarray:
+    """Setpoint in force while nobody is home, per grid hour and premise (comfort elsewhere)."""
+    h = world.homes
+    sp = np.broadcast_to(h.comfort_cool_c.astype(float), (world.clock.n_hours, len(h.tz))).copy()
+    t = np.arange(MAX_STEPS)[None, :]
+    valid = t < episodes.n[:, None]
+    rows = (episodes.h0[:, None] + t)[valid]
+    cols = np.broadcast_to(episodes.home[:, None], valid.shape)[valid]
+    sp[rows, cols] += rollout.offset[valid]
+    last = rollout.offset[np.arange(len(episodes.n)), episodes.n - 1] if len(episodes.n) else np.zeros(0)
+    sp[episodes.h0 + episodes.n, episodes.home] += last
+    return sp
+
+
+@dataclass(frozen=True)
+class Run:
+    """Result of the thermal run over the whole grid."""
+
+    meter_kwh: np.ndarray
+    """Whole-house kWh per 15-minute interval as the meter reports it (1 Wh resolution), (4 * n_hours, n)."""
+    hvac_kwh: np.ndarray
+    """Air-conditioner kWh per 15-minute interval, unrounded, (4 * n_hours, n)."""
+    t_in_c: np.ndarray | None
+    """Indoor temperature at each sub-step start, (n_substeps, n), when recorded."""
+
+
+def thermal_homes(world: World) -> physics.ThermalHomes:
+    """The physics view of the world's homes."""
+    h = world.homes
+    return physics.ThermalHomes(h.r_k_per_kw, h.c_kwh_per_k, h.capacity_kw, h.cop_nominal, h.fan_kw)
+
+
+def run_grid(world: World, sp_away: np.ndarray, record: bool = False) -> Run:
+    """Integrate every home over the grid with residents home at comfort and away at ``sp_away``."""
+    p, h, c = world.params, world.homes, world.clock
+    per_hour = 60 // p.substep_minutes
+    per_quarter = 15 // p.substep_minutes
+    dt_h = p.substep_minutes / 60.0
+    homes = thermal_homes(world)
+    n = len(h.tz)
+    t_out = world.weather.temp_c[h.station].T
+    irr = world.weather.irradiance_kw_m2[h.station].T
+    lo, hi = away_window(c, h, world.days)
+    comfort = h.comfort_cool_c.astype(float)
+    internal = 0.8 * world.base_kwh / 0.25
+    hot_gain = _hot_gain_per_hour(world)
+    t_in = comfort.copy()
+    running = np.zeros(n, dtype=bool)
+    hvac = np.zeros((4 * c.n_hours, n))
+    trace = np.empty((c.n_hours * per_hour, n), dtype=np.float32) if record else None
+    for hr in range(c.n_hours):
+        for s in range(per_hour):
+            frac = (s + 0.5) / per_hour
+            minute = s * p.substep_minutes
+            occupied = ~((minute >= lo[hr]) & (minute < hi[hr]))
+            sp = np.where(occupied, comfort, sp_away[hr])
+            q = 4 * hr + s // per_quarter
+            to = t_out[hr] + (t_out[hr + 1] - t_out[hr]) * frac
+            gains = (
+                internal[q]
+                + 0.25 * occupied
+                + hot_gain[hr]
+                + h.solar_aperture_m2 * (irr[hr] + (irr[hr + 1] - irr[hr]) * frac)
+            )
+            if trace is not None:
+                trace[hr * per_hour + s] = t_in
+            t_in, running, _, electric = physics.substep(
+                homes, t_in, running, to, gains, sp, dt_h, p.deadband_c
+            )
+            hvac[q] += electric * dt_h
+    meter = np.round(hvac + world.base_kwh, 3)
+    return Run(meter, hvac, trace)
+
+
+def _hot_gain_per_hour(world: World) -> np.ndarray:
+    """Extra indoor heat on hidden 'feeling hot' days (stuffy house, dehumidifier), kW, (n_hours, n)."""
+    c, h = world.clock, world.homes
+    day = c.local_day[:, : c.n_hours][h.tz].T
+    valid = (day >= 0) & (day < world.params.days)
+    d = np.clip(day, 0, world.params.days - 1)
+    return 0.3 * (valid & world.days.feeling_hot[np.arange(len(h.tz))[None, :], d])
+
+
+def hourly(meter_kwh: np.ndarray) -> np.ndarray:
+    """Sum 15-minute reads to grid hours, (n_hours, n)."""
+    return meter_kwh.reshape(-1, 4, meter_kwh.shape[1]).sum(axis=1)
+
+
+def episode_frame(world: World, episodes: Episodes, rollout: Rollout, run: Run) -> pl.DataFrame:
+    """One row per episode: premise, start (UTC), steps, return, kWh and penalty."""
+    p, h = world.params, world.homes
+    kwh_h = hourly(run.meter_kwh)
+    price = world.tariffs.price[h.plan, h.tz][:, : world.clock.n_hours].T
+    m = len(episodes.n)
+    t = np.arange(MAX_STEPS + p.recovery_hours + 1)[None, :]
+    hours = episodes.h0[:, None] + t
+    in_steps = t < episodes.n[:, None]
+    in_window = t <= (episodes.n + p.recovery_hours)[:, None]
+    hours = np.where(in_window, hours, 0)
+    cols = np.broadcast_to(episodes.home[:, None], hours.shape)
+    e = np.where(in_window, kwh_h[hours, cols], 0.0)
+    cost = e * price[hours, cols]
+    step_cost = np.where(in_steps, cost, 0.0).sum(axis=1)
+    rec_cost = np.where(in_window & ~in_steps, cost, 0.0).sum(axis=1)
+    final = rollout.offset[np.arange(m), episodes.n - 1] if m else np.zeros(0)
+    pen = comfort_penalty(final, p.recovery_hours, p.penalty_usd_per_degree_hour)
+    ret = episode_return(step_cost, rec_cost, final, p.recovery_hours, p.penalty_usd_per_degree_hour)
+    start = np.datetime64(world.clock.t0.replace(tzinfo=None), "us") + episodes.h0.astype("timedelta64[h]")
+    return pl.DataFrame(
+        {
+            "premise_id": h.premise_id[episodes.home],
+            "episode_start": start,
+            "n_steps": episodes.n,
+            "return_usd": ret,
+            "kwh": e.sum(axis=1),
+            "comfort_penalty_usd": pen,
+            "final_offset_c": final,
+            "presence_sensing": h.presence[episodes.home],
+        }
+    ).with_columns(pl.col("episode_start").dt.replace_time_zone("UTC"))
+
+
+def step_frame(world: World, episodes: Episodes, rollout: Rollout, run: Run) -> pl.DataFrame:
+    """One row per decision step with its state, action, probability and reward."""
+    h = world.homes
+    kwh_h = hourly(run.meter_kwh)
+    price = world.tariffs.price[h.plan, h.tz][:, : world.clock.n_hours].T
+    ep = episode_frame(world, episodes, rollout, run)
+    t = np.arange(MAX_STEPS)[None, :]
+    valid = t < episodes.n[:, None]
+    hours = np.where(valid, episodes.h0[:, None] + t, 0)
+    cols = np.broadcast_to(episodes.home[:, None], hours.shape)
+    reward = -kwh_h[hours, cols] * price[hours, cols]
+    last = t == (episodes.n - 1)[:, None]
+    ret = ep["return_usd"].to_numpy()
+    reward = np.where(last, reward + (ret - np.where(valid, reward, 0.0).sum(axis=1))[:, None], reward)
+    ep_idx = np.broadcast_to(np.arange(len(episodes.n))[:, None], valid.shape)[valid]
+    start = np.datetime64(world.clock.t0.replace(tzinfo=None), "us") + hours[valid].astype("timedelta64[h]")
+    return pl.DataFrame(
+        {
+            "premise_id": h.premise_id[episodes.home][ep_idx],
+            "episode_start": ep["episode_start"].to_numpy()[ep_idx],
+            "t": np.broadcast_to(t, valid.shape)[valid],
+            "hour_start": start,
+            "state_key": rollout.state_key[valid],
+            "action": rollout.action[valid],
+            "probability": rollout.prob[valid],
+            "reward_usd": reward[valid],
+        }
+    ).with_columns(
+        pl.col("episode_start").dt.replace_time_zone("UTC"), pl.col("hour_start").dt.replace_time_zone("UTC")
+    )
