@@ -19,7 +19,7 @@ STEPS = pl.DataFrame(
 
 
 def test_premise_probabilities_shrink_toward_cohort_and_portfolio_by_hand():
-    """With k = 2: portfolio p(+1|s1) = (2 + 2/3) / 5, cohort = (2 + 2 * that) / 5, premise A = (2 + 2 * cohort) / 4."""
+    """With k = 2: portfolio p(+1|s1) = (2 + 2/3) / 5, cohort (2 + 2 p) / 5, premise A (2 + 2 p_c) / 4."""
     model = BehaviorPolicy(prior_strength=2.0, floor=0.0).fit(STEPS)
     portfolio = (2 + 2 / 3) / 5
     cohort = (2 + 2 * portfolio) / 5
