@@ -70,11 +70,13 @@ def test_committed_sample_lake_matches_its_manifest_and_a_regeneration(tmp_path)
     """Committed files hash to MANIFEST.sha256, and regenerating with the README's command reproduces them."""
     expected = read_manifest(SAMPLE / "MANIFEST.sha256")
     assert manifest(SAMPLE) == expected
-    summary = generate_lake(tmp_path, n_premises=60, seed=20260601, start=date(2026, 6, 1), days=92)
+    summary = generate_lake(
+        tmp_path, n_premises=60, seed=20260601, start=date(2026, 6, 1), days=92, policy_values=True
+    )
     assert manifest(tmp_path) == expected
     assert summary["bytes"] < 15_000_000
-    for share in summary["followed_share"].values():
-        assert share >= 0.03
+    for rule in ("setback-1", "setback-2"):
+        assert summary["followed_share_observable"][rule] >= 0.03
 
 
 def test_thermal_energy_balance_closes_over_a_day():
@@ -252,3 +254,17 @@ def test_hidden_confounder_changes_behaviour_but_not_the_world(tmp_path):
     assert not plain["final_offset_c"].equals(hidden["final_offset_c"])
     generate_lake(tmp_path, params=hidden_params, **SMALL)
     assert "feeling_hot" in pl.read_parquet(tmp_path / "truth" / "behavior_probabilities.parquet").columns
+
+
+def test_true_values_of_the_behaviour_equal_the_logged_mean_return(small_lake):
+    """The behaviour row of true_values is the mean logged return over episodes the pipeline can see."""
+    from pipeline.simulate.rollout import true_values
+
+    out, _ = small_lake
+    logged = pl.read_parquet(out / "truth" / "episodes.parquet").filter(pl.col("presence_sensing"))
+    values = true_values(replace(SimParams(), **SMALL), rules=(SetbackRule("setback-2", depth_c=2),))
+    portfolio = values.filter(pl.col("premise_id").is_null())
+    behaviour = portfolio.filter(pl.col("policy_name") == "behavior")
+    assert behaviour["value_usd"].item() == pytest.approx(logged["return_usd"].mean(), rel=1e-12)
+    assert behaviour["n_episodes"].item() == logged.height
+    assert set(portfolio["policy_name"]) == {"behavior", "setback-2"}
