@@ -19,7 +19,6 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from pipeline.policies import SetbackRule
 from pipeline.simulate.behavior import behavior_tables
 from pipeline.simulate.engine import (
     MAX_STEPS,
@@ -35,9 +34,8 @@ from pipeline.simulate.engine import (
     step_frame,
 )
 from pipeline.simulate.params import SimParams
+from pipeline.simulate.rollout import CANDIDATES, true_values
 from pipeline.simulate.world import World, build_world
-
-FOLLOW_RULES = (SetbackRule("setback-1", depth_c=1), SetbackRule("setback-2", depth_c=2))
 
 
 def generate_lake(
@@ -47,11 +45,14 @@ def generate_lake(
     start: date = date(2026, 6, 1),
     days: int = 92,
     params: SimParams | None = None,
+    policy_values: bool = False,
 ) -> dict:
     """Simulate homes and write ``landing/`` and ``truth/`` under ``out_dir``; return a summary.
 
     ``params``, when given, overrides the defaults; ``n_premises``, ``seed``,
-    ``start`` and ``days`` are then applied on top of it.
+    ``start`` and ``days`` are then applied on top of it. With
+    ``policy_values``, ``truth/policy_values.parquet`` also records the true
+    value of the default candidate rules (see ``true_values``).
     """
     began = time.perf_counter()
     params = replace(params or SimParams(), n_premises=n_premises, seed=seed, start=start, days=days)
@@ -73,6 +74,9 @@ def generate_lake(
     steps = step_frame(world, episodes, rollout, run)
     _write_truth(world, ep, steps, truth)
     shares = followed_shares(world, episodes, rollout)
+    seen = followed_shares(world, episodes, rollout, observable_only=True)
+    if policy_values:
+        true_values(params, world=world).write_parquet(truth / "policy_values.parquet", compression="zstd")
     files = {str(f.relative_to(out)): f.stat().st_size for f in sorted(out.rglob("*")) if f.is_file()}
     return {
         "n_premises": params.n_premises,
@@ -85,20 +89,27 @@ def generate_lake(
         "thermostat_rows": thermostat_rows,
         "mean_return_usd": float(ep["return_usd"].mean()) if ep.height else float("nan"),
         "followed_share": shares,
+        "followed_share_observable": seen,
         "files": files,
         "bytes": sum(files.values()),
         "seconds": time.perf_counter() - began,
     }
 
 
-def followed_shares(world: World, episodes: Episodes, rollout: Rollout) -> dict[str, float]:
-    """Share of episodes in which every logged action equals what each setback rule would do."""
+def followed_shares(
+    world: World, episodes: Episodes, rollout: Rollout, observable_only: bool = False
+) -> dict[str, float]:
+    """Share of episodes in which every logged action equals what each candidate rule would do.
+
+    With ``observable_only``, only episodes of homes with presence sensing count.
+    """
     valid = np.arange(MAX_STEPS)[None, :] < episodes.n[:, None]
+    keep = world.homes.presence[episodes.home] if observable_only else np.ones(len(episodes.n), dtype=bool)
     out = {}
-    for rule in FOLLOW_RULES:
+    for rule in CANDIDATES:
         wanted = rule.actions(world.params.state, rollout.state_key)
-        same = (wanted == rollout.action) | ~valid
-        out[rule.name] = float(same.all(axis=1).mean()) if len(episodes.n) else 0.0
+        same = ((wanted == rollout.action) | ~valid).all(axis=1)[keep]
+        out[rule.name] = float(same.mean()) if len(same) else 0.0
     return out
 
 
@@ -353,6 +364,7 @@ def main_simulate(args: argparse.Namespace | Sequence[str] | None = None) -> dic
         parser.add_argument("--days", type=int, default=SimParams().days)
         parser.add_argument("--hidden-confounder", action="store_true")
         parser.add_argument("--manifest", action="store_true")
+        parser.add_argument("--policy-values", action="store_true")
         args = parser.parse_args(args)
     params = SimParams(hidden_confounder=bool(getattr(args, "hidden_confounder", False)))
     summary = generate_lake(
@@ -362,6 +374,7 @@ def main_simulate(args: argparse.Namespace | Sequence[str] | None = None) -> dic
         start=getattr(args, "start", params.start),
         days=getattr(args, "days", params.days),
         params=params,
+        policy_values=bool(getattr(args, "policy_values", False)),
     )
     if getattr(args, "manifest", False):
         write_manifest(args.out)

@@ -7,7 +7,7 @@ from dataclasses import replace
 import numpy as np
 import polars as pl
 
-from pipeline.policies import validate_table
+from pipeline.policies import SetbackRule, validate_table
 from pipeline.simulate.engine import (
     away_setpoints,
     behavior_chooser,
@@ -18,7 +18,14 @@ from pipeline.simulate.engine import (
     table_chooser,
 )
 from pipeline.simulate.params import SimParams
-from pipeline.simulate.world import build_world
+from pipeline.simulate.world import World, build_world
+
+CANDIDATES: tuple[SetbackRule, ...] = (
+    SetbackRule("setback-1", depth_c=1, lead_steps=0),
+    SetbackRule("setback-2", depth_c=2, lead_steps=0),
+    SetbackRule("setback-2-early", depth_c=2, lead_steps=1),
+)
+"""The pipeline's default candidate rules, whose true values the sample lake records."""
 
 
 def simulate_policy(
@@ -55,7 +62,14 @@ def simulate_policy(
         pipeline can see the episode at all).
     """
     params = replace(params or SimParams(), **overrides)
-    world = build_world(params)
+    out = _simulate(build_world(params), policy_probs, choice_stream)
+    if premise_ids is not None:
+        out = out.filter(pl.col("premise_id").is_in(list(premise_ids)))
+    return out
+
+
+def _simulate(world: World, policy_probs: np.ndarray | str, choice_stream: int) -> pl.DataFrame:
+    params = world.params
     if isinstance(policy_probs, str):
         if policy_probs != "behavior":
             raise ValueError(f"unknown policy {policy_probs!r}; pass a table or 'behavior'")
@@ -71,7 +85,44 @@ def simulate_policy(
     episodes = find_episodes(world)
     rollout = roll(world, episodes, chooser, choice_stream)
     run = run_grid(world, away_setpoints(world, episodes, rollout))
-    out = episode_frame(world, episodes, rollout, run)
-    if premise_ids is not None:
-        out = out.filter(pl.col("premise_id").is_in(list(premise_ids)))
-    return out
+    return episode_frame(world, episodes, rollout, run)
+
+
+def true_values(
+    params: SimParams,
+    rules: tuple[SetbackRule, ...] = CANDIDATES,
+    epsilons: tuple[float, ...] = (0.0, 0.05),
+    world: World | None = None,
+) -> pl.DataFrame:
+    """True per-episode value of each rule (and of the residents' own behaviour) on the lake's draws.
+
+    Only episodes the pipeline can see (homes with presence sensing) count.
+    One row per policy, epsilon and premise, plus a portfolio row with a null
+    premise_id: n_episodes, value_usd (mean return), kwh and comfort penalty
+    per episode. Epsilon-soft rules draw their choices from stream 1, so they
+    are independent of the logged choices (stream 0).
+    """
+    world = world or build_world(params)
+    runs = [("behavior", 0.0, _simulate(world, "behavior", 0))]
+    for rule in rules:
+        for eps in epsilons:
+            table = rule.table(params.state, epsilon=eps)
+            runs.append((rule.name, eps, _simulate(world, table, 1 if eps > 0 else 0)))
+    frames = []
+    for name, eps, frame in runs:
+        seen = frame.filter(pl.col("presence_sensing"))
+        aggs = (
+            pl.len().alias("n_episodes"),
+            pl.col("return_usd").mean().alias("value_usd"),
+            pl.col("kwh").mean().alias("kwh"),
+            pl.col("comfort_penalty_usd").mean().alias("comfort_penalty_usd"),
+        )
+        per = seen.group_by("premise_id").agg(*aggs).sort("premise_id")
+        total = seen.select(pl.lit(None, dtype=pl.String).alias("premise_id"), *aggs)
+        frames.append(
+            pl.concat([total, per]).with_columns(
+                pl.lit(name).alias("policy_name"), pl.lit(eps).alias("epsilon")
+            )
+        )
+    cols = ["policy_name", "epsilon", "premise_id", "n_episodes", "value_usd", "kwh", "comfort_penalty_usd"]
+    return pl.concat(frames).select(cols)
