@@ -41,7 +41,17 @@ class Config:
     seed: int = 20260601
     """Seed for every random draw (bootstrap, tie-breaking)."""
     step_hours: int = 1
-    """Length of one decision step, hours."""
+    """Length of one decision step, hours (when decision_points is 'fixed')."""
+    decision_points: str = "fixed"
+    """'fixed': a decision every step_hours; 'anchored': at departure, price-tier rises, 1 h before return."""
+    schedule_away_hours: tuple[int, int] = (8, 17)
+    """Local hours [from, to) assumed away on weekdays for premises with no occupancy or setback evidence."""
+    schedule_max_load_ratio: float = 0.9
+    """An assumed schedule is implausible unless weekday kWh in it is below this share of weekend kWh."""
+    setback_hold_hours: tuple[int, int] = (6, 20)
+    """Local hours [from, to) in which a held setback counts as absence (premises without occupancy flag)."""
+    comfort_penalty_basis: str = "setpoint"
+    """'setpoint': setback still in force at return; 'indoor': logged indoor temperature, where present."""
     actions: tuple[int, ...] = DEFAULT_ACTIONS
     """Allowed setpoint changes per decision, whole °C in the setback direction."""
     cool_band_c: tuple[float, float] = (22.0, 30.0)

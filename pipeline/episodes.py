@@ -38,6 +38,13 @@ def _params(config: Config) -> dict[str, object]:
         "action_min": min(config.actions),
         "action_max": max(config.actions),
         "penalty_usd": config.comfort_penalty_usd_per_degree_hour,
+        "anchored": config.decision_points == "anchored",
+        "indoor_basis": config.comfort_penalty_basis == "indoor",
+        "schedule_from": config.schedule_away_hours[0],
+        "schedule_to": config.schedule_away_hours[1],
+        "schedule_max_ratio": config.schedule_max_load_ratio,
+        "hold_from": config.setback_hold_hours[0],
+        "hold_to": config.setback_hold_hours[1],
     }
 
 

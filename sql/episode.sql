@@ -2,7 +2,8 @@
 -- key episode_id. Every candidate run is kept, with excluded_reason set when it may
 -- not be used, so an analyst can see what was left out and why. The window charged to
 -- an episode runs from its first away hour through the return hour and the recovery
--- hours after it.
+-- hours after it. Episodes from an assumed schedule are kept only where the meter
+-- agrees that the home used less in those hours on weekdays than on weekends.
 with hours as (
     select * from hourly
 ),
@@ -11,6 +12,17 @@ numbered as (
         *,
         row_number() over (partition by premise_id order by hour_utc) as hour_index
     from hours
+),
+schedule_check as (
+    select
+        premise_id,
+        avg(kwh) filter (day_type = 'weekday' and local_hour >= $schedule_from and local_hour < $schedule_to)
+            / nullif(avg(kwh) filter (
+                day_type = 'weekend' and local_hour >= $schedule_from and local_hour < $schedule_to
+            ), 0) as schedule_load_ratio
+    from hours
+    where presence_source = 'schedule'
+    group by all
 ),
 away_runs as (
     select
@@ -50,7 +62,7 @@ windows as (
     group by all
 ),
 first_hours as (
-    select premise_id, hour_utc as start_utc, local_ts as start_local, day_type, mode_before
+    select premise_id, hour_utc as start_utc, local_ts as start_local, day_type, mode_before, presence_source
     from hours
 ),
 labelled as (
@@ -63,6 +75,7 @@ labelled as (
         w.window_end_utc,
         w.n_away_hours,
         w.mode,
+        f.presence_source,
         case
             when w.window_hours < w.n_away_hours + 1 + $recovery_hours then 'open_at_data_end'
             when w.short_hours > 0 then 'data_gap'
@@ -71,11 +84,14 @@ labelled as (
             when w.no_setting then 'no_thermostat_setting'
             when w.modes > 1 or w.mode_change_hours > 0 or f.mode_before <> w.mode then 'mode_change'
             when w.mode = 'off' then 'system_off'
+            when f.presence_source = 'schedule' and coalesce(c.schedule_load_ratio >= $schedule_max_ratio, true)
+                then 'implausible_schedule'
             when w.n_away_hours < $min_hours then 'too_short'
             when w.n_away_hours > $max_hours then 'too_long'
         end as excluded_reason
     from windows w
     join first_hours f using (premise_id, start_utc)
+    left join schedule_check c using (premise_id)
 ),
 identified as (
     select

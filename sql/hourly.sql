@@ -1,6 +1,9 @@
 -- The hourly grid: one row per premise and UTC hour over the premise's metered span;
 -- key (premise_id, hour_utc). Every later stage reads hours from here, so gaps stay
 -- visible (minutes_read < 60) instead of disappearing, and meter kWh is conserved.
+-- Whether an hour was fully away comes from the best evidence the premise has: its
+-- thermostat's occupancy flag; else a setback held through the hour (an away hold);
+-- else the configured weekday schedule, which episode.sql checks against the load.
 with premises as (
     select * from premise
 ),
@@ -84,7 +87,7 @@ setting_before as (
 ),
 setting_end as (
     select h.premise_id, h.hour_utc, e.mode as mode_end, e.cool_setpoint_c as cool_end,
-           e.heat_setpoint_c as heat_end
+           e.heat_setpoint_c as heat_end, e.indoor_c as indoor_end
     from with_price h
     asof left join events e
         on e.premise_id = h.premise_id and e.changed_at_utc < h.hour_utc + interval 1 hour
@@ -93,6 +96,22 @@ presence_start as (
     select h.premise_id, h.hour_utc, p.occupied as occupied_at_start
     from with_price h
     asof left join presence p on p.premise_id = h.premise_id and p.changed_at_utc <= h.hour_utc
+),
+-- Which evidence of absence each premise has.
+presence_kind as (
+    select
+        p.premise_id,
+        case
+            when bool_or(e.occupied is not null) then 'occupancy_flag'
+            when bool_or(
+                (e.mode = 'cool' and e.cool_setpoint_c >= p.comfort_cool_c + 1)
+                or (e.mode = 'heat' and e.heat_setpoint_c <= p.comfort_heat_c - 1)
+            ) then 'setback_hold'
+            else 'schedule'
+        end as presence_source
+    from premises p
+    left join events e using (premise_id)
+    group by all
 ),
 presence_within as (
     select e.premise_id, date_trunc('hour', e.changed_at_utc) as hour_utc,
@@ -122,14 +141,32 @@ assembled as (
         e.mode_end,
         e.cool_end,
         e.heat_end,
+        e.indoor_end,
         coalesce(b.mode_before <> e.mode_end, false) or coalesce(pw.modes_within, 0) > 1 as mode_changed,
         ps.occupied_at_start,
-        coalesce(ps.occupied_at_start = false and not coalesce(pw.returned_within, false), false)
-            as away_full
+        k.presence_source,
+        case k.presence_source
+            when 'occupancy_flag' then
+                coalesce(ps.occupied_at_start = false and not coalesce(pw.returned_within, false), false)
+            when 'setback_hold' then
+                coalesce(
+                    isodow(h.local_ts) < 6
+                    and hour(h.local_ts) >= $hold_from and hour(h.local_ts) < $hold_to
+                    and b.mode_before = e.mode_end
+                    and case e.mode_end
+                        when 'cool' then e.cool_end >= h.comfort_cool_c + 1
+                        when 'heat' then e.heat_end <= h.comfort_heat_c - 1
+                        else false
+                    end,
+                    false
+                )
+            else isodow(h.local_ts) < 6 and hour(h.local_ts) >= $schedule_from and hour(h.local_ts) < $schedule_to
+        end as away_full
     from with_price h
     left join setting_before b using (premise_id, hour_utc)
     left join setting_end e using (premise_id, hour_utc)
     left join presence_start ps using (premise_id, hour_utc)
     left join presence_within pw using (premise_id, hour_utc)
+    left join presence_kind k using (premise_id)
 )
 select * from assembled
