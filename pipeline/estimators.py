@@ -554,9 +554,10 @@ def doubly_robust(steps: pl.DataFrame, gamma: float = 1.0) -> pl.DataFrame:
 
     estimate = (1/n) sum_i sum_t gamma^t (rho_{i,0:t} (r_{i,t} - q_hat_{i,t})
     + rho_{i,0:t-1} v_hat_{i,t}), with rho_{i,0:-1} = 1. The model terms form a
-    control variate of mean zero, so the estimate stays unbiased whatever the
-    model and its variance falls as the model improves. With q_hat = v_hat = 0
-    it equals ``per_decision_is`` exactly.
+    control variate of mean zero as long as v_hat(s) = sum_a pi(a|s) q_hat(s, a),
+    so the estimate stays unbiased however wrong q_hat is, and its variance falls
+    as q_hat improves; a v_hat not matched to q_hat biases it. With
+    q_hat = v_hat = 0 it equals ``per_decision_is`` exactly.
 
     Parameters
     ----------
