@@ -149,7 +149,7 @@ def _prepare(
             raise EstimatorInputError(f"column {name!r} has {nulls} null value(s); drop or fill them first")
 
     episode_id = steps["episode_id"].to_numpy()
-    back = np.flatnonzero(np.diff(episode_id) < 0)
+    back = np.flatnonzero(episode_id[1:] < episode_id[:-1])  # no diff: unsigned ids would wrap
     if back.size:
         row = int(back[0]) + 1
         raise EstimatorInputError(
@@ -177,17 +177,19 @@ def _prepare(
         column = steps["group"]
         if column.null_count():
             raise EstimatorInputError(f"column 'group' has {column.null_count()} null value(s)")
-        values = column.to_numpy()
-        first = values[starts]
-        varying = np.flatnonzero(values != first[episode])
+        first = column.gather(starts)
+        varying = np.flatnonzero((column != first.gather(episode)).to_numpy())
         if varying.size:
             row = int(varying[0])
             raise EstimatorInputError(
                 f"group must be constant within an episode: episode_id {episode_id[row]} has "
-                f"{values[row]!r} at row {row} and {first[episode[row]]!r} at its start"
+                f"{column[row]!r} at row {row} and {first[int(episode[row])]!r} at its start"
             )
-        unique, group = np.unique(first, return_inverse=True)
-        labels = pl.Series("group", unique, dtype=column.dtype)
+        # Dense ranks give sorted group codes in polars, without numpy object arrays of strings.
+        group = first.rank("dense").to_numpy().astype(np.int64) - 1
+        representative = np.empty(int(group.max()) + 1, dtype=np.int64)
+        representative[group] = np.arange(group.size)
+        labels = first.gather(representative).rename("group")
     else:
         group = np.zeros(starts.size, dtype=np.int64)
         labels = pl.Series("group", [ALL_GROUP], dtype=pl.String)
@@ -253,10 +255,12 @@ def _episode_sum(values: np.ndarray, s: _Steps) -> np.ndarray:
 
 
 def _keyed_sums(key: np.ndarray, values: np.ndarray, n_keys: int) -> np.ndarray:
-    """Sums of ``values`` (B, m) by ``key`` (m,) in 0 .. n_keys - 1, shape (B, n_keys)."""
-    rows = values.shape[0]
-    flat = (np.arange(rows)[:, None] * n_keys + key[None, :]).ravel()
-    return np.bincount(flat, weights=values.ravel(), minlength=rows * n_keys).reshape(rows, n_keys)
+    """Sums of ``values`` (B, m) by ``key`` (m,), shape (B, n_keys); ``key`` must be non-decreasing."""
+    out = np.zeros((values.shape[0], n_keys))
+    if key.size:
+        first = np.flatnonzero(np.concatenate(([True], key[1:] != key[:-1])))
+        out[:, key[first]] = np.add.reduceat(values, first, axis=1)
+    return out
 
 
 def _cumulative_weights(pi: np.ndarray, b: np.ndarray, s: _Steps) -> np.ndarray:
@@ -365,22 +369,53 @@ def _doubly_robust_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Te
     return s, _scalar_terms(_episode_sum(step_terms, s), np.ones(s.n_episodes), w[s.ends])
 
 
+def _entry_keys(terms: _Terms, s: _Steps) -> tuple[np.ndarray, np.ndarray]:
+    """(group, cell) key of each entry and of each carried entry."""
+    key = s.group[terms.episode] * terms.n_cells + terms.cell
+    carry_key = np.empty(0, dtype=np.int64)
+    if terms.carry is not None:
+        carry_key = s.group[terms.carry[0]] * terms.n_cells + terms.carry[1]
+    return key, carry_key
+
+
+def _in_key_order(terms: _Terms, s: _Steps) -> _Terms:
+    """The same terms with entries sorted by (group, cell), so sums are contiguous segments."""
+    key, carry_key = _entry_keys(terms, s)
+    order = np.argsort(key, kind="stable")
+    carry = terms.carry
+    if carry is not None:
+        carry_order = np.argsort(carry_key, kind="stable")
+        carry = tuple(part[carry_order] for part in carry)
+    return _Terms(
+        terms.episode[order],
+        terms.cell[order],
+        terms.numerator[order],
+        terms.denominator[order],
+        terms.n_cells,
+        terms.weights,
+        carry,
+    )
+
+
 def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> np.ndarray:
     """Estimates for each row of episode ``multiplicity`` (B, n_episodes), shape (B, n_groups).
 
     ``None`` means every episode once (the point estimate, B = 1). A group whose
     denominator is zero in some cell, i.e. no episode with non-zero weight, gets NaN.
     """
+    key, carry_key = _entry_keys(terms, s)
+    if (key[1:] < key[:-1]).any() or (carry_key[1:] < carry_key[:-1]).any():
+        terms = _in_key_order(terms, s)
+        key, carry_key = _entry_keys(terms, s)
     u = np.ones((1, s.n_episodes)) if multiplicity is None else multiplicity
     rows, n_cells, n_groups = u.shape[0], terms.n_cells, s.n_groups
     n_keys = n_groups * n_cells
-    key = s.group[terms.episode] * n_cells + terms.cell
     u_entries = u[:, terms.episode]
     numerator = _keyed_sums(key, u_entries * terms.numerator, n_keys).reshape(rows, n_groups, n_cells)
     denominator = _keyed_sums(key, u_entries * terms.denominator, n_keys).reshape(rows, n_groups, n_cells)
     if terms.carry is not None:
-        episode, cell, value = terms.carry
-        carried = _keyed_sums(s.group[episode] * n_cells + cell, u[:, episode] * value, n_keys)
+        episode, _, value = terms.carry
+        carried = _keyed_sums(carry_key, u[:, episode] * value, n_keys)
         denominator += np.cumsum(carried.reshape(rows, n_groups, n_cells), axis=2)
     positive = denominator > 0.0
     ratio = np.divide(numerator, denominator, out=np.zeros_like(numerator), where=positive)
@@ -730,10 +765,12 @@ def bootstrap_interval(
     """
     build = _terms_builder(estimator)
     level = _check_level(level)
-    if not (isinstance(n_replicates, int) and n_replicates >= 2):
+    if not (isinstance(n_replicates, int | np.integer) and n_replicates >= 2):
         raise EstimatorInputError(f"n_replicates must be an integer >= 2, got {n_replicates!r}")
     s, terms = build(steps, gamma)
-    base = _on_policy_terms(steps, gamma)[1] if savings else None
+    # Sorted once here so every chunk of replicates sums contiguous segments without re-sorting.
+    terms = _in_key_order(terms, s)
+    base = _in_key_order(_on_policy_terms(steps, gamma)[1], s) if savings else None
     rng = np.random.default_rng(seed)
     point = _paired_values(s, terms, base, np.ones((1, s.n_episodes)))[0]
 
