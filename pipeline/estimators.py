@@ -8,9 +8,9 @@ of the logged action) and an optional ``group`` column (premise, cohort). When
 ``group`` is absent every episode belongs to the single group ``"all"``.
 
 All arithmetic runs on numpy arrays indexed by episode code: cumulative sums
-within episodes and ``np.bincount`` over episode and group codes, never a Python
-loop over episodes or steps, so a cohort of a hundred thousand episodes costs
-the same few array passes as ten.
+within episodes, ``np.bincount`` over episode codes and ``np.add.reduceat``
+over sorted (group, cell) segments, never a Python loop over episodes or steps,
+so a cohort of a hundred thousand episodes costs the same few array passes as ten.
 
 The importance-sampling estimators share one form. For group ``g``, with
 episode multiplicities ``u_i`` (1 for the point estimate, Poisson(1) draws for
@@ -149,7 +149,7 @@ def _prepare(
             raise EstimatorInputError(f"column {name!r} has {nulls} null value(s); drop or fill them first")
 
     episode_id = steps["episode_id"].to_numpy()
-    back = np.flatnonzero(np.diff(episode_id) < 0)
+    back = np.flatnonzero(episode_id[1:] < episode_id[:-1])  # no diff: unsigned ids would wrap
     if back.size:
         row = int(back[0]) + 1
         raise EstimatorInputError(
@@ -177,17 +177,19 @@ def _prepare(
         column = steps["group"]
         if column.null_count():
             raise EstimatorInputError(f"column 'group' has {column.null_count()} null value(s)")
-        values = column.to_numpy()
-        first = values[starts]
-        varying = np.flatnonzero(values != first[episode])
+        first = column.gather(starts)
+        varying = np.flatnonzero((column != first.gather(episode)).to_numpy())
         if varying.size:
             row = int(varying[0])
             raise EstimatorInputError(
                 f"group must be constant within an episode: episode_id {episode_id[row]} has "
-                f"{values[row]!r} at row {row} and {first[episode[row]]!r} at its start"
+                f"{column[row]!r} at row {row} and {first[int(episode[row])]!r} at its start"
             )
-        unique, group = np.unique(first, return_inverse=True)
-        labels = pl.Series("group", unique, dtype=column.dtype)
+        # Dense ranks give sorted group codes in polars, without numpy object arrays of strings.
+        group = first.rank("dense").to_numpy().astype(np.int64) - 1
+        representative = np.empty(int(group.max()) + 1, dtype=np.int64)
+        representative[group] = np.arange(group.size)
+        labels = first.gather(representative).rename("group")
     else:
         group = np.zeros(starts.size, dtype=np.int64)
         labels = pl.Series("group", [ALL_GROUP], dtype=pl.String)
@@ -241,7 +243,12 @@ def _check_level(level: float) -> float:
 
 
 def _segment_cumsum(values: np.ndarray, s: _Steps) -> np.ndarray:
-    """Inclusive cumulative sum of ``values`` (n_steps,) restarting at each episode."""
+    """Inclusive cumulative sum of ``values`` (n_steps,) restarting at each episode.
+
+    One running sum over the frame minus its value before each episode: rounding
+    grows with the frame-wide total (about 1e-16 of it), far below what matters
+    for log-weights and returns of a few decisions.
+    """
     total = np.cumsum(values)
     before = total[s.starts] - values[s.starts]
     return total - before[s.episode]
@@ -253,10 +260,12 @@ def _episode_sum(values: np.ndarray, s: _Steps) -> np.ndarray:
 
 
 def _keyed_sums(key: np.ndarray, values: np.ndarray, n_keys: int) -> np.ndarray:
-    """Sums of ``values`` (B, m) by ``key`` (m,) in 0 .. n_keys - 1, shape (B, n_keys)."""
-    rows = values.shape[0]
-    flat = (np.arange(rows)[:, None] * n_keys + key[None, :]).ravel()
-    return np.bincount(flat, weights=values.ravel(), minlength=rows * n_keys).reshape(rows, n_keys)
+    """Sums of ``values`` (B, m) by ``key`` (m,), shape (B, n_keys); ``key`` must be non-decreasing."""
+    out = np.zeros((values.shape[0], n_keys))
+    if key.size:
+        first = np.flatnonzero(np.concatenate(([True], key[1:] != key[:-1])))
+        out[:, key[first]] = np.add.reduceat(values, first, axis=1)
+    return out
 
 
 def _cumulative_weights(pi: np.ndarray, b: np.ndarray, s: _Steps) -> np.ndarray:
@@ -365,22 +374,53 @@ def _doubly_robust_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Te
     return s, _scalar_terms(_episode_sum(step_terms, s), np.ones(s.n_episodes), w[s.ends])
 
 
+def _entry_keys(terms: _Terms, s: _Steps) -> tuple[np.ndarray, np.ndarray]:
+    """(group, cell) key of each entry and of each carried entry."""
+    key = s.group[terms.episode] * terms.n_cells + terms.cell
+    carry_key = np.empty(0, dtype=np.int64)
+    if terms.carry is not None:
+        carry_key = s.group[terms.carry[0]] * terms.n_cells + terms.carry[1]
+    return key, carry_key
+
+
+def _in_key_order(terms: _Terms, s: _Steps) -> _Terms:
+    """The same terms with entries sorted by (group, cell), so sums are contiguous segments."""
+    key, carry_key = _entry_keys(terms, s)
+    order = np.argsort(key, kind="stable")
+    carry = terms.carry
+    if carry is not None:
+        carry_order = np.argsort(carry_key, kind="stable")
+        carry = tuple(part[carry_order] for part in carry)
+    return _Terms(
+        terms.episode[order],
+        terms.cell[order],
+        terms.numerator[order],
+        terms.denominator[order],
+        terms.n_cells,
+        terms.weights,
+        carry,
+    )
+
+
 def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> np.ndarray:
     """Estimates for each row of episode ``multiplicity`` (B, n_episodes), shape (B, n_groups).
 
     ``None`` means every episode once (the point estimate, B = 1). A group whose
     denominator is zero in some cell, i.e. no episode with non-zero weight, gets NaN.
     """
+    key, carry_key = _entry_keys(terms, s)
+    if (key[1:] < key[:-1]).any() or (carry_key[1:] < carry_key[:-1]).any():
+        terms = _in_key_order(terms, s)
+        key, carry_key = _entry_keys(terms, s)
     u = np.ones((1, s.n_episodes)) if multiplicity is None else multiplicity
     rows, n_cells, n_groups = u.shape[0], terms.n_cells, s.n_groups
     n_keys = n_groups * n_cells
-    key = s.group[terms.episode] * n_cells + terms.cell
     u_entries = u[:, terms.episode]
     numerator = _keyed_sums(key, u_entries * terms.numerator, n_keys).reshape(rows, n_groups, n_cells)
     denominator = _keyed_sums(key, u_entries * terms.denominator, n_keys).reshape(rows, n_groups, n_cells)
     if terms.carry is not None:
-        episode, cell, value = terms.carry
-        carried = _keyed_sums(s.group[episode] * n_cells + cell, u[:, episode] * value, n_keys)
+        episode, _, value = terms.carry
+        carried = _keyed_sums(carry_key, u[:, episode] * value, n_keys)
         denominator += np.cumsum(carried.reshape(rows, n_groups, n_cells), axis=2)
     positive = denominator > 0.0
     ratio = np.divide(numerator, denominator, out=np.zeros_like(numerator), where=positive)
@@ -554,9 +594,10 @@ def doubly_robust(steps: pl.DataFrame, gamma: float = 1.0) -> pl.DataFrame:
 
     estimate = (1/n) sum_i sum_t gamma^t (rho_{i,0:t} (r_{i,t} - q_hat_{i,t})
     + rho_{i,0:t-1} v_hat_{i,t}), with rho_{i,0:-1} = 1. The model terms form a
-    control variate of mean zero, so the estimate stays unbiased whatever the
-    model and its variance falls as the model improves. With q_hat = v_hat = 0
-    it equals ``per_decision_is`` exactly.
+    control variate of mean zero as long as v_hat(s) = sum_a pi(a|s) q_hat(s, a),
+    so the estimate stays unbiased however wrong q_hat is, and its variance falls
+    as q_hat improves; a v_hat not matched to q_hat biases it. With
+    q_hat = v_hat = 0 it equals ``per_decision_is`` exactly.
 
     Parameters
     ----------
@@ -729,10 +770,12 @@ def bootstrap_interval(
     """
     build = _terms_builder(estimator)
     level = _check_level(level)
-    if not (isinstance(n_replicates, int) and n_replicates >= 2):
+    if not (isinstance(n_replicates, int | np.integer) and n_replicates >= 2):
         raise EstimatorInputError(f"n_replicates must be an integer >= 2, got {n_replicates!r}")
     s, terms = build(steps, gamma)
-    base = _on_policy_terms(steps, gamma)[1] if savings else None
+    # Sorted once here so every chunk of replicates sums contiguous segments without re-sorting.
+    terms = _in_key_order(terms, s)
+    base = _in_key_order(_on_policy_terms(steps, gamma)[1], s) if savings else None
     rng = np.random.default_rng(seed)
     point = _paired_values(s, terms, base, np.ones((1, s.n_episodes)))[0]
 
