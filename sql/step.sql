@@ -50,20 +50,20 @@ away_hours as (
 numbered as (
     select
         *,
-        sum(is_decision::integer) over (
+        (sum(is_decision::integer) over (
             partition by episode_id order by hour_utc rows between unbounded preceding and current row
-        ) - 1 as t
+        ) - 1)::integer as t
     from away_hours
 ),
 last_steps as (
     select episode_id, max(t) as last_t from numbered group by episode_id
 ),
 bucketed as (
-    select n.*, false as in_recovery, l.last_t + 1 as n_steps
+    select n.*, false as in_recovery, (l.last_t + 1)::integer as n_steps
     from numbered n
     join last_steps l using (episode_id)
     union all by name
-    select h.*, l.last_t as t, true as in_recovery, l.last_t + 1 as n_steps
+    select h.*, l.last_t as t, true as in_recovery, (l.last_t + 1)::integer as n_steps
     from episode_hours h
     join last_steps l using (episode_id)
     where h.hour_in_episode >= h.n_away_hours
