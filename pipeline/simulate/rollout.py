@@ -111,17 +111,25 @@ def true_values(
     frames = []
     for name, eps, frame in runs:
         seen = frame.filter(pl.col("presence_sensing"))
-        aggs = (
-            pl.len().alias("n_episodes"),
-            pl.col("return_usd").mean().alias("value_usd"),
-            pl.col("kwh").mean().alias("kwh"),
-            pl.col("comfort_penalty_usd").mean().alias("comfort_penalty_usd"),
-        )
-        per = seen.group_by("premise_id").agg(*aggs).sort("premise_id")
-        total = seen.select(pl.lit(None, dtype=pl.String).alias("premise_id"), *aggs)
+        ids = seen["premise_id"].to_numpy()
+        groups = [(None, np.ones(len(ids), dtype=bool))] + [(p, ids == p) for p in np.unique(ids)]
+        # numpy means in a fixed order, so the file's bytes do not depend on thread scheduling
         frames.append(
-            pl.concat([total, per]).with_columns(
-                pl.lit(name).alias("policy_name"), pl.lit(eps).alias("epsilon")
+            pl.DataFrame(
+                {
+                    "policy_name": [name] * len(groups),
+                    "epsilon": [eps] * len(groups),
+                    "premise_id": pl.Series([g for g, _ in groups], dtype=pl.String),
+                    "n_episodes": [int(m.sum()) for _, m in groups],
+                    **{
+                        out: [float(np.mean(seen[col].to_numpy()[m])) for _, m in groups]
+                        for out, col in (
+                            ("value_usd", "return_usd"),
+                            ("kwh", "kwh"),
+                            ("comfort_penalty_usd", "comfort_penalty_usd"),
+                        )
+                    },
+                }
             )
         )
     cols = ["policy_name", "epsilon", "premise_id", "n_episodes", "value_usd", "kwh", "comfort_penalty_usd"]
