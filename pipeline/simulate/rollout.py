@@ -17,7 +17,7 @@ from pipeline.simulate.engine import (
     run_grid,
     table_chooser,
 )
-from pipeline.simulate.params import SimParams
+from pipeline.simulate.params import SimParams, SimulationError
 from pipeline.simulate.world import World, build_world
 
 CANDIDATES: tuple[SetbackRule, ...] = (
@@ -72,7 +72,7 @@ def _simulate(world: World, policy_probs: np.ndarray | str, choice_stream: int) 
     params = world.params
     if isinstance(policy_probs, str):
         if policy_probs != "behavior":
-            raise ValueError(f"unknown policy {policy_probs!r}; pass a table or 'behavior'")
+            raise SimulationError(f"unknown policy {policy_probs!r}; pass a table or 'behavior'")
         chooser = behavior_chooser(world)
     else:
         probs = np.asarray(policy_probs, dtype=float)
@@ -80,7 +80,10 @@ def _simulate(world: World, policy_probs: np.ndarray | str, choice_stream: int) 
         validate_table(flat, flat.shape[0], 3)
         per_home_ok = probs.ndim == 2 or probs.shape[0] == params.n_premises
         if probs.shape[-2] != params.state.n_states or not per_home_ok:
-            raise ValueError(f"policy table shape {probs.shape} does not fit {params.n_premises} premises")
+            raise SimulationError(
+                f"policy table shape {probs.shape} does not fit {params.state.n_states} states"
+                f" and {params.n_premises} premises"
+            )
         chooser = table_chooser(world, probs)
     episodes = find_episodes(world)
     rollout = roll(world, episodes, chooser, choice_stream)
