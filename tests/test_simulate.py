@@ -268,3 +268,11 @@ def test_true_values_of_the_behaviour_equal_the_logged_mean_return(small_lake):
     assert behaviour["value_usd"].item() == pytest.approx(logged["return_usd"].mean(), rel=1e-12)
     assert behaviour["n_episodes"].item() == logged.height
     assert set(portfolio["policy_name"]) == {"behavior", "setback-2"}
+
+
+def test_simulate_policy_refuses_a_table_of_the_wrong_shape():
+    """A policy table that does not match the state space is refused with a specific error."""
+    from pipeline.simulate import SimulationError
+
+    with pytest.raises(SimulationError, match="does not fit"):
+        simulate_policy(np.full((10, 3), 1 / 3), n_premises=2, days=3)

@@ -9,11 +9,12 @@ The decision process and the episode return are defined in
 
 from pipeline.simulate.engine import comfort_penalty, episode_return
 from pipeline.simulate.lake import generate_lake, main_simulate, manifest, write_manifest
-from pipeline.simulate.params import SimParams
+from pipeline.simulate.params import SimParams, SimulationError
 from pipeline.simulate.rollout import simulate_policy
 
 __all__ = [
     "SimParams",
+    "SimulationError",
     "comfort_penalty",
     "episode_return",
     "generate_lake",

@@ -31,6 +31,7 @@ import polars as pl
 
 from pipeline.simulate import physics
 from pipeline.simulate.behavior import allowed, behavior_probs, mask_and_normalise
+from pipeline.simulate.params import SimulationError
 from pipeline.simulate.world import STREAM_CHOICE, World, away_window, stream
 
 MAX_STEPS = 24
@@ -84,7 +85,7 @@ def find_episodes(world: World) -> Episodes:
     n_ep = n[home, day]
     keep = (h0 >= 0) & (h0 + n_ep + world.params.recovery_hours < world.clock.n_hours)
     if (n_ep > MAX_STEPS).any():
-        raise ValueError("episode longer than MAX_STEPS")
+        raise SimulationError(f"an away episode has more than {MAX_STEPS} steps; shorten the away windows")
     return Episodes(home[keep], day[keep], n_ep[keep], h0[keep])
 
 

@@ -12,6 +12,10 @@ from datetime import date
 from pipeline.features import StateSpace
 
 
+class SimulationError(ValueError):
+    """Simulator parameters or a policy table that cannot be simulated as given."""
+
+
 @dataclass(frozen=True)
 class Station:
     """One invented weather station and the climate it reports."""

@@ -17,7 +17,7 @@ from pipeline.simulate.engine import (
     run_grid,
     table_chooser,
 )
-from pipeline.simulate.params import SimParams
+from pipeline.simulate.params import SimParams, SimulationError
 from pipeline.simulate.world import World, build_world
 
 CANDIDATES: tuple[SetbackRule, ...] = (
@@ -72,7 +72,7 @@ def _simulate(world: World, policy_probs: np.ndarray | str, choice_stream: int) 
     params = world.params
     if isinstance(policy_probs, str):
         if policy_probs != "behavior":
-            raise ValueError(f"unknown policy {policy_probs!r}; pass a table or 'behavior'")
+            raise SimulationError(f"unknown policy {policy_probs!r}; pass a table or 'behavior'")
         chooser = behavior_chooser(world)
     else:
         probs = np.asarray(policy_probs, dtype=float)
@@ -80,7 +80,10 @@ def _simulate(world: World, policy_probs: np.ndarray | str, choice_stream: int) 
         validate_table(flat, flat.shape[0], 3)
         per_home_ok = probs.ndim == 2 or probs.shape[0] == params.n_premises
         if probs.shape[-2] != params.state.n_states or not per_home_ok:
-            raise ValueError(f"policy table shape {probs.shape} does not fit {params.n_premises} premises")
+            raise SimulationError(
+                f"policy table shape {probs.shape} does not fit {params.state.n_states} states"
+                f" and {params.n_premises} premises"
+            )
         chooser = table_chooser(world, probs)
     episodes = find_episodes(world)
     rollout = roll(world, episodes, chooser, choice_stream)
@@ -111,17 +114,25 @@ def true_values(
     frames = []
     for name, eps, frame in runs:
         seen = frame.filter(pl.col("presence_sensing"))
-        aggs = (
-            pl.len().alias("n_episodes"),
-            pl.col("return_usd").mean().alias("value_usd"),
-            pl.col("kwh").mean().alias("kwh"),
-            pl.col("comfort_penalty_usd").mean().alias("comfort_penalty_usd"),
-        )
-        per = seen.group_by("premise_id").agg(*aggs).sort("premise_id")
-        total = seen.select(pl.lit(None, dtype=pl.String).alias("premise_id"), *aggs)
+        ids = seen["premise_id"].to_numpy()
+        groups = [(None, np.ones(len(ids), dtype=bool))] + [(p, ids == p) for p in np.unique(ids)]
+        # numpy means in a fixed order, so the file's bytes do not depend on thread scheduling
         frames.append(
-            pl.concat([total, per]).with_columns(
-                pl.lit(name).alias("policy_name"), pl.lit(eps).alias("epsilon")
+            pl.DataFrame(
+                {
+                    "policy_name": [name] * len(groups),
+                    "epsilon": [eps] * len(groups),
+                    "premise_id": pl.Series([g for g, _ in groups], dtype=pl.String),
+                    "n_episodes": [int(m.sum()) for _, m in groups],
+                    **{
+                        out: [float(np.mean(seen[col].to_numpy()[m])) for _, m in groups]
+                        for out, col in (
+                            ("value_usd", "return_usd"),
+                            ("kwh", "kwh"),
+                            ("comfort_penalty_usd", "comfort_penalty_usd"),
+                        )
+                    },
+                }
             )
         )
     cols = ["policy_name", "epsilon", "premise_id", "n_episodes", "value_usd", "kwh", "comfort_penalty_usd"]

@@ -14,7 +14,7 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 
-from pipeline.simulate.params import SimParams
+from pipeline.simulate.params import SimParams, SimulationError
 
 STREAM_WEATHER = 0
 STREAM_PREMISE = 1
@@ -177,7 +177,7 @@ def build_tariffs(params: SimParams, clock: Clock) -> Tariffs:
         distinct = np.unique([r.price_per_kwh for r in rows])
         tier[p] = np.searchsorted(distinct, price[p])
     if np.isnan(price).any():
-        raise ValueError("a rate plan leaves some local hours without a price")
+        raise SimulationError("a rate plan leaves some local hours without a price; check its rows")
     return Tariffs(ids, price, tier)
 
 
