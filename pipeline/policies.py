@@ -23,12 +23,12 @@ class PolicyError(ValueError):
 
 @dataclass(frozen=True)
 class SetbackRule:
-    """Set back by ``depth_c`` while away, easing back so comfort is reached ``lead_steps`` early.
+    """Set back by ``depth_c`` while away, restoring comfort ``lead_steps`` decisions before return.
 
     Offsets are in the setback direction (raising a cooling setpoint, lowering a
     heating one). At each decision the rule aims for
     ``min(depth_c, steps_left - 1 - lead_steps)`` (never below zero) and moves
-    one action toward it.
+    toward it as far as the action set allows in one decision.
     """
 
     name: str
@@ -41,16 +41,19 @@ class SetbackRule:
         """Offset the rule aims for at each step, °C."""
         return np.clip(np.asarray(steps_left) - 1 - self.lead_steps, 0, self.depth_c)
 
-    def actions(self, space: StateSpace, keys: np.ndarray) -> np.ndarray:
+    def actions(
+        self, space: StateSpace, keys: np.ndarray, actions: tuple[int, ...] = DEFAULT_ACTIONS
+    ) -> np.ndarray:
         """The action (°C change, in the setback direction) the rule takes in each state."""
         f = space.decode(keys)
-        return np.sign(self.target_offset(f["steps_left"]) - f["offset"]).astype(np.int64)
+        gap = self.target_offset(f["steps_left"]) - f["offset"]
+        return np.clip(gap, min(actions), max(actions)).astype(np.int64)
 
     def table(
         self, space: StateSpace, actions: tuple[int, ...] = DEFAULT_ACTIONS, epsilon: float = 0.0
     ) -> np.ndarray:
         """Probability table (n_states, n_actions), epsilon-soft when ``epsilon`` > 0."""
-        chosen = self.actions(space, np.arange(space.n_states))
+        chosen = self.actions(space, np.arange(space.n_states), actions)
         index = _action_index(chosen, actions)
         probs = np.zeros((space.n_states, len(actions)))
         probs[np.arange(space.n_states), index] = 1.0

@@ -174,7 +174,12 @@ def test_landing_files_follow_the_contract(small_lake):
     land = out / "landing"
     prem = pl.read_csv(land / "premises" / "premises.csv")
     assert prem.columns[:6] == [
-        "premise_id", "timezone", "weather_station_id", "rate_plan_id", "comfort_cool_c", "comfort_heat_c"
+        "premise_id",
+        "timezone",
+        "weather_station_id",
+        "rate_plan_id",
+        "comfort_cool_c",
+        "comfort_heat_c",
     ]
     assert prem["comfort_cool_c"].is_between(22, 25).all() and prem["comfort_heat_c"].is_between(19, 21).all()
     meter = pl.read_parquet(land / "meter")
@@ -190,8 +195,10 @@ def test_landing_files_follow_the_contract(small_lake):
     assert thermo["cool_setpoint_c"].is_between(22, 30).all()
     stamp = thermo["changed_at"].str.to_datetime("%Y-%m-%dT%H:%M:%S%z")
     changes = thermo.filter(pl.col("occupied") == 0).with_columns(stamp=stamp.filter(thermo["occupied"] == 0))
-    moved = changes.filter(pl.col("cool_setpoint_c") != pl.col("premise_id").replace_strict(
-        prem["premise_id"], prem["comfort_cool_c"].cast(pl.Float64)))
+    moved = changes.filter(
+        pl.col("cool_setpoint_c")
+        != pl.col("premise_id").replace_strict(prem["premise_id"], prem["comfort_cool_c"].cast(pl.Float64))
+    )
     assert moved.height > 0 and (moved["stamp"].dt.minute() == 0).all()
     assert thermo.group_by("premise_id").len().height == SMALL["n_premises"]
     tariffs = pl.read_csv(land / "tariffs" / "tariffs.csv")

@@ -106,8 +106,13 @@ def behavior_chooser(world: World) -> Chooser:
 
     def choose(keys: np.ndarray, home: np.ndarray, day: np.ndarray) -> np.ndarray:
         return behavior_probs(
-            p.state, keys, h.depth_pref[home], h.keenness[home], h.comfort_cool_c[home],
-            p.cool_band_c, world.days.feeling_hot[home, day],
+            p.state,
+            keys,
+            h.depth_pref[home],
+            h.keenness[home],
+            h.comfort_cool_c[home],
+            p.cool_band_c,
+            world.days.feeling_hot[home, day],
         )
 
     return choose

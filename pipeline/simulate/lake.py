@@ -230,8 +230,15 @@ def _write_thermostat(world: World, episodes: Episodes, rollout: Rollout, run: R
         occ = np.where(h.presence[home], np.asarray(occupied, dtype=float), np.nan)
         month = c.month[h.tz[home], hour] + 100 * _year_of(world, c.local_day[h.tz[home], hour])
         parts.append(
-            {"home": home, "hour": hour, "minute": minute, "sp": np.asarray(setpoint, float), "occ": occ,
-             "indoor": indoor, "month": month}
+            {
+                "home": home,
+                "hour": hour,
+                "minute": minute,
+                "sp": np.asarray(setpoint, float),
+                "occ": occ,
+                "indoor": indoor,
+                "month": month,
+            }
         )
 
     n = len(h.tz)
@@ -248,8 +255,13 @@ def _write_thermostat(world: World, episodes: Episodes, rollout: Rollout, run: R
     changed = (t < episodes.n[:, None]) & (rollout.action != 0)
     e_idx, t_idx = np.nonzero(changed)
     ehome = episodes.home[e_idx]
-    add(ehome, episodes.h0[e_idx] + t_idx, np.zeros(len(e_idx)),
-        h.comfort_cool_c[ehome] + rollout.offset[e_idx, t_idx], np.zeros(len(e_idx)))
+    add(
+        ehome,
+        episodes.h0[e_idx] + t_idx,
+        np.zeros(len(e_idx)),
+        h.comfort_cool_c[ehome] + rollout.offset[e_idx, t_idx],
+        np.zeros(len(e_idx)),
+    )
     final = np.zeros(world.days.away.shape, dtype=np.int64)
     if len(episodes.n):
         final[episodes.home, episodes.day] = rollout.offset[np.arange(len(episodes.n)), episodes.n - 1]

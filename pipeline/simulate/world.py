@@ -259,9 +259,7 @@ class World:
 
 def _base_shape(hour: np.ndarray, occupied: np.ndarray) -> np.ndarray:
     """Relative non-HVAC load by local hour: evening peak at home, low when away."""
-    home = np.select(
-        [hour < 6, hour < 9, hour < 17, hour < 22], [0.7, 1.2, 1.0, 1.5], default=1.0
-    )
+    home = np.select([hour < 6, hour < 9, hour < 17, hour < 22], [0.7, 1.2, 1.0, 1.5], default=1.0)
     return np.where(occupied, home, 0.55)
 
 
