@@ -10,6 +10,8 @@ the portfolio's toward the uniform policy (hierarchical additive smoothing):
 
 with k = ``prior_strength``. A floor keeps every action's probability positive,
 so no importance weight divides by zero; the floor is reported with the table.
+When the steps carry a ``mode`` column (cool / heat) every level is kept apart per
+mode, so heating and cooling behaviour are never pooled.
 """
 
 from __future__ import annotations
@@ -64,9 +66,12 @@ class BehaviorPolicy:
             raise BehaviorInputError("prior_strength must be > 0 and floor in [0, 1/|A|)")
 
         k = self.prior_strength
+        self.split_ = ["mode"] if "mode" in steps.columns else []
+        split = self.split_
         grid = pl.DataFrame({"action": list(self.actions)}, schema={"action": steps.schema["action"]})
 
         def counts(keys: list[str]) -> pl.DataFrame:
+            keys = [*split, *keys]
             observed = steps.group_by([*keys, "state_key", "action"]).agg(pl.len().alias("count"))
             states = observed.select([*keys, "state_key"]).unique()
             return (
@@ -79,16 +84,16 @@ class BehaviorPolicy:
         portfolio = counts([]).with_columns(
             ((pl.col("count") + k / len(self.actions)) / (pl.col("state_count") + k)).alias("probability")
         )
-        cohort = self._shrink(counts(["cohort"]), portfolio, ["state_key", "action"])
+        cohort = self._shrink(counts(["cohort"]), portfolio, [*split, "state_key", "action"])
         premise_cohort = steps.select("premise_id", "cohort").unique()
         premise = self._shrink(
             counts(["premise_id"]).join(premise_cohort, on="premise_id"),
             cohort,
-            ["cohort", "state_key", "action"],
+            [*split, "cohort", "state_key", "action"],
         )
-        self.portfolio_ = self._floor(portfolio, [])
-        self.cohort_ = self._floor(cohort, ["cohort"])
-        self.premise_ = self._floor(premise, ["premise_id"])
+        self.portfolio_ = self._floor(portfolio, [*split])
+        self.cohort_ = self._floor(cohort, [*split, "cohort"])
+        self.premise_ = self._floor(premise, [*split, "premise_id"])
         return self
 
     def _shrink(self, counts: pl.DataFrame, parent: pl.DataFrame, on: list[str]) -> pl.DataFrame:
@@ -117,22 +122,27 @@ class BehaviorPolicy:
         portfolio, then the uniform policy.
         """
         self._check_fitted()
-        frame = steps.select("premise_id", "cohort", "state_key", pl.col(column).alias("action"))
+        split = self.split_
+        frame = steps.select(*split, "premise_id", "cohort", "state_key", pl.col(column).alias("action"))
         out = (
             frame.with_row_index("_row")
             .join(
-                self.premise_.select("premise_id", "state_key", "action", pl.col("probability").alias("p1")),
-                on=["premise_id", "state_key", "action"],
+                self.premise_.select(
+                    *split, "premise_id", "state_key", "action", pl.col("probability").alias("p1")
+                ),
+                on=[*split, "premise_id", "state_key", "action"],
                 how="left",
             )
             .join(
-                self.cohort_.select("cohort", "state_key", "action", pl.col("probability").alias("p2")),
-                on=["cohort", "state_key", "action"],
+                self.cohort_.select(
+                    *split, "cohort", "state_key", "action", pl.col("probability").alias("p2")
+                ),
+                on=[*split, "cohort", "state_key", "action"],
                 how="left",
             )
             .join(
-                self.portfolio_.select("state_key", "action", pl.col("probability").alias("p3")),
-                on=["state_key", "action"],
+                self.portfolio_.select(*split, "state_key", "action", pl.col("probability").alias("p3")),
+                on=[*split, "state_key", "action"],
                 how="left",
             )
             .sort("_row")
@@ -143,7 +153,7 @@ class BehaviorPolicy:
     def table(self) -> pl.DataFrame:
         """The ledger's ``behavior_policy`` rows: scope, key, state_key, action, probability, count."""
         self._check_fitted()
-        cols = ["state_key", "action", "probability", "count"]
+        cols = [*self.split_, "state_key", "action", "probability", pl.col("count").cast(pl.Int64)]
         return pl.concat(
             [
                 self.premise_.select(
@@ -152,13 +162,14 @@ class BehaviorPolicy:
                 self.cohort_.select(pl.lit("cohort").alias("scope"), pl.col("cohort").alias("key"), *cols),
                 self.portfolio_.select(pl.lit("portfolio").alias("scope"), pl.lit("all").alias("key"), *cols),
             ]
-        ).sort("scope", "key", "state_key", "action")
+        ).sort("scope", "key", *self.split_, "state_key", "action")
 
     @classmethod
     def from_table(cls, table: pl.DataFrame, actions: tuple[int, ...] = DEFAULT_ACTIONS) -> BehaviorPolicy:
         """Rebuild a fitted policy from the rows ``table()`` produced (as kept in the warehouse)."""
         model = cls(actions=actions)
-        cols = ["state_key", "action", "probability", "count"]
+        model.split_ = ["mode"] if "mode" in table.columns else []
+        cols = [*model.split_, "state_key", "action", "probability", "count"]
         by_scope = {
             scope: table.filter(pl.col("scope") == scope) for scope in ("premise", "cohort", "portfolio")
         }

@@ -94,6 +94,10 @@ def print_summary(summary: stages.RunSummary) -> None:
         f"premises evaluated: {premises}   episodes used: {counts.episodes_used} of {counts.episodes}"
         f"   decision steps: {counts.steps}"
     )
+    print(
+        f"weekday away episodes per premise and weekday: {counts.weekday_episodes_per_weekday:.2f}"
+        f"   decisions per episode: {counts.mean_decisions:.1f}   clipped actions: {counts.clipped_actions}"
+    )
     if counts.excluded:
         print("episodes excluded: " + ", ".join(f"{k} {v}" for k, v in sorted(counts.excluded.items())))
     portfolio = savings.filter(pl.col("scope") == "portfolio").select(

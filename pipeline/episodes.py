@@ -10,7 +10,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import duckdb
-import numpy as np
 import polars as pl
 
 from pipeline import store
@@ -27,6 +26,10 @@ class EpisodeCounts:
     steps: int
     clipped_actions: int
     excluded: dict[str, int]
+    mean_decisions: float
+    """Mean decisions per used episode (the horizon importance weights multiply over)."""
+    weekday_episodes_per_weekday: float
+    """Used weekday episodes per premise and observed weekday, averaged over premises with episodes."""
 
 
 def _params(config: Config) -> dict[str, object]:
@@ -73,6 +76,17 @@ def build(con: duckdb.DuckDBPyConnection, config: Config) -> EpisodeCounts:
     con.register("step_frame", steps.to_arrow())
     store.execute(con, "create or replace table step as select * from step_frame")
     con.unregister("step_frame")
+    con.register("lookup_frame", config.state.lookup().to_arrow())
+    store.execute(con, "create or replace table state_lookup as select * from lookup_frame")
+    con.unregister("lookup_frame")
+    rate = store.execute(
+        con,
+        "with days as (select premise_id,"
+        " count(distinct local_date) filter (day_type = 'weekday') as weekdays from hourly group by all),"
+        " used as (select premise_id, count(*) as n from episode"
+        " where excluded_reason is null and day_type = 'weekday' group by all)"
+        " select avg(n / weekdays) from used join days using (premise_id)",
+    )[0][0]
     excluded = dict(
         store.execute(
             con,
@@ -87,6 +101,8 @@ def build(con: duckdb.DuckDBPyConnection, config: Config) -> EpisodeCounts:
         steps=steps.height,
         clipped_actions=int(steps["action_clipped"].sum() or 0),
         excluded=excluded,
+        mean_decisions=float(steps.height / used) if used else 0.0,
+        weekday_episodes_per_weekday=float(rate or 0.0),
     )
 
 
@@ -97,24 +113,47 @@ def load_steps(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
     )
 
 
-def episode_summary(steps: pl.DataFrame) -> pl.DataFrame:
-    """One row per episode: start, steps, return, kWh and comfort penalty (ledger contract)."""
+def episode_summary(episodes: pl.DataFrame, steps: pl.DataFrame) -> pl.DataFrame:
+    """One row per episode, used or excluded (with its reason): start, steps, return, kWh, penalty."""
+    used = steps.group_by("episode_id").agg(
+        pl.len().alias("n_steps"),
+        pl.col("reward").sum().alias("return_usd"),
+        (pl.col("kwh").sum() + pl.col("recovery_kwh").sum()).alias("kwh"),
+        pl.col("comfort_penalty_usd").sum(),
+    )
     return (
-        steps.group_by("episode_id", maintain_order=True)
-        .agg(
-            pl.col("premise_id").first(),
-            pl.col("step_start_utc").min().alias("start_utc"),
-            pl.len().alias("n_steps"),
-            pl.col("reward").sum().alias("return_usd"),
-            (pl.col("kwh").sum() + pl.col("recovery_kwh").sum()).alias("kwh"),
-            pl.col("comfort_penalty_usd").sum(),
-        )
+        episodes.join(used, on="episode_id", how="left")
         .select(
-            "premise_id", "episode_id", "start_utc", "n_steps", "return_usd", "kwh", "comfort_penalty_usd"
+            "premise_id",
+            "episode_id",
+            "start_utc",
+            "day_type",
+            "mode",
+            "presence_source",
+            "n_away_hours",
+            pl.col("n_steps").fill_null(0),
+            "return_usd",
+            "kwh",
+            "comfort_penalty_usd",
+            "excluded_reason",
         )
+        .sort("episode_id")
     )
 
 
-def action_values(steps: pl.DataFrame) -> np.ndarray:
-    """The logged actions as an integer array."""
-    return steps["action"].to_numpy().astype(np.int64)
+def load_episodes(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
+    """Every candidate episode with its exclusion reason (null when used)."""
+    return store.frame(con, "select * from episode order by episode_id")
+
+
+def decision_summary(steps: pl.DataFrame) -> pl.DataFrame:
+    """Decisions per episode and the clipped-action count, for the stage's report."""
+    per_episode = steps.group_by("episode_id").agg(pl.len().alias("decisions"))
+    return pl.DataFrame(
+        {
+            "episodes": [per_episode.height],
+            "mean_decisions": [per_episode["decisions"].mean()],
+            "max_decisions": [per_episode["decisions"].max()],
+            "clipped_actions": [int(steps["action_clipped"].sum() or 0)],
+        }
+    )

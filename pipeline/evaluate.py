@@ -139,19 +139,23 @@ def evaluate_policy(
 def evaluate_candidates(
     steps: pl.DataFrame, behavior: BehaviorPolicy, days: pl.DataFrame, config: Config
 ) -> Evaluation:
-    """Evaluate every configured candidate rule; return the ledger frames."""
-    b = behavior.probabilities(steps)
+    """Evaluate every configured candidate rule, per mode (cooling and heating never mix)."""
     visits = steps.group_by("state_key").agg(pl.len().alias("visits"))
     savings, diags, policies = [], [], []
     for rule in config.candidates:
         table = rule.table(config.state, config.actions, config.target_epsilon)
-        pi = target_probabilities(steps, table, config)
-        s, d = evaluate_policy(steps, pi, b, days, config)
-        savings.append(s.with_columns(pl.lit(rule.name).alias("policy_name")))
-        diags.append(d.with_columns(pl.lit(rule.name).alias("policy_name")))
         policies.append(policy_frame(rule.name, table, config).join(visits, on="state_key", how="left"))
+        for mode in sorted(steps["mode"].unique()):
+            in_mode = steps.filter(pl.col("mode") == mode)
+            b = behavior.probabilities(in_mode)
+            pi = target_probabilities(in_mode, table, config)
+            s, d = evaluate_policy(in_mode, pi, b, days, config)
+            tag = (pl.lit(rule.name).alias("policy_name"), pl.lit(mode).alias("mode"))
+            savings.append(s.with_columns(*tag))
+            diags.append(d.with_columns(*tag))
     columns = [
         "policy_name",
+        "mode",
         "scope",
         "key",
         "estimator",
@@ -179,7 +183,7 @@ def evaluate_candidates(
         savings=savings_frame,
         policy=pl.concat(policies).with_columns(pl.col("visits").fill_null(0)),
         diagnostics=pl.concat(diags).select(
-            "policy_name", "scope", "key", pl.exclude("policy_name", "scope", "key")
+            "policy_name", "mode", "scope", "key", pl.exclude("policy_name", "mode", "scope", "key")
         ),
     )
 

@@ -15,7 +15,7 @@ from pipeline import ingest as ingestion
 from pipeline import store
 from pipeline.behavior import BehaviorPolicy
 from pipeline.config import Config
-from pipeline.episodes import EpisodeCounts, build, episode_summary, load_steps
+from pipeline.episodes import EpisodeCounts, build, episode_summary, load_episodes, load_steps
 from pipeline.ledger import Run
 
 __all__ = ["EpisodeCounts", "EvaluationSummary", "IngestSummary", "RunSummary"]
@@ -61,8 +61,10 @@ def episodes(config: Config, run: Run) -> EpisodeCounts:
     with store.warehouse(config.warehouse_path) as con:
         counts = build(con, config)
         steps = load_steps(con)
+        episodes_frame = load_episodes(con)
     run.row_counts.update(hourly=counts.hours, episode=counts.episodes, step=counts.steps)
-    run.write("episode_summary", episode_summary(steps))
+    run.write("episode_summary", episode_summary(episodes_frame, steps))
+    run.write("state_lookup", config.state.lookup())
     return counts
 
 
@@ -78,7 +80,7 @@ def learn(config: Config, run: Run) -> int:
     """Estimate the behaviour policy; keep it in the warehouse and write it to the ledger."""
     steps = _steps(config)
     model = BehaviorPolicy(config.behavior_prior_strength, config.behavior_floor, config.actions).fit(steps)
-    table = model.table().with_columns(pl.col("count").cast(pl.Int64))
+    table = model.table()
     with store.warehouse(config.warehouse_path) as con:
         con.register("behavior_frame", table.to_arrow())
         store.frame(con, "create or replace table behavior_policy as select * from behavior_frame")

@@ -21,7 +21,7 @@ schedule_check as (
                 day_type = 'weekend' and local_hour >= $schedule_from and local_hour < $schedule_to
             ), 0) as schedule_load_ratio
     from hours
-    where presence_source = 'schedule'
+    where presence_source = 'schedule' and minutes_read = 60
     group by all
 ),
 away_runs as (

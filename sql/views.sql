@@ -19,6 +19,8 @@ create or replace view episode_summary as
     select * from read_parquet(
         getvariable('ledger_root') || '/episode_summary/*/*.parquet', hive_partitioning = true
     );
+create or replace view state_lookup as
+    select * from read_parquet(getvariable('ledger_root') || '/state_lookup/*/*.parquet', hive_partitioning = true);
 create or replace view latest_run as
     select run_id from run order by finished_at desc limit 1;
 create or replace view savings_latest as

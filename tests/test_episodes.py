@@ -19,9 +19,15 @@ def _utc(local_hour: int, minute: int = 0) -> str:
     return f"{DAY}T{local_hour + 5:02d}:{minute:02d}:00Z"
 
 
-def _lake(tmp_path, thermostat_rows, kwh=KWH, meter_hours=range(0, 19)):
-    meter = "premise_id,interval_start,interval_minutes,kwh\n" + "".join(
-        f"P1,{_utc(h)},60,{kwh.get(h, 1.0)}\n" for h in meter_hours
+def _event(ts, cool_sp, occupied, mode="cool", heat_sp=20):
+    return f"P1,{ts},{mode},{cool_sp},{heat_sp},{occupied}\n"
+
+
+def _lake(tmp_path, thermostat_rows, kwh=KWH, meter_hours=range(0, 19), extra_meter="", **overrides):
+    meter = (
+        "premise_id,interval_start,interval_minutes,kwh\n"
+        + "".join(f"P1,{_utc(h)},60,{kwh.get(h, 1.0)}\n" for h in meter_hours)
+        + extra_meter
     )
     weather = "station_id,observed_at,dry_bulb_c\n" + "".join(
         f"S1,{_utc(h)},{OUTDOOR.get(h, 30.0)}\n" for h in range(0, 19)
@@ -41,9 +47,9 @@ def _lake(tmp_path, thermostat_rows, kwh=KWH, meter_hours=range(0, 19)):
         "meter/m.csv": meter,
         "weather/w.csv": weather,
         "thermostat/t.csv": "premise_id,changed_at,mode,cool_setpoint_c,heat_setpoint_c,occupied\n"
-        + "".join(f"P1,{ts},cool,{sp},20,{occ}\n" for ts, sp, occ in thermostat_rows),
+        + "".join(_event(*row) for row in thermostat_rows),
     }
-    config = lake_config(write_landing(tmp_path, files))
+    config = lake_config(write_landing(tmp_path, files), **overrides)
     ingest.ingest(config)
     with store.warehouse(config.warehouse_path) as con:
         counts = build(con, config)
@@ -122,3 +128,82 @@ def test_mode_change_inside_episode_excludes_it(tmp_path):
     with store.warehouse(config.warehouse_path) as con:
         counts = build(con, config)
     assert counts.excluded == {"mode_change": 1}
+
+
+def test_anchored_decisions_fall_at_departure_price_rise_and_last_hour(tmp_path):
+    """Anchored: decisions at 08 (departure), 10 (tier rises) and 11 (an hour before return)."""
+    _, counts, steps, _ = _lake(tmp_path, WORKED, decision_points="anchored", actions=[-2, -1, 0, 1, 2])
+    assert steps["local_hour"].to_list() == [8, 10, 11]
+    assert steps["step_hours"].to_list() == [2, 1, 1]
+    assert steps["steps_left"].to_list() == [3, 2, 1]
+    assert steps["action"].to_list() == [2, 0, -1]
+    assert steps["reward"].to_list() == pytest.approx([-0.25, -0.60, -1.35])
+    assert counts.mean_decisions == 3
+
+
+def test_recovery_window_length_moves_energy_and_penalty_to_the_last_step(tmp_path):
+    """With two recovery hours, hours 12-14 are charged to the last step and the penalty doubles."""
+    _, _, steps, _ = _lake(tmp_path, WORKED, recovery_hours=2)
+    last = steps.row(-1, named=True)
+    assert last["recovery_kwh"] == pytest.approx(3.0 + 2.0 + 1.0)
+    assert last["comfort_penalty_usd"] == pytest.approx(0.10 * 1 * 2)
+
+
+def test_clipped_actions_are_counted(tmp_path):
+    """A 2 °C move in one hour with actions of at most 1 °C is clipped and counted."""
+    rows = [(_utc(0), 24, 1), (_utc(7, 40), 24, 0), (_utc(8), 26, ""), (_utc(12, 20), 24, 1)]
+    _, counts, steps, _ = _lake(tmp_path, rows)
+    assert steps["action"].to_list()[0] == 1 and steps["change_c"].to_list()[0] == 2
+    assert counts.clipped_actions == 1
+
+
+def test_heating_offsets_and_actions_are_in_the_setback_direction(tmp_path):
+    """Lowering a heating setpoint is a positive setback, as raising a cooling one is."""
+    rows = [
+        (_utc(0), 26, 1, "heat", 20),
+        (_utc(7, 40), 26, 0, "heat", 20),
+        (_utc(8), 26, "", "heat", 19),
+        (_utc(9), 26, "", "heat", 18),
+        (_utc(11), 26, "", "heat", 19),
+        (_utc(12, 20), 26, 1, "heat", 20),
+    ]
+    _, _, steps, _ = _lake(tmp_path, rows)
+    assert steps["mode"].unique().to_list() == ["heat"]
+    assert steps["offset_before_c"].to_list() == [0, 1, 2, 2]
+    assert steps["action"].to_list() == [1, 1, 0, -1]
+
+
+def test_setback_hold_stands_in_for_a_missing_occupancy_flag(tmp_path):
+    """Without an occupancy flag, hours whose setback is in force at their end form the episode."""
+    rows = [(_utc(0), 24, ""), (_utc(8), 26, ""), (_utc(12, 20), 24, "")]
+    _, counts, steps, episodes = _lake(tmp_path, rows)
+    assert episodes["presence_source"].to_list() == ["setback_hold"]
+    assert steps["local_hour"].to_list() == [8, 9, 10, 11]
+    assert counts.excluded == {}
+
+
+def _saturday_meter(kwh: float) -> str:
+    return "".join(f"P1,2026-06-06T{h + 5:02d}:00:00Z,60,{kwh}\n" for h in range(0, 19))
+
+
+def test_schedule_fallback_is_used_when_the_meter_agrees(tmp_path):
+    """No flag, no setback: the weekday schedule is used when its hours draw less than on Saturday."""
+    rows = [(_utc(0), 24, "")]
+    _, _, steps, episodes = _lake(
+        tmp_path, rows, extra_meter=_saturday_meter(3.0), schedule_away_hours=[8, 12]
+    )
+    tuesday = episodes.filter(episodes["start_local"].dt.day() == 2)
+    assert tuesday["presence_source"].to_list() == ["schedule"]
+    assert tuesday["excluded_reason"].to_list() == [None]
+    assert steps["local_hour"].to_list() == [8, 9, 10, 11]
+
+
+def test_schedule_fallback_is_refused_when_the_load_does_not_drop(tmp_path):
+    """The same schedule is implausible when weekday load in it is not below Saturday's."""
+    rows = [(_utc(0), 24, "")]
+    _, _, steps, episodes = _lake(
+        tmp_path, rows, extra_meter=_saturday_meter(1.0), schedule_away_hours=[8, 12]
+    )
+    tuesday = episodes.filter(episodes["start_local"].dt.day() == 2)
+    assert tuesday["excluded_reason"].to_list() == ["implausible_schedule"]
+    assert steps.height == 0
