@@ -66,6 +66,13 @@ def add_state_keys(steps: pl.DataFrame, config: Config) -> pl.DataFrame:
     return steps.with_columns(pl.Series("degrees_c", degrees), pl.Series("state_key", keys))
 
 
+def steps_for(con: duckdb.DuckDBPyConnection, config: Config) -> pl.DataFrame:
+    """Decision steps of the usable episodes under ``config`` (not stored), with state keys and cohort."""
+    steps = store.query(con, "step", _params(config)).sort("episode_id", "t")
+    cohorts = store.frame(con, "select premise_id, cohort from premise")
+    return add_state_keys(steps, config).join(cohorts, on="premise_id", how="left")
+
+
 def build(con: duckdb.DuckDBPyConnection, config: Config) -> EpisodeCounts:
     """Rebuild ``hourly``, ``episode`` and ``step`` in the warehouse from the typed tables."""
     params = _params(config)

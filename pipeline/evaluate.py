@@ -202,3 +202,48 @@ def policy_frame(name: str, table: np.ndarray, config: Config) -> pl.DataFrame:
             "q_value": np.full(n_states * n_actions, np.nan),
         }
     )
+
+
+def horizon_report(steps_by_choice: dict[str, pl.DataFrame], config: Config) -> pl.DataFrame:
+    """Weight spread of each candidate under each decision-point choice (the curse of horizon).
+
+    Parameters
+    ----------
+    steps_by_choice : dict of str to polars.DataFrame
+        Decision steps built with each choice of decision points ('fixed', 'anchored').
+
+    Returns
+    -------
+    polars.DataFrame
+        decision_points, mode, policy_name, mean_decisions, n_episodes, ess, ess_share,
+        max_weight_share and weight_max over the whole portfolio.
+    """
+    rows = []
+    for choice, steps in steps_by_choice.items():
+        behavior = BehaviorPolicy(config.behavior_prior_strength, config.behavior_floor, config.actions).fit(
+            steps
+        )
+        for mode in sorted(steps["mode"].unique()):
+            in_mode = steps.filter(pl.col("mode") == mode)
+            b = behavior.probabilities(in_mode)
+            decisions = in_mode.group_by("episode_id").len()["len"].mean()
+            for rule in config.candidates:
+                table = rule.table(config.state, config.actions, config.target_epsilon)
+                frame = in_mode.select("episode_id", "t").with_columns(
+                    pl.Series("pi", target_probabilities(in_mode, table, config)), pl.Series("b", b)
+                )
+                diag = estimators.diagnostics(frame).row(0, named=True)
+                rows.append(
+                    {
+                        "decision_points": choice,
+                        "mode": mode,
+                        "policy_name": rule.name,
+                        "mean_decisions": float(decisions),
+                        "n_episodes": diag["n_episodes"],
+                        "ess": diag["ess"],
+                        "ess_share": diag["ess"] / diag["n_episodes"],
+                        "max_weight_share": diag["max_weight_share"],
+                        "weight_max": diag["weight_max"],
+                    }
+                )
+    return pl.DataFrame(rows)

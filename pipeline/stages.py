@@ -6,6 +6,7 @@ run alone from the command line, as a Prefect task, or from a test.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import polars as pl
@@ -15,7 +16,7 @@ from pipeline import ingest as ingestion
 from pipeline import store
 from pipeline.behavior import BehaviorPolicy
 from pipeline.config import Config
-from pipeline.episodes import EpisodeCounts, build, episode_summary, load_episodes, load_steps
+from pipeline.episodes import EpisodeCounts, build, episode_summary, load_episodes, load_steps, steps_for
 from pipeline.ledger import Run
 
 __all__ = ["EpisodeCounts", "EvaluationSummary", "IngestSummary", "RunSummary"]
@@ -35,9 +36,10 @@ class IngestSummary:
 
 @dataclass(frozen=True)
 class EvaluationSummary:
-    """The savings rows of one evaluation."""
+    """The savings rows of one evaluation, and the weight spread per decision-point choice."""
 
     savings: pl.DataFrame
+    horizon: pl.DataFrame
 
 
 @dataclass(frozen=True)
@@ -101,11 +103,17 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
             "select premise_id, p.cohort, count(distinct h.local_date) as days_observed"
             " from hourly h join premise p using (premise_id) group by all",
         )
+        by_choice = {
+            choice: steps_for(con, dataclasses.replace(config, decision_points=choice))
+            for choice in ("fixed", "anchored")
+        }
     result = evaluation.evaluate_candidates(steps, behavior, days, config)
+    horizon = evaluation.horizon_report(by_choice, config)
+    run.write("horizon", horizon)
     run.write("savings", result.savings)
     run.write("policy", result.policy)
     run.write("diagnostics", result.diagnostics)
-    return EvaluationSummary(result.savings)
+    return EvaluationSummary(result.savings, horizon)
 
 
 def finish(config: Config, run: Run) -> str:
