@@ -27,6 +27,55 @@ class BehaviorInputError(ValueError):
 
 
 REQUIRED = ("premise_id", "cohort", "state_key", "action")
+STRENGTH_GRID: tuple[float, ...] = (0.25, 0.5, 1.0, 2.0, 5.0, 10.0, 20.0, 50.0, 100.0)
+"""Prior strengths tried when the strength is chosen by held-out likelihood."""
+
+
+def held_out_log_likelihood(
+    steps: pl.DataFrame,
+    strengths: tuple[float, ...] = STRENGTH_GRID,
+    floor: float = 0.01,
+    actions: tuple[int, ...] = DEFAULT_ACTIONS,
+    folds: int = 5,
+    seed: int = 0,
+) -> pl.DataFrame:
+    """Mean held-out log-likelihood of the logged actions for each prior strength.
+
+    Episodes (not steps) are assigned to ``folds`` folds at random, so the steps
+    of one episode are never split between fitting and scoring.
+
+    Returns
+    -------
+    polars.DataFrame
+        prior_strength, log_likelihood (mean per held-out step, nats).
+    """
+    episodes = steps["episode_id"].unique().sort()
+    fold_of = pl.DataFrame(
+        {
+            "episode_id": episodes,
+            "fold": np.random.default_rng(seed).integers(0, folds, episodes.len()),
+        }
+    )
+    tagged = steps.join(fold_of, on="episode_id")
+    scores = []
+    for strength in strengths:
+        total, count = 0.0, 0
+        for fold in range(folds):
+            train = tagged.filter(pl.col("fold") != fold)
+            test = tagged.filter(pl.col("fold") == fold)
+            if train.is_empty() or test.is_empty():
+                continue
+            model = BehaviorPolicy(strength, floor, actions).fit(train)
+            total += float(np.log(model.probabilities(test)).sum())
+            count += test.height
+        scores.append({"prior_strength": strength, "log_likelihood": total / max(count, 1)})
+    return pl.DataFrame(scores)
+
+
+def choose_strength(steps: pl.DataFrame, floor: float, actions: tuple[int, ...], seed: int) -> float:
+    """The prior strength with the best held-out log-likelihood."""
+    scores = held_out_log_likelihood(steps, floor=floor, actions=actions, seed=seed)
+    return float(scores.sort("log_likelihood", descending=True)["prior_strength"][0])
 
 
 class BehaviorPolicy:
@@ -154,20 +203,34 @@ class BehaviorPolicy:
         """The ledger's ``behavior_policy`` rows: scope, key, state_key, action, probability, count."""
         self._check_fitted()
         cols = [*self.split_, "state_key", "action", "probability", pl.col("count").cast(pl.Int64)]
-        return pl.concat(
-            [
-                self.premise_.select(
-                    pl.lit("premise").alias("scope"), pl.col("premise_id").alias("key"), *cols
-                ),
-                self.cohort_.select(pl.lit("cohort").alias("scope"), pl.col("cohort").alias("key"), *cols),
-                self.portfolio_.select(pl.lit("portfolio").alias("scope"), pl.lit("all").alias("key"), *cols),
-            ]
-        ).sort("scope", "key", *self.split_, "state_key", "action")
+        return (
+            pl.concat(
+                [
+                    self.premise_.select(
+                        pl.lit("premise").alias("scope"), pl.col("premise_id").alias("key"), *cols
+                    ),
+                    self.cohort_.select(
+                        pl.lit("cohort").alias("scope"), pl.col("cohort").alias("key"), *cols
+                    ),
+                    self.portfolio_.select(
+                        pl.lit("portfolio").alias("scope"), pl.lit("all").alias("key"), *cols
+                    ),
+                ]
+            )
+            .sort("scope", "key", *self.split_, "state_key", "action")
+            .with_columns(
+                pl.lit(self.prior_strength).alias("prior_strength"), pl.lit(self.floor).alias("floor")
+            )
+        )
 
     @classmethod
     def from_table(cls, table: pl.DataFrame, actions: tuple[int, ...] = DEFAULT_ACTIONS) -> BehaviorPolicy:
         """Rebuild a fitted policy from the rows ``table()`` produced (as kept in the warehouse)."""
-        model = cls(actions=actions)
+        model = cls(
+            prior_strength=float(table["prior_strength"][0]) if "prior_strength" in table.columns else 5.0,
+            floor=float(table["floor"][0]) if "floor" in table.columns else 0.01,
+            actions=actions,
+        )
         model.split_ = ["mode"] if "mode" in table.columns else []
         cols = [*model.split_, "state_key", "action", "probability", "count"]
         by_scope = {
@@ -181,3 +244,11 @@ class BehaviorPolicy:
     def _check_fitted(self) -> None:
         if not hasattr(self, "premise_"):
             raise BehaviorInputError("call fit() before asking for probabilities")
+
+
+def fit_behavior(steps: pl.DataFrame, config) -> BehaviorPolicy:
+    """Fit the behaviour model with the configured strength, or the held-out best when 'auto'."""
+    strength = config.behavior_prior_strength
+    if strength == "auto":
+        strength = choose_strength(steps, config.behavior_floor, config.actions, config.seed)
+    return BehaviorPolicy(float(strength), config.behavior_floor, config.actions).fit(steps)

@@ -102,28 +102,24 @@ def print_summary(summary: stages.RunSummary) -> None:
         print("episodes excluded: " + ", ".join(f"{k} {v}" for k, v in sorted(counts.excluded.items())))
     portfolio = savings.filter(pl.col("scope") == "portfolio").select(
         "policy_name",
-        "estimator",
+        "mode",
+        pl.when(pl.col("recommended"))
+        .then(pl.col("estimator") + " *")
+        .otherwise("estimator")
+        .alias("estimator"),
+        "status",
         "n_episodes",
         pl.col("savings_usd_per_episode").round(3),
         pl.col("ci_low").round(3),
         pl.col("ci_high").round(3),
         pl.col("lower_bound_usd").round(3),
         pl.col("ess").round(1),
-        "support_ok",
         pl.col("savings_usd_annual").round(2),
     )
-    horizon = summary.evaluation.horizon.select(
-        "decision_points",
-        "mode",
-        "policy_name",
-        pl.col("mean_decisions").round(1),
-        pl.col("ess").round(1),
-        pl.col("ess_share").round(3),
-        pl.col("max_weight_share").round(3),
+    print(
+        "portfolio savings per episode, USD (95 % interval, lower bound), and per premise per year"
+        " (* recommended estimator):"
     )
-    print("importance-weight spread per choice of decision points (fewer decisions, tamer weights):")
-    print(_table(horizon))
-    print("portfolio savings per episode, USD (95 % interval, lower bound), and per premise per year:")
     print(_table(portfolio))
     print("Estimates only: local codes, program rules and licensed practice govern what is sent to a device.")
 

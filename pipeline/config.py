@@ -66,8 +66,8 @@ class Config:
     """Hours after the return hour charged to the episode (pull-back to comfort)."""
     comfort_penalty_usd_per_degree_hour: float = 0.10
     """Price put on each °C-hour of setback still in force over the recovery window, USD."""
-    behavior_prior_strength: float = 5.0
-    """Pseudo-counts by which a premise's action counts are shrunk toward its cohort's."""
+    behavior_prior_strength: float | str = "auto"
+    """Pseudo-counts shrinking a premise's action counts toward its cohort's; 'auto': best held-out fit."""
     behavior_floor: float = 0.01
     """Smallest behaviour probability assigned to any allowed action."""
     target_epsilon: float = 0.05
@@ -78,6 +78,12 @@ class Config:
     """Level of confidence intervals and of the lower bound."""
     min_ess: float = 10.0
     """Smallest Kish effective sample size at which an estimate counts as supported."""
+    max_weight_share: float = 0.25
+    """Largest share of the total importance weight one episode may carry in a supported estimate."""
+    estimators: tuple[str, ...] = ("weighted_per_decision_is", "weighted_is", "doubly_robust")
+    """Off-policy estimators reported for every candidate (names in pipeline.estimators)."""
+    recommended_estimator: str = "weighted_per_decision_is"
+    """The estimator whose rows are marked recommended."""
     cooling_days_per_year: int = 122
     """Days a year the cooling schedule is in force, for annualising per-episode savings."""
     state: StateSpace = field(default_factory=StateSpace)
@@ -111,6 +117,10 @@ def _coerce(name: str, value: Any) -> Any:
         return Path(value)
     if isinstance(value, list):
         return tuple(value)
+    if name == "behavior_prior_strength":
+        if value == "auto" or (isinstance(value, int | float) and value > 0):
+            return value if value == "auto" else float(value)
+        raise ConfigError(f"behavior_prior_strength must be 'auto' or a positive number, got {value!r}")
     if kind == "int" and not isinstance(value, int):
         raise ConfigError(f"{name} must be a whole number, got {value!r}")
     if kind == "float" and isinstance(value, int | float):

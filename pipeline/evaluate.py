@@ -4,22 +4,33 @@ For each candidate, every logged step gets the target's probability of the
 logged action (``pi``) and the behaviour model's (``b``); the estimators in
 ``pipeline.estimators`` turn those into values per premise, cohort and the
 whole portfolio, with a paired bootstrap interval on savings, a high-confidence
-lower bound and weight diagnostics.
+lower bound and weight diagnostics. Several estimators are reported side by
+side; one is marked recommended, and any estimate whose evidence is too thin
+(low effective sample size, one episode carrying the weight, or actions the
+residents never took) says so instead of giving a number.
+
+Per-premise savings are also shrunk toward their cohort's (empirical Bayes: the
+weight on the premise's own estimate is tau^2 / (tau^2 + se^2), with tau^2 the
+between-premise variance left after the sampling variance), and the shrinkage
+is reported.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from statistics import NormalDist
 
 import numpy as np
 import polars as pl
 
 from pipeline import estimators
-from pipeline.behavior import BehaviorPolicy
+from pipeline.behavior import BehaviorPolicy, fit_behavior
 from pipeline.config import Config
 from pipeline.policies import action_index
+from pipeline.qmodel import FittedQ
 
 SCOPES = (("premise", "premise_id"), ("cohort", "cohort"), ("portfolio", None))
+STATUS_OK, STATUS_THIN = "ok", "insufficient_evidence"
 
 
 @dataclass(frozen=True)
@@ -46,25 +57,37 @@ def _with_scope(frame: pl.DataFrame, scope: str) -> pl.DataFrame:
     return frame.with_columns(pl.lit(scope).alias("scope"), pl.col("group").alias("key")).drop("group")
 
 
+def _model_columns(steps: pl.DataFrame, table: np.ndarray, reward: str, config: Config) -> pl.DataFrame:
+    """q_hat and v_hat from fitted Q evaluation of the target on ``reward``."""
+    fitted = FittedQ(config.state, config.actions).fit(
+        steps.with_columns(pl.col(reward).alias("reward")), table
+    )
+    q_hat, v_hat = fitted.values(steps)
+    return pl.DataFrame({"q_hat": q_hat, "v_hat": v_hat})
+
+
 def evaluate_policy(
     steps: pl.DataFrame,
     pi: np.ndarray,
     b: np.ndarray,
     days: pl.DataFrame,
     config: Config,
-    estimator: str = "weighted_is",
+    table: np.ndarray | None = None,
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
-    """Savings rows and diagnostics of one target policy at every scope.
+    """Savings rows (one per scope, group and estimator) and diagnostics of one target policy.
 
     Parameters
     ----------
     steps : polars.DataFrame
-        Logged decision steps sorted by (episode_id, t), with reward (USD), kwh,
-        recovery_kwh, premise_id and cohort.
+        Logged decision steps sorted by (episode_id, t), with state_key, action,
+        reward (USD), kwh, recovery_kwh, premise_id and cohort.
     pi, b : numpy.ndarray
         Target and behaviour probabilities of each logged action, shape (n_steps,).
     days : polars.DataFrame
         premise_id, cohort and days_observed, for annualising.
+    table : numpy.ndarray, optional
+        The target's probability table (n_states, n_actions), needed for the
+        doubly robust estimator's Q model.
     """
     base = steps.select(
         "episode_id",
@@ -74,66 +97,160 @@ def evaluate_policy(
         "cohort",
         (-(pl.col("kwh") + pl.col("recovery_kwh"))).alias("neg_kwh"),
     ).with_columns(pl.Series("pi", pi), pl.Series("b", b))
-    fn = getattr(estimators, estimator)
+    names = [e for e in config.estimators if e != "doubly_robust" or table is not None]
+    usd_base, kwh_base = base, base.with_columns(pl.col("neg_kwh").alias("reward"))
+    if "doubly_robust" in names:
+        usd_base = pl.concat([base, _model_columns(steps, table, "reward", config)], how="horizontal")
+        neg_kwh = steps.with_columns((-(pl.col("kwh") + pl.col("recovery_kwh"))).alias("neg_kwh"))
+        kwh_base = pl.concat([kwh_base, _model_columns(neg_kwh, table, "neg_kwh", config)], how="horizontal")
     returns = base.group_by("episode_id").agg(pl.col("reward").sum())["reward"]
     # Returns are costs (<= 0); the floor assumes no policy costs more than half again
-    # the costliest logged episode. Stated in the README with the bound.
+    # the costliest logged episode (stated in the README beside the bound).
     bounds = (1.5 * float(returns.min()), 0.0)
     rows, diags = [], []
     for scope, column in SCOPES:
-        frame = _scoped(base, column)
-        usd = fn(frame)
-        behavior = estimators.on_policy_value(frame).select(
+        usd_frame, kwh_frame = _scoped(usd_base, column), _scoped(kwh_base, column)
+        behavior = estimators.on_policy_value(usd_frame).select(
             "group", pl.col("estimate").alias("value_behavior_usd")
         )
-        kwh_frame = frame.with_columns(pl.col("neg_kwh").alias("reward"))
-        kwh_policy = fn(kwh_frame).select("group", (-pl.col("estimate")).alias("kwh_policy"))
         kwh_behavior = estimators.on_policy_value(kwh_frame).select(
             "group", (-pl.col("estimate")).alias("kwh_behavior")
         )
-        interval = estimators.bootstrap_interval(
-            frame,
-            fn,
-            savings=True,
-            level=config.confidence,
-            n_replicates=config.bootstrap_replicates,
-            seed=config.seed,
-        ).select("group", "ci_low", "ci_high")
         bound = estimators.lower_bound(
-            frame, return_bounds=bounds, savings=True, level=config.confidence, seed=config.seed
+            usd_frame, return_bounds=bounds, savings=True, level=config.confidence, seed=config.seed
         ).select("group", pl.col("lower_bound").alias("lower_bound_usd"))
         scope_days = _scoped(days, column).group_by("group").agg(pl.col("days_observed").sum())
-        diag = estimators.diagnostics(frame)
-        joined = (
-            usd.rename({"estimate": "value_policy_usd"})
-            .join(behavior, on="group")
-            .join(kwh_policy, on="group")
-            .join(kwh_behavior, on="group")
-            .join(interval, on="group")
-            .join(bound, on="group")
-            .join(scope_days, on="group", how="left")
-            .join(diag.select("group", "n_unsupported_steps"), on="group", how="left")
-        )
-        per_year = pl.col("n_episodes") / pl.col("days_observed") * config.cooling_days_per_year
-        rows.append(
-            _with_scope(
-                joined.with_columns(
-                    (pl.col("value_policy_usd") - pl.col("value_behavior_usd")).alias(
-                        "savings_usd_per_episode"
-                    ),
-                    ((pl.col("ess") >= config.min_ess) & (pl.col("n_unsupported_steps") == 0)).alias(
-                        "support_ok"
-                    ),
-                ).with_columns(
-                    (pl.col("savings_usd_per_episode") * per_year).alias("savings_usd_annual"),
-                    ((pl.col("kwh_behavior") - pl.col("kwh_policy")) * per_year).alias("savings_kwh_annual"),
-                ),
-                scope,
+        diag = estimators.diagnostics(usd_frame)
+        for name in names:
+            fn = getattr(estimators, name)
+            interval = estimators.bootstrap_interval(
+                usd_frame,
+                fn,
+                savings=True,
+                level=config.confidence,
+                n_replicates=config.bootstrap_replicates,
+                seed=config.seed,
+            ).select("group", "ci_low", "ci_high")
+            joined = (
+                fn(usd_frame)
+                .rename({"estimate": "value_policy_usd"})
+                .join(behavior, on="group")
+                .join(fn(kwh_frame).select("group", (-pl.col("estimate")).alias("kwh_policy")), on="group")
+                .join(kwh_behavior, on="group")
+                .join(interval, on="group")
+                .join(bound, on="group")
+                .join(scope_days, on="group", how="left")
+                .join(diag.select("group", "n_unsupported_steps"), on="group", how="left")
+                .with_columns(pl.lit(name).alias("estimator"))
             )
-        )
+            rows.append(_with_scope(joined, scope))
         diags.append(_with_scope(diag, scope))
-    savings = pl.concat(rows).with_columns(pl.lit(estimator).alias("estimator"))
-    return savings, pl.concat(diags)
+    premise_cohort = steps.select("premise_id", "cohort").unique()
+    return _finish_savings(pl.concat(rows), premise_cohort, config), pl.concat(diags)
+
+
+def _finish_savings(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config) -> pl.DataFrame:
+    """Savings, status, recommendation, shrinkage toward the cohort and annual figures."""
+    supported = (
+        (pl.col("ess") >= config.min_ess)
+        & (pl.col("n_unsupported_steps") == 0)
+        & (pl.col("max_weight_share") <= config.max_weight_share)
+        & pl.col("value_policy_usd").is_finite()
+    )
+    rows = rows.with_columns(
+        (pl.col("value_policy_usd") - pl.col("value_behavior_usd")).alias("savings_usd_per_episode"),
+        (pl.col("kwh_behavior") - pl.col("kwh_policy")).alias("savings_kwh_per_episode"),
+        supported.alias("support_ok"),
+        pl.when(supported).then(pl.lit(STATUS_OK)).otherwise(pl.lit(STATUS_THIN)).alias("status"),
+        (pl.col("estimator") == config.recommended_estimator).alias("recommended"),
+    )
+    rows = _shrink_to_cohort(rows, premise_cohort, config)
+    per_year = pl.col("n_episodes") / pl.col("days_observed") * config.cooling_days_per_year
+    thin = pl.col("status") == STATUS_THIN
+    hidden = ["savings_usd_per_episode", "ci_low", "ci_high", "savings_kwh_per_episode"]
+    return rows.with_columns(
+        (pl.col("savings_shrunk_usd_per_episode") * per_year).alias("savings_usd_annual"),
+        (pl.col("savings_kwh_per_episode") * per_year).alias("savings_kwh_annual"),
+    ).with_columns(
+        *(pl.when(thin).then(None).otherwise(pl.col(c)).alias(c) for c in hidden),
+        pl.when(thin & (pl.col("scope") != "premise"))
+        .then(None)
+        .otherwise(pl.col("savings_usd_annual"))
+        .alias("savings_usd_annual"),
+        pl.when(thin).then(None).otherwise(pl.col("savings_kwh_annual")).alias("savings_kwh_annual"),
+    )
+
+
+def _shrink_to_cohort(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config) -> pl.DataFrame:
+    """Empirical-Bayes shrinkage of each premise's savings toward its cohort's (same estimator)."""
+    z = NormalDist().inv_cdf(0.5 + config.confidence / 2)
+    keys = ["cohort", "estimator"]
+    savings = pl.col("savings_usd_per_episode")
+    se2 = ((pl.col("ci_high") - pl.col("ci_low")) / (2 * z)) ** 2
+    premises = (
+        rows.filter(pl.col("scope") == "premise")
+        .join(premise_cohort.select(pl.col("premise_id").alias("key"), "cohort"), on="key", how="left")
+        .with_columns(se2.alias("se2"))
+        .with_columns((savings.is_finite() & pl.col("se2").is_finite()).alias("usable"))
+    )
+    # Between-premise variance beyond what sampling noise explains (method of moments).
+    spread = (
+        premises.filter("usable")
+        .group_by(keys)
+        .agg((savings.var() - pl.col("se2").mean()).clip(lower_bound=0.0).alias("tau2"))
+    )
+    cohort_savings = rows.filter(pl.col("scope") == "cohort").select(
+        pl.col("key").alias("cohort"), "estimator", savings.alias("cohort_savings")
+    )
+    weight = (
+        pl.when(pl.col("usable"))
+        .then(pl.col("tau2") / (pl.col("tau2") + pl.col("se2")))
+        .otherwise(0.0)
+        .fill_null(0.0)
+        .fill_nan(0.0)
+    )
+    shrunk = (
+        premises.join(spread, on=keys, how="left")
+        .join(cohort_savings, on=keys, how="left")
+        .with_columns(weight.alias("own_weight"))
+        .with_columns(
+            pl.when(pl.col("own_weight") > 0)
+            .then(pl.col("own_weight") * savings + (1 - pl.col("own_weight")) * pl.col("cohort_savings"))
+            .otherwise(pl.col("cohort_savings"))
+            .alias("savings_shrunk_usd_per_episode"),
+            (1 - pl.col("own_weight")).alias("shrinkage"),
+        )
+        .drop("se2", "usable", "tau2", "cohort_savings", "own_weight", "cohort")
+    )
+    others = rows.filter(pl.col("scope") != "premise").with_columns(
+        savings.alias("savings_shrunk_usd_per_episode"), pl.lit(0.0).alias("shrinkage")
+    )
+    return pl.concat([shrunk, others], how="diagonal_relaxed")
+
+
+COLUMNS = [
+    "policy_name",
+    "mode",
+    "scope",
+    "key",
+    "estimator",
+    "recommended",
+    "status",
+    "n_episodes",
+    "value_behavior_usd",
+    "value_policy_usd",
+    "savings_usd_per_episode",
+    "ci_low",
+    "ci_high",
+    "lower_bound_usd",
+    "savings_shrunk_usd_per_episode",
+    "shrinkage",
+    "ess",
+    "max_weight_share",
+    "support_ok",
+    "savings_usd_annual",
+    "savings_kwh_annual",
+]
 
 
 def evaluate_candidates(
@@ -149,35 +266,17 @@ def evaluate_candidates(
             in_mode = steps.filter(pl.col("mode") == mode)
             b = behavior.probabilities(in_mode)
             pi = target_probabilities(in_mode, table, config)
-            s, d = evaluate_policy(in_mode, pi, b, days, config)
+            s, d = evaluate_policy(in_mode, pi, b, days, config, table)
             tag = (pl.lit(rule.name).alias("policy_name"), pl.lit(mode).alias("mode"))
             savings.append(s.with_columns(*tag))
             diags.append(d.with_columns(*tag))
-    columns = [
-        "policy_name",
-        "mode",
-        "scope",
-        "key",
-        "estimator",
-        "n_episodes",
-        "value_behavior_usd",
-        "value_policy_usd",
-        "savings_usd_per_episode",
-        "ci_low",
-        "ci_high",
-        "lower_bound_usd",
-        "ess",
-        "max_weight_share",
-        "support_ok",
-        "savings_usd_annual",
-        "savings_kwh_annual",
-    ]
     savings_frame = (
         pl.concat(savings)
-        .select(*columns)
+        .select(*COLUMNS)
         .with_columns(
             pl.lit(config.comfort_penalty_usd_per_degree_hour).alias("comfort_penalty_usd_per_degree_hour")
         )
+        .sort("policy_name", "mode", "scope", "key", "estimator")
     )
     return Evaluation(
         savings=savings_frame,
@@ -199,7 +298,6 @@ def policy_frame(name: str, table: np.ndarray, config: Config) -> pl.DataFrame:
             "state_key": np.repeat(np.arange(n_states, dtype=np.int64), n_actions),
             "action": np.tile(np.asarray(config.actions, dtype=np.int64), n_states),
             "probability": table.reshape(-1),
-            "q_value": np.full(n_states * n_actions, np.nan),
         }
     )
 
@@ -220,9 +318,7 @@ def horizon_report(steps_by_choice: dict[str, pl.DataFrame], config: Config) -> 
     """
     rows = []
     for choice, steps in steps_by_choice.items():
-        behavior = BehaviorPolicy(config.behavior_prior_strength, config.behavior_floor, config.actions).fit(
-            steps
-        )
+        behavior = fit_behavior(steps, config)
         for mode in sorted(steps["mode"].unique()):
             in_mode = steps.filter(pl.col("mode") == mode)
             b = behavior.probabilities(in_mode)

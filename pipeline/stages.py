@@ -14,7 +14,7 @@ import polars as pl
 from pipeline import evaluate as evaluation
 from pipeline import ingest as ingestion
 from pipeline import store
-from pipeline.behavior import BehaviorPolicy
+from pipeline.behavior import BehaviorPolicy, fit_behavior
 from pipeline.config import Config
 from pipeline.episodes import EpisodeCounts, build, episode_summary, load_episodes, load_steps, steps_for
 from pipeline.ledger import Run
@@ -81,7 +81,7 @@ def _steps(config: Config) -> pl.DataFrame:
 def learn(config: Config, run: Run) -> int:
     """Estimate the behaviour policy; keep it in the warehouse and write it to the ledger."""
     steps = _steps(config)
-    model = BehaviorPolicy(config.behavior_prior_strength, config.behavior_floor, config.actions).fit(steps)
+    model = fit_behavior(steps, config)
     table = model.table()
     with store.warehouse(config.warehouse_path) as con:
         con.register("behavior_frame", table.to_arrow())

@@ -57,3 +57,20 @@ def test_actions_outside_the_set_are_refused():
     """A logged action of +3 °C is an input error, not silently clipped."""
     with pytest.raises(BehaviorInputError, match="outside the action set"):
         BehaviorPolicy().fit(STEPS.with_columns(pl.lit(3).alias("action")))
+
+
+def test_held_out_likelihood_prefers_light_pooling_when_premises_differ():
+    """Two premises with opposite habits: a weak prior predicts held-out actions better than a strong one."""
+    from pipeline.behavior import held_out_log_likelihood
+
+    rng = np.random.default_rng(3)
+    n = 400
+    premise = np.where(np.arange(n) < n // 2, "A", "B")
+    p_up = np.where(premise == "A", 0.9, 0.1)
+    action = np.where(rng.random(n) < p_up, 1, 0)
+    steps = pl.DataFrame(
+        {"episode_id": np.arange(n), "premise_id": premise, "cohort": "c", "state_key": 1, "action": action}
+    )
+    scores = held_out_log_likelihood(steps, strengths=(0.5, 500.0), floor=0.01, actions=(-1, 0, 1))
+    weak, strong = scores.sort("prior_strength")["log_likelihood"].to_list()
+    assert weak > strong

@@ -67,3 +67,32 @@ def test_target_equal_to_behaviour_gives_zero_savings_at_every_scope():
     portfolio = savings.filter(pl.col("scope") == "portfolio").row(0, named=True)
     assert portfolio["n_episodes"] == n_episodes and portfolio["ess"] == pytest.approx(n_episodes)
     assert diagnostics.filter(pl.col("scope") == "premise").height == 2
+
+
+def test_premise_savings_shrink_toward_cohort_by_the_empirical_bayes_weight():
+    """Weight on a premise's own estimate is tau^2 / (tau^2 + se^2) (method of moments, e.g. Efron 2010)."""
+    from statistics import NormalDist
+
+    from pipeline.evaluate import _shrink_to_cohort
+
+    z = NormalDist().inv_cdf(0.975)
+    own = [1.0, -1.0, 3.0, -3.0]
+    se = 1.0
+    rows = pl.DataFrame(
+        {
+            "scope": ["premise"] * 4 + ["cohort"],
+            "key": ["A", "B", "C", "D", "c"],
+            "estimator": "weighted_is",
+            "savings_usd_per_episode": [*own, 0.5],
+            "ci_low": [s - z * se for s in own] + [0.0],
+            "ci_high": [s + z * se for s in own] + [1.0],
+        }
+    )
+    cohorts = pl.DataFrame({"premise_id": ["A", "B", "C", "D"], "cohort": "c"})
+    out = _shrink_to_cohort(rows, cohorts, Config()).filter(pl.col("scope") == "premise").sort("key")
+    tau2 = np.var(own, ddof=1) - se**2
+    weight = tau2 / (tau2 + se**2)
+    np.testing.assert_allclose(out["shrinkage"].to_numpy(), 1 - weight)
+    np.testing.assert_allclose(
+        out["savings_shrunk_usd_per_episode"].to_numpy(), [weight * s + (1 - weight) * 0.5 for s in own]
+    )

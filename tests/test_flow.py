@@ -50,9 +50,12 @@ def test_analyst_selects_savings_per_premise_with_the_sql_views(flow_run):
     out, _ = flow_run
     con = store.connect_ledger(out / "ledger")
     rows = con.execute(
-        "select premise_id, policy_name, savings_usd_per_episode, ci_low, ci_high from savings_by_premise"
+        "select premise_id, policy_name, savings_usd_per_episode, ci_low, ci_high, status, shrinkage"
+        " from savings_by_premise"
     ).fetchall()
-    assert rows and all(r[3] <= r[4] for r in rows)
+    assert rows and all(r[3] <= r[4] for r in rows if r[5] == "ok")
+    assert all(r[2] is None for r in rows if r[5] == "insufficient_evidence")
+    assert all(0.0 <= r[6] <= 1.0 for r in rows)
     premises = {r[0] for r in rows}
     assert (
         len(premises)
