@@ -7,6 +7,7 @@ loads); 2 for unusable settings or a stage that cannot run.
 from __future__ import annotations
 
 import argparse
+import datetime as dt
 import sys
 from pathlib import Path
 from typing import Any
@@ -49,6 +50,28 @@ def build_parser() -> argparse.ArgumentParser:
         "evaluate": "estimate each candidate policy's value and savings off-policy",
         "run": "all stages in order as one Prefect flow, then print a summary",
     }
+    sim = sub.add_parser(
+        "simulate",
+        help="write an invented demo lake (with its true values) from a seed",
+        description="Simulate homes and write landing files a utility would receive, plus truth/ side files "
+        "the pipeline never reads. The same seed gives the same files, bit for bit.",
+    )
+    sim.add_argument("--premises", type=int, default=60, help="number of homes (default 60)")
+    sim.add_argument("--seed", type=int, default=20260601, help="seed of every draw (default 20260601)")
+    sim.add_argument("--out", type=Path, required=True, help="folder to write landing/ and truth/ into")
+    sim.add_argument("--start", type=dt.date.fromisoformat, default=dt.date(2026, 6, 1), help="first day")
+    sim.add_argument("--days", type=int, default=92, help="number of days (default 92)")
+    sim.add_argument(
+        "--hidden-confounder",
+        action="store_true",
+        help="residents also react to a daily state no file records (shows what confounding does)",
+    )
+    sim.add_argument("--manifest", action="store_true", help="write MANIFEST.sha256 of the generated files")
+    sim.add_argument(
+        "--policy-values",
+        action="store_true",
+        help="also roll out the default candidates for their true values",
+    )
     for name, text in helps.items():
         p = sub.add_parser(name, help=text, description=text)
         _common(p)
@@ -127,6 +150,12 @@ def print_summary(summary: stages.RunSummary) -> None:
 def main(argv: list[str] | None = None) -> int:
     """Entry point of ``thermal-ledger``."""
     args = build_parser().parse_args(argv)
+    if args.stage == "simulate":
+        from pipeline.simulate import main_simulate
+
+        summary = main_simulate(args)
+        print(", ".join(f"{k}: {v}" for k, v in summary.items() if not isinstance(v, dict | list)))
+        return EXIT_OK
     try:
         overrides = overrides_from(args)
         config = config_module.load(args.config, overrides)
@@ -154,7 +183,7 @@ def main(argv: list[str] | None = None) -> int:
             print(_table(stages.evaluate(config, run).savings))
         stages.finish(config, run)
         return EXIT_OK
-    except (ConfigError, stages.StageError) as exc:
+    except (ConfigError, stages.StageError, IngestError, StoreError) as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)
         return EXIT_USAGE
 
