@@ -17,6 +17,8 @@ import polars as pl
 from pipeline import config as config_module
 from pipeline import stages
 from pipeline.config import ConfigError
+from pipeline.ingest import IngestError
+from pipeline.store import StoreError
 from pipeline.ledger import Run
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE = 0, 1, 2
