@@ -18,8 +18,8 @@ from pipeline import config as config_module
 from pipeline import stages
 from pipeline.config import ConfigError
 from pipeline.ingest import IngestError
-from pipeline.store import StoreError
 from pipeline.ledger import Run
+from pipeline.store import StoreError
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE = 0, 1, 2
 
