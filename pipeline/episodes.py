@@ -48,6 +48,7 @@ def _params(config: Config) -> dict[str, object]:
         "schedule_max_ratio": config.schedule_max_load_ratio,
         "hold_from": config.setback_hold_hours[0],
         "hold_to": config.setback_hold_hours[1],
+        "presence_sources": list(config.presence_sources),
     }
 
 

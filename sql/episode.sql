@@ -77,6 +77,7 @@ labelled as (
         w.mode,
         f.presence_source,
         case
+            when not list_contains($presence_sources, f.presence_source) then 'presence_source_not_used'
             when w.window_hours < w.n_away_hours + 1 + $recovery_hours then 'open_at_data_end'
             when w.short_hours > 0 then 'data_gap'
             when w.unpriced_hours > 0 then 'missing_price'

@@ -207,3 +207,10 @@ def test_schedule_fallback_is_refused_when_the_load_does_not_drop(tmp_path):
     tuesday = episodes.filter(episodes["start_local"].dt.day() == 2)
     assert tuesday["excluded_reason"].to_list() == ["implausible_schedule"]
     assert steps.height == 0
+
+
+def test_untrusted_evidence_of_absence_is_excluded_with_its_reason(tmp_path):
+    """When only occupancy flags are trusted, a setback-hold episode is listed but not used."""
+    rows = [(_utc(0), 24, ""), (_utc(8), 26, ""), (_utc(12, 20), 24, "")]
+    _, counts, steps, _ = _lake(tmp_path, rows, presence_sources=["occupancy_flag"])
+    assert steps.height == 0 and counts.excluded == {"presence_source_not_used": 1}
