@@ -91,7 +91,7 @@ def main() -> None:
         build_seconds = time.perf_counter() - started
         steps = load_steps(con)
     print(
-        f"episode build (hourly grid, episodes, steps; SQL): {build_seconds:.1f} s for {meter_rows:,} meter rows"
+        f"episode build (SQL): {build_seconds:.1f} s for {meter_rows:,} meter rows"
         f" -> {counts.hours:,} premise-hours, {counts.episodes_used:,} episodes, {counts.steps:,} steps"
         f" ({counts.hours / build_seconds:,.0f} premise-hours/s)"
     )
