@@ -76,14 +76,14 @@ def behavior_probs(
     # Away from the return: close in on the habitual depth, like holding still once there, and lean
     # toward deeper setbacks on hot or peak hours.
     pull = (np.asarray(keenness) + heat - 1.0 * hot)[..., None]
-    bonus = np.where(offset == 0, 0.6, 1.6)[..., None]
+    bonus = np.where(offset == 0, 0.6, 2.2)[..., None]
     away = (
-        -2.2 * np.abs(new - np.asarray(depth_pref)[..., None])
+        -np.where(offset == 0, 2.2, 1.2)[..., None] * np.abs(new - np.asarray(depth_pref)[..., None])
         + bonus * hold
         + 0.5 * pull * np.clip(new, 0, None)
     )
     # Near the return: all the way back, part of the way, or keep the setback (the keen more often).
-    keep = (-1.0 + 0.6 * np.asarray(keenness) - 0.8 * hot)[..., None]
+    keep = (-1.5 + 0.6 * np.asarray(keenness) - 0.8 * hot)[..., None]
     back = np.select(
         [new == 0, hold, (new > 0) & (new < offset[..., None]), new < 0],
         [np.zeros_like(keep), keep + np.zeros(new.shape), np.full(new.shape, -1.2), np.full(new.shape, -3.0)],
