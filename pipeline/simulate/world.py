@@ -334,7 +334,7 @@ def build_world(params: SimParams) -> World:
 
 
 def _off_the_hour(minutes: np.ndarray) -> np.ndarray:
-    """Move comings and goings off hh:00, which belongs to the hourly setpoint decision."""
+    """Move comings and goings off hh:00, which belongs to the setpoint decisions."""
     return minutes + (minutes % 60 == 0)
 
 
