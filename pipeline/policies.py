@@ -14,7 +14,7 @@ import numpy as np
 
 from pipeline.features import StateSpace
 
-DEFAULT_ACTIONS: tuple[int, ...] = (-1, 0, 1)
+DEFAULT_ACTIONS: tuple[int, ...] = (-2, -1, 0, 1, 2)
 
 
 class PolicyError(ValueError):
@@ -27,8 +27,11 @@ class SetbackRule:
 
     Offsets are in the setback direction (raising a cooling setpoint, lowering a
     heating one). At each decision the rule aims for
-    ``min(depth_c, steps_left - 1 - lead_steps)`` (never below zero) and moves
-    toward it as far as the action set allows in one decision.
+    ``min(depth_c, (steps_left - 1 - lead_steps) * r)`` (never below zero), where
+    ``r`` is the largest restore the action set allows in one decision, and moves
+    toward it as far as the action set allows. So with actions -1..+1 it eases
+    back one degree per decision, and with -2..+2 a 2 °C setback is held until
+    ``lead_steps`` decisions before the last and restored in one move.
     """
 
     name: str
@@ -37,16 +40,16 @@ class SetbackRule:
     lead_steps: int = 0
     """Decision steps before return by which comfort is restored."""
 
-    def target_offset(self, steps_left: np.ndarray) -> np.ndarray:
-        """Offset the rule aims for at each step, °C."""
-        return np.clip(np.asarray(steps_left) - 1 - self.lead_steps, 0, self.depth_c)
+    def target_offset(self, steps_left: np.ndarray, max_restore_c: int = 1) -> np.ndarray:
+        """Offset the rule aims for at each step, °C, when one decision can restore ``max_restore_c``."""
+        return np.clip((np.asarray(steps_left) - 1 - self.lead_steps) * max_restore_c, 0, self.depth_c)
 
     def actions(
         self, space: StateSpace, keys: np.ndarray, actions: tuple[int, ...] = DEFAULT_ACTIONS
     ) -> np.ndarray:
         """The action (°C change, in the setback direction) the rule takes in each state."""
         f = space.decode(keys)
-        gap = self.target_offset(f["steps_left"]) - f["offset"]
+        gap = self.target_offset(f["steps_left"], max(1, -min(actions))) - f["offset"]
         return np.clip(gap, min(actions), max(actions)).astype(np.int64)
 
     def table(

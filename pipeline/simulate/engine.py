@@ -1,22 +1,28 @@
 """Episodes, residents' choices, the thermal run over the whole grid, and episode returns.
 
-Decision process (the pipeline cuts episodes the same way):
+Decision process (the pipeline cuts episodes the same way, ``sql/step.sql`` with
+``decision_points = 'anchored'``):
 
 * An away episode of a premise on a local day is the run of fully unoccupied
   local clock hours h_0 .. h_{n-1} (n >= 1). The return hour h_n is partly away;
   it and the ``recovery_hours`` hours after it form the recovery window.
-* At h_t:00 the resident picks a_t in {-1, 0, +1} (°C, raising the cooling
-  setpoint is +1); the setpoint during h_t is sp_t = sp_{t-1} + a_t with
-  sp_{-1} = comfort. The setpoint sp_{n-1} stays in force until the resident
-  walks in during h_n and restores comfort.
-* State s_t = StateSpace().encode(local hour of h_t, degrees(outdoor °C
-  observed at h_t:00), price tier of h_t, sp_{t-1} - comfort, n - t).
-* Step reward r_t = -(kWh of hour h_t) * (price of h_t), kWh being the meter's
-  whole-house reads. The last step also carries the recovery cost and the
-  comfort penalty, so the episode return is
+* Decisions are anchored to events: h_0 (departure), every h_k (k >= 1) whose
+  price tier is strictly above that of h_{k-1}, and h_{n-1} (one hour before
+  the return hour), without repeats. Step j runs from decision hour d_j up to
+  the hour before d_{j+1}; the last step runs through h_{n-1}.
+* At d_j:00 the resident picks a_j in ``DEFAULT_ACTIONS`` (°C, raising the
+  cooling setpoint is positive); the setpoint sp_j = sp_{j-1} + a_j (sp_{-1} =
+  comfort) is held through step j. The last setpoint stays in force until the
+  resident walks in during h_n and restores comfort.
+* State s_j = StateSpace().encode(local hour of d_j, degrees(outdoor °C
+  observed at d_j:00), price tier of d_j, sp_{j-1} - comfort, D - j), D being
+  the number of decisions.
+* Step reward r_j = -sum over the step's hours of kWh * price, kWh being the
+  meter's whole-house reads. The last step also carries the recovery cost and
+  the comfort penalty, so the episode return is
 
       G = -sum_{h in steps and recovery window} kWh_h * price_h - comfort_penalty,
-      comfort_penalty = penalty_usd_per_degree_hour * max(0, sp_{n-1} - comfort) * recovery_hours.
+      comfort_penalty = penalty_usd_per_degree_hour * max(0, sp_{D-1} - comfort) * recovery_hours.
 
   See ``comfort_penalty`` and ``episode_return``.
 """
@@ -30,7 +36,7 @@ import numpy as np
 import polars as pl
 
 from pipeline.simulate import physics
-from pipeline.simulate.behavior import allowed, behavior_probs, mask_and_normalise
+from pipeline.simulate.behavior import ACTIONS, allowed, behavior_probs, mask_and_normalise
 from pipeline.simulate.params import SimulationError
 from pipeline.simulate.world import STREAM_CHOICE, World, away_window, stream
 
@@ -61,20 +67,44 @@ def episode_return(
 
 @dataclass(frozen=True)
 class Episodes:
-    """Away episodes of a world, one entry per episode."""
+    """Away episodes of a world, one entry per episode; hour arrays are (n_episodes, MAX_STEPS)."""
 
     home: np.ndarray
     """Premise index."""
     day: np.ndarray
     """Local day index."""
     n: np.ndarray
-    """Decision steps."""
+    """Fully-away hours."""
     h0: np.ndarray
-    """Grid hour of the first decision step."""
+    """Grid hour of the first fully-away hour."""
+    decision: np.ndarray
+    """Whether away hour t (t < n) is a decision hour."""
+
+    @property
+    def n_decisions(self) -> np.ndarray:
+        """Decisions (steps) per episode."""
+        return self.decision.sum(axis=1)
+
+    @property
+    def step_of_hour(self) -> np.ndarray:
+        """Step each away hour belongs to (meaningless where t >= n)."""
+        return np.cumsum(self.decision, axis=1) - 1
+
+    @property
+    def decision_hour(self) -> np.ndarray:
+        """Away hour t of decision j, valid where j < n_decisions (0 elsewhere)."""
+        m = len(self.n)
+        out = np.zeros((m, MAX_STEPS), dtype=np.int64)
+        row, t = np.nonzero(self.decision)
+        out[row, self.step_of_hour[row, t]] = t
+        return out
 
 
 def find_episodes(world: World) -> Episodes:
-    """Runs of fully-away local hours on each away day, skipping days whose hours fall off the grid."""
+    """Runs of fully-away local hours on each away day and their decision hours.
+
+    Days whose hours fall off the grid are skipped.
+    """
     d = world.days
     first = -(-d.depart_min // 60)
     ret_hour = d.return_min // 60
@@ -86,14 +116,22 @@ def find_episodes(world: World) -> Episodes:
     keep = (h0 >= 0) & (h0 + n_ep + world.params.recovery_hours < world.clock.n_hours)
     if (n_ep > MAX_STEPS).any():
         raise SimulationError(f"an away episode has more than {MAX_STEPS} steps; shorten the away windows")
-    return Episodes(home[keep], day[keep], n_ep[keep], h0[keep])
+    home, day, n_ep, h0 = home[keep], day[keep], n_ep[keep], h0[keep]
+    t = np.arange(MAX_STEPS)[None, :]
+    inside = t < n_ep[:, None]
+    hours = np.where(inside, h0[:, None] + t, 0)
+    tier = world.tariffs.tier[world.homes.plan[home][:, None], world.homes.tz[home][:, None], hours]
+    rises = np.zeros_like(inside)
+    rises[:, 1:] = tier[:, 1:] > tier[:, :-1]
+    decision = inside & ((t == 0) | (t == (n_ep - 1)[:, None]) | rises)
+    return Episodes(home, day, n_ep, h0, decision)
 
 
 Chooser = Callable[[np.ndarray, np.ndarray, np.ndarray], np.ndarray]
 
 
 def table_chooser(world: World, probs: np.ndarray) -> Chooser:
-    """Chooser reading a policy table (n_states, 3) or per-premise tables (n_premises, n_states, 3)."""
+    """Chooser reading a policy table (n_states, n_actions) or per-premise tables (n_premises, ...)."""
     probs = np.asarray(probs, dtype=float)
     if probs.ndim == 2:
         return lambda keys, home, day: probs[keys]
@@ -110,6 +148,7 @@ def behavior_chooser(world: World) -> Chooser:
             keys,
             h.depth_pref[home],
             h.keenness[home],
+            h.restore_lead[home],
             h.comfort_cool_c[home],
             p.cool_band_c,
             world.days.feeling_hot[home, day],
@@ -120,20 +159,32 @@ def behavior_chooser(world: World) -> Chooser:
 
 @dataclass(frozen=True)
 class Rollout:
-    """Choices of one policy on one world: arrays (n_episodes, MAX_STEPS), valid where t < n."""
+    """Choices of one policy on one world: arrays (n_episodes, MAX_STEPS) by decision j, valid where
+    j < n_decisions."""
 
     state_key: np.ndarray
-    """State key at each step."""
+    """State key at each decision."""
     action: np.ndarray
     """Action taken, °C."""
     prob: np.ndarray
     """Probability the acting policy gave the action taken."""
     offset: np.ndarray
-    """Setback offset in force during the step, sp_t - comfort, °C."""
+    """Setback offset in force during the step, sp_j - comfort, °C."""
+
+    def final_offset(self, episodes: Episodes) -> np.ndarray:
+        """Offset in force at the return, °C, one per episode."""
+        m = len(episodes.n)
+        return self.offset[np.arange(m), episodes.n_decisions - 1] if m else np.zeros(0, dtype=np.int64)
+
+    def hour_offset(self, episodes: Episodes) -> np.ndarray:
+        """Offset in force during each away hour t, (n_episodes, MAX_STEPS), 0 where t >= n."""
+        step = np.clip(episodes.step_of_hour, 0, MAX_STEPS - 1)
+        inside = np.arange(MAX_STEPS)[None, :] < episodes.n[:, None]
+        return np.where(inside, np.take_along_axis(self.offset, step, axis=1), 0)
 
 
 def roll(world: World, episodes: Episodes, chooser: Chooser, choice_stream: int = 0) -> Rollout:
-    """Draw every episode's actions step by step; uniforms come from each premise's choice stream."""
+    """Draw every episode's actions decision by decision; uniforms come from each premise's choice stream."""
     p, h, c = world.params, world.homes, world.clock
     n_days = p.days
     uniforms = np.zeros((len(h.tz), n_days, MAX_STEPS))
@@ -148,26 +199,27 @@ def roll(world: World, episodes: Episodes, chooser: Chooser, choice_stream: int 
     home, tz = episodes.home, h.tz[episodes.home]
     comfort = h.comfort_cool_c[home]
     station, plan = h.station[home], h.plan[home]
-    for t in range(int(episodes.n.max(initial=0))):
-        act = t < episodes.n
-        hour = np.where(act, episodes.h0 + t, 0)
+    n_dec, dec_hour = episodes.n_decisions, episodes.decision_hour
+    for j in range(int(n_dec.max(initial=0))):
+        act = j < n_dec
+        hour = np.where(act, episodes.h0 + dec_hour[:, j], 0)
         k = p.state.encode(
             c.local_hour[tz, hour],
             p.state.degrees(world.weather.temp_c[station, hour]),
             world.tariffs.tier[plan, tz, hour],
             offset,
-            episodes.n - t,
+            n_dec - j,
         )
         ok = allowed(offset, comfort, p.cool_band_c, p.state)
         probs = mask_and_normalise(chooser(k, home, episodes.day), ok)
-        u = uniforms[home, episodes.day, t]
-        idx = np.minimum((u[:, None] >= np.cumsum(probs, axis=1)).sum(axis=1), 2)
-        a = np.where(act, idx - 1, 0)
+        u = uniforms[home, episodes.day, j]
+        idx = np.minimum((u[:, None] >= np.cumsum(probs, axis=1)).sum(axis=1), len(ACTIONS) - 1)
+        a = np.where(act, ACTIONS[idx], 0)
         offset = offset + a
-        keys[:, t] = np.where(act, k, 0)
-        acts[:, t] = a
-        prob[:, t] = np.where(act, probs[np.arange(m), idx], 1.0)
-        offs[:, t] = offset
+        keys[:, j] = np.where(act, k, 0)
+        acts[:, j] = a
+        prob[:, j] = np.where(act, probs[np.arange(m), idx], 1.0)
+        offs[:, j] = offset
     return Rollout(keys, acts, prob, offs)
 
 
@@ -179,9 +231,8 @@ def away_setpoints(world: World, episodes: Episodes, rollout: Rollout) -> np.nda
     valid = t < episodes.n[:, None]
     rows = (episodes.h0[:, None] + t)[valid]
     cols = np.broadcast_to(episodes.home[:, None], valid.shape)[valid]
-    sp[rows, cols] += rollout.offset[valid]
-    last = rollout.offset[np.arange(len(episodes.n)), episodes.n - 1] if len(episodes.n) else np.zeros(0)
-    sp[episodes.h0 + episodes.n, episodes.home] += last
+    sp[rows, cols] += rollout.hour_offset(episodes)[valid]
+    sp[episodes.h0 + episodes.n, episodes.home] += rollout.final_offset(episodes)
     return sp
 
 
@@ -259,31 +310,39 @@ def hourly(meter_kwh: np.ndarray) -> np.ndarray:
     return meter_kwh.reshape(-1, 4, meter_kwh.shape[1]).sum(axis=1)
 
 
-def episode_frame(world: World, episodes: Episodes, rollout: Rollout, run: Run) -> pl.DataFrame:
-    """One row per episode: premise, start (UTC), steps, return, kWh and penalty."""
+def _hour_costs(world: World, episodes: Episodes, run: Run) -> tuple[np.ndarray, np.ndarray]:
+    """kWh and cost, USD, of each episode hour from h_0 through the recovery window, (n_episodes, k)."""
     p, h = world.params, world.homes
     kwh_h = hourly(run.meter_kwh)
     price = world.tariffs.price[h.plan, h.tz][:, : world.clock.n_hours].T
-    m = len(episodes.n)
     t = np.arange(MAX_STEPS + p.recovery_hours + 1)[None, :]
-    hours = episodes.h0[:, None] + t
-    in_steps = t < episodes.n[:, None]
     in_window = t <= (episodes.n + p.recovery_hours)[:, None]
-    hours = np.where(in_window, hours, 0)
+    hours = np.where(in_window, episodes.h0[:, None] + t, 0)
     cols = np.broadcast_to(episodes.home[:, None], hours.shape)
     e = np.where(in_window, kwh_h[hours, cols], 0.0)
-    cost = e * price[hours, cols]
+    return e, e * price[hours, cols]
+
+
+def _utc_start(world: World, hours: np.ndarray) -> np.ndarray:
+    return np.datetime64(world.clock.t0.replace(tzinfo=None), "us") + hours.astype("timedelta64[h]")
+
+
+def episode_frame(world: World, episodes: Episodes, rollout: Rollout, run: Run) -> pl.DataFrame:
+    """One row per episode: premise, start (UTC), steps, away hours, return, kWh and penalty."""
+    p, h = world.params, world.homes
+    e, cost = _hour_costs(world, episodes, run)
+    in_steps = np.arange(cost.shape[1])[None, :] < episodes.n[:, None]
     step_cost = np.where(in_steps, cost, 0.0).sum(axis=1)
-    rec_cost = np.where(in_window & ~in_steps, cost, 0.0).sum(axis=1)
-    final = rollout.offset[np.arange(m), episodes.n - 1] if m else np.zeros(0)
+    rec_cost = np.where(in_steps, 0.0, cost).sum(axis=1)
+    final = rollout.final_offset(episodes)
     pen = comfort_penalty(final, p.recovery_hours, p.penalty_usd_per_degree_hour)
     ret = episode_return(step_cost, rec_cost, final, p.recovery_hours, p.penalty_usd_per_degree_hour)
-    start = np.datetime64(world.clock.t0.replace(tzinfo=None), "us") + episodes.h0.astype("timedelta64[h]")
     return pl.DataFrame(
         {
             "premise_id": h.premise_id[episodes.home],
-            "episode_start": start,
-            "n_steps": episodes.n,
+            "episode_start": _utc_start(world, episodes.h0),
+            "n_steps": episodes.n_decisions,
+            "away_hours": episodes.n,
             "return_usd": ret,
             "kwh": e.sum(axis=1),
             "comfort_penalty_usd": pen,
@@ -294,27 +353,29 @@ def episode_frame(world: World, episodes: Episodes, rollout: Rollout, run: Run) 
 
 
 def step_frame(world: World, episodes: Episodes, rollout: Rollout, run: Run) -> pl.DataFrame:
-    """One row per decision step with its state, action, probability and reward."""
+    """One row per decision step with its state, action, probability, length and reward."""
     h = world.homes
-    kwh_h = hourly(run.meter_kwh)
-    price = world.tariffs.price[h.plan, h.tz][:, : world.clock.n_hours].T
-    ep = episode_frame(world, episodes, rollout, run)
+    m = len(episodes.n)
+    _, cost = _hour_costs(world, episodes, run)
     t = np.arange(MAX_STEPS)[None, :]
-    valid = t < episodes.n[:, None]
-    hours = np.where(valid, episodes.h0[:, None] + t, 0)
-    cols = np.broadcast_to(episodes.home[:, None], hours.shape)
-    reward = -kwh_h[hours, cols] * price[hours, cols]
-    last = t == (episodes.n - 1)[:, None]
-    ret = ep["return_usd"].to_numpy()
+    inside = t < episodes.n[:, None]
+    flat = (np.arange(m)[:, None] * MAX_STEPS + np.clip(episodes.step_of_hour, 0, None))[inside]
+    step_cost = np.bincount(flat, weights=cost[:, :MAX_STEPS][inside], minlength=m * MAX_STEPS)
+    step_hours = np.bincount(flat, minlength=m * MAX_STEPS).reshape(m, MAX_STEPS)
+    reward = -step_cost.reshape(m, MAX_STEPS)
+    valid = t < episodes.n_decisions[:, None]
+    last = t == (episodes.n_decisions - 1)[:, None]
+    ret = episode_frame(world, episodes, rollout, run)["return_usd"].to_numpy()
     reward = np.where(last, reward + (ret - np.where(valid, reward, 0.0).sum(axis=1))[:, None], reward)
-    ep_idx = np.broadcast_to(np.arange(len(episodes.n))[:, None], valid.shape)[valid]
-    start = np.datetime64(world.clock.t0.replace(tzinfo=None), "us") + hours[valid].astype("timedelta64[h]")
+    ep_idx = np.broadcast_to(np.arange(m)[:, None], valid.shape)[valid]
+    hours = episodes.h0[:, None] + episodes.decision_hour
     return pl.DataFrame(
         {
             "premise_id": h.premise_id[episodes.home][ep_idx],
-            "episode_start": ep["episode_start"].to_numpy()[ep_idx],
+            "episode_start": _utc_start(world, episodes.h0)[ep_idx],
             "t": np.broadcast_to(t, valid.shape)[valid],
-            "hour_start": start,
+            "hour_start": _utc_start(world, hours[valid]),
+            "step_hours": step_hours[valid],
             "state_key": rollout.state_key[valid],
             "action": rollout.action[valid],
             "probability": rollout.prob[valid],

@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from pipeline.simulate.behavior import behavior_tables
+from pipeline.simulate.behavior import ACTIONS, behavior_tables
 from pipeline.simulate.engine import (
     MAX_STEPS,
     Episodes,
@@ -103,7 +103,7 @@ def followed_shares(
 
     With ``observable_only``, only episodes of homes with presence sensing count.
     """
-    valid = np.arange(MAX_STEPS)[None, :] < episodes.n[:, None]
+    valid = np.arange(MAX_STEPS)[None, :] < episodes.n_decisions[:, None]
     keep = world.homes.presence[episodes.home] if observable_only else np.ones(len(episodes.n), dtype=bool)
     out = {}
     for rule in CANDIDATES:
@@ -218,7 +218,7 @@ def _write_tariffs(world: World, path: Path) -> None:
 
 
 def _write_thermostat(world: World, episodes: Episodes, rollout: Rollout, run: Run, folder: Path) -> int:
-    """Initial rows, departures, hourly setpoint changes and returns, one CSV per UTC month."""
+    """Initial rows, departures, setpoint changes at decisions and returns, one CSV per UTC month."""
     c, h, p = world.clock, world.homes, world.params
     per_hour = 60 // p.substep_minutes
     trace = run.t_in_c
@@ -252,19 +252,19 @@ def _write_thermostat(world: World, episodes: Episodes, rollout: Rollout, run: R
     sens = ok & h.presence[home]
     add(home[sens], dep_hour[sens], dep[sens] % 60, h.comfort_cool_c[home[sens]], np.zeros(sens.sum()))
     t = np.arange(MAX_STEPS)[None, :]
-    changed = (t < episodes.n[:, None]) & (rollout.action != 0)
+    changed = (t < episodes.n_decisions[:, None]) & (rollout.action != 0)
     e_idx, t_idx = np.nonzero(changed)
     ehome = episodes.home[e_idx]
     add(
         ehome,
-        episodes.h0[e_idx] + t_idx,
+        episodes.h0[e_idx] + episodes.decision_hour[e_idx, t_idx],
         np.zeros(len(e_idx)),
         h.comfort_cool_c[ehome] + rollout.offset[e_idx, t_idx],
         np.zeros(len(e_idx)),
     )
     final = np.zeros(world.days.away.shape, dtype=np.int64)
     if len(episodes.n):
-        final[episodes.home, episodes.day] = rollout.offset[np.arange(len(episodes.n)), episodes.n - 1]
+        final[episodes.home, episodes.day] = rollout.final_offset(episodes)
     back = ok & (h.presence[home] | (final[home, day] != 0))
     add(home[back], ret_hour[back], ret[back] % 60, h.comfort_cool_c[home[back]], np.ones(back.sum()))
     cat = {k: np.concatenate([part[k] for part in parts]) for k in parts[0]}
@@ -306,16 +306,18 @@ def _write_truth(world: World, episodes: pl.DataFrame, steps: pl.DataFrame, fold
     hot_levels = (False, True) if p.hidden_confounder else (False,)
     frames = []
     for hot in hot_levels:
-        tables = behavior_tables(space, h.depth_pref, h.keenness, h.comfort_cool_c, p.cool_band_c, hot)
-        n = len(h.tz)
+        tables = behavior_tables(
+            space, h.depth_pref, h.keenness, h.restore_lead, h.comfort_cool_c, p.cool_band_c, hot
+        )
+        n, k = len(h.tz), len(ACTIONS)
         cols = {
-            "premise_id": np.repeat(h.premise_id, states * 3),
-            "state_key": np.tile(np.repeat(np.arange(states), 3), n),
-            "action": np.tile(np.array([-1, 0, 1], dtype=np.int8), n * states),
+            "premise_id": np.repeat(h.premise_id, states * k),
+            "state_key": np.tile(np.repeat(np.arange(states), k), n),
+            "action": np.tile(ACTIONS.astype(np.int8), n * states),
             "probability": tables.reshape(-1),
         }
         if p.hidden_confounder:
-            cols["feeling_hot"] = np.full(n * states * 3, hot)
+            cols["feeling_hot"] = np.full(n * states * k, hot)
         frames.append(pl.DataFrame(cols))
     pl.concat(frames).write_parquet(folder / "behavior_probabilities.parquet", compression="zstd")
     pl.DataFrame(
@@ -331,6 +333,7 @@ def _write_truth(world: World, episodes: pl.DataFrame, steps: pl.DataFrame, fold
             "base_kw": h.base_kw,
             "depth_pref_c": h.depth_pref,
             "keenness": h.keenness,
+            "restore_lead": h.restore_lead,
             "presence_sensing": h.presence,
         }
     ).write_parquet(folder / "premise_parameters.parquet", compression="zstd")

@@ -128,8 +128,10 @@ class SimParams:
     """Local hours between which residents leave."""
     return_window_h: tuple[float, float] = (16.0, 19.0)
     """Local hours between which residents come back."""
-    depth_pref_probs: tuple[float, float, float] = (0.35, 0.40, 0.25)
+    depth_pref_probs: tuple[float, float, float] = (0.45, 0.40, 0.15)
     """Share of homes whose habitual setback depth is 1, 2 and 3 °C."""
+    early_restore_share: float = 0.3
+    """Share of homes whose residents restore comfort one decision before the last."""
     hidden_confounder: bool = False
     """If true, a hidden 'feeling hot' day state raises home gains and discourages setbacks."""
     hidden_hot_prob: float = 0.3

@@ -8,6 +8,7 @@ import numpy as np
 import polars as pl
 
 from pipeline.policies import SetbackRule, validate_table
+from pipeline.simulate.behavior import ACTIONS
 from pipeline.simulate.engine import (
     away_setpoints,
     behavior_chooser,
@@ -39,8 +40,8 @@ def simulate_policy(
 
     Parameters
     ----------
-    policy_probs : ndarray (n_states, 3) or (n_premises, n_states, 3), or "behavior"
-        Action probabilities per state key (actions -1, 0, +1). Actions that
+    policy_probs : ndarray (n_states, n_actions) or (n_premises, n_states, n_actions), or "behavior"
+        Action probabilities per state key (actions ``DEFAULT_ACTIONS``, -2 .. +2 °C). Actions that
         would leave the safety band are dropped and the row renormalised, as the
         thermostat would refuse them. "behavior" uses the residents' own model.
     params : SimParams
@@ -57,7 +58,7 @@ def simulate_policy(
     Returns
     -------
     polars.DataFrame
-        premise_id, episode_start (UTC), n_steps, return_usd, kwh,
+        premise_id, episode_start (UTC), n_steps (decisions), away_hours, return_usd, kwh,
         comfort_penalty_usd, final_offset_c, presence_sensing (whether the
         pipeline can see the episode at all).
     """
@@ -76,14 +77,13 @@ def _simulate(world: World, policy_probs: np.ndarray | str, choice_stream: int) 
         chooser = behavior_chooser(world)
     else:
         probs = np.asarray(policy_probs, dtype=float)
-        flat = probs.reshape(-1, probs.shape[-1])
-        validate_table(flat, flat.shape[0], 3)
-        per_home_ok = probs.ndim == 2 or probs.shape[0] == params.n_premises
-        if probs.shape[-2] != params.state.n_states or not per_home_ok:
+        per_home_ok = probs.ndim == 2 or (probs.ndim == 3 and probs.shape[0] == params.n_premises)
+        if probs.shape[-2:] != (params.state.n_states, len(ACTIONS)) or not per_home_ok:
             raise SimulationError(
-                f"policy table shape {probs.shape} does not fit {params.state.n_states} states"
-                f" and {params.n_premises} premises"
+                f"policy table shape {probs.shape} does not fit {params.state.n_states} states,"
+                f" {len(ACTIONS)} actions {tuple(ACTIONS.tolist())} and {params.n_premises} premises"
             )
+        validate_table(probs.reshape(-1, len(ACTIONS)), probs.size // len(ACTIONS), len(ACTIONS))
         chooser = table_chooser(world, probs)
     episodes = find_episodes(world)
     rollout = roll(world, episodes, chooser, choice_stream)

@@ -219,6 +219,8 @@ class Homes:
     """Habitual setback depth of the residents, whole °C."""
     keenness: np.ndarray
     """Per-home propensity to set back, logit units."""
+    restore_lead: np.ndarray
+    """Decisions before the last one at which the residents restore comfort (0 or 1)."""
 
 
 @dataclass(frozen=True)
@@ -319,6 +321,7 @@ def build_world(params: SimParams) -> World:
         sd = 0.3
         noise[:, i] = rng.lognormal(-sd * sd / 2.0, sd, n_q)
         estimated[:, i] = rng.random(n_q) < params.share_estimated
+        cols["restore_lead"].append(int(rng.random() < params.early_restore_share))
     homes = Homes(**{k: np.asarray(v) for k, v in cols.items()})
     days = Days(away, dep, ret, hot)
     occ_q = quarter_occupied(clock, homes, days)
@@ -331,7 +334,7 @@ def build_world(params: SimParams) -> World:
 
 
 def _off_the_hour(minutes: np.ndarray) -> np.ndarray:
-    """Move comings and goings off hh:00, which belongs to the hourly setpoint decision."""
+    """Move comings and goings off hh:00, which belongs to the setpoint decisions."""
     return minutes + (minutes % 60 == 0)
 
 
