@@ -42,7 +42,7 @@ class Config:
     """Seed for every random draw (bootstrap, tie-breaking)."""
     step_hours: int = 1
     """Length of one decision step, hours (when decision_points is 'fixed')."""
-    decision_points: str = "fixed"
+    decision_points: str = "anchored"
     """'fixed': a decision every step_hours; 'anchored': at departure, price-tier rises, 1 h before return."""
     schedule_away_hours: tuple[int, int] = (8, 17)
     """Local hours [from, to) assumed away on weekdays for premises with no occupancy or setback evidence."""

@@ -35,7 +35,7 @@ def test_weighted_importance_sampling_matches_hand_computation_on_three_episodes
 
 def test_target_probability_of_logged_actions_reads_the_rule_table():
     """A deterministic rule softened by epsilon gives 1 - eps + eps/3 to its own action, eps/3 otherwise."""
-    config = Config()
+    config = Config(actions=(-1, 0, 1))
     rule = SetbackRule("r", depth_c=2)
     keys = config.state.encode([8, 8], [5.0, 5.0], [0, 0], [0, 0], [4, 4])
     steps = pl.DataFrame({"state_key": keys, "action": [1, 0]})
