@@ -49,7 +49,7 @@ class Config:
     schedule_max_load_ratio: float = 0.9
     """An assumed schedule is implausible unless weekday kWh in it is below this share of weekend kWh."""
     presence_sources: tuple[str, ...] = ("occupancy_flag", "setback_hold", "schedule")
-    """Evidence of absence trusted for episodes; others are excluded with reason 'presence_source_not_used'."""
+    """Evidence of absence trusted for episodes; others are excluded as 'presence_source_not_used'."""
     setback_hold_hours: tuple[int, int] = (6, 20)
     """Local hours [from, to) in which a held setback counts as absence (premises without occupancy flag)."""
     comfort_penalty_basis: str = "setpoint"

@@ -36,6 +36,8 @@ __all__ = [
     "ALL_GROUP",
     "EstimatorInputError",
     "bootstrap_interval",
+    "bootstrap_replicates",
+    "percentile_interval",
     "diagnostics",
     "doubly_robust",
     "effective_sample_size",
@@ -768,8 +770,64 @@ def bootstrap_interval(
         and ``level``. Replicates with no episode of non-zero weight are left
         out of the quantiles; a group with none left has NaN bounds.
     """
-    build = _terms_builder(estimator)
     level = _check_level(level)
+    labels, point, replicates = bootstrap_replicates(
+        steps, estimator, savings=savings, n_replicates=n_replicates, seed=seed, gamma=gamma
+    )
+    return percentile_interval(labels, point, replicates, level)
+
+
+def percentile_interval(
+    labels: np.ndarray, point: np.ndarray, replicates: np.ndarray, level: float = 0.95
+) -> pl.DataFrame:
+    """Percentile interval per group from bootstrap replicates of shape (n_replicates, n_groups).
+
+    Replicates that are NaN (no episode of non-zero weight) are left out; a group
+    with none left has NaN bounds.
+    """
+    level = _check_level(level)
+    n_groups = replicates.shape[1]
+    low = np.full(n_groups, np.nan)
+    high = np.full(n_groups, np.nan)
+    usable = ~np.isnan(replicates).all(axis=0)
+    if usable.any():
+        tail = (1.0 - level) / 2.0
+        quantiles = np.nanquantile(replicates[:, usable], [tail, 1.0 - tail], axis=0)
+        low[usable], high[usable] = quantiles[0], quantiles[1]
+    return pl.DataFrame(
+        {
+            "group": labels,
+            "estimate": point,
+            "ci_low": low,
+            "ci_high": high,
+            "level": np.full(n_groups, level),
+        }
+    )
+
+
+def bootstrap_replicates(
+    steps: pl.DataFrame,
+    estimator: Callable | str = weighted_is,
+    *,
+    savings: bool = False,
+    n_replicates: int = 1000,
+    seed: int | np.random.Generator = 0,
+    gamma: float = 1.0,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Point estimates and Poisson-bootstrap replicates of an estimator, per group.
+
+    The same draws as ``bootstrap_interval`` (which summarises them); use this to
+    combine groups (e.g. strata) replicate by replicate before taking quantiles.
+
+    Returns
+    -------
+    labels : numpy.ndarray, shape (n_groups,)
+    point : numpy.ndarray, shape (n_groups,)
+        Estimate (or savings) on all episodes, USD per episode.
+    replicates : numpy.ndarray, shape (n_replicates, n_groups)
+        NaN where a replicate has no episode of non-zero weight in the group.
+    """
+    build = _terms_builder(estimator)
     if not (isinstance(n_replicates, int | np.integer) and n_replicates >= 2):
         raise EstimatorInputError(f"n_replicates must be an integer >= 2, got {n_replicates!r}")
     s, terms = build(steps, gamma)
@@ -788,22 +846,7 @@ def bootstrap_interval(
         multiplicity = rng.poisson(1.0, size=(rows, s.n_episodes)).astype(np.float64)
         replicates[first : first + rows] = _paired_values(s, terms, base, multiplicity)
 
-    low = np.full(s.n_groups, np.nan)
-    high = np.full(s.n_groups, np.nan)
-    usable = ~np.isnan(replicates).all(axis=0)
-    if usable.any():
-        tail = (1.0 - level) / 2.0
-        quantiles = np.nanquantile(replicates[:, usable], [tail, 1.0 - tail], axis=0)
-        low[usable], high[usable] = quantiles[0], quantiles[1]
-    return pl.DataFrame(
-        {
-            "group": s.labels,
-            "estimate": point,
-            "ci_low": low,
-            "ci_high": high,
-            "level": np.full(s.n_groups, level),
-        }
-    )
+    return s.labels, point, replicates
 
 
 def _clipped_moments(
