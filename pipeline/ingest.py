@@ -168,8 +168,11 @@ def ingest(config: Config, progress: Progress | None = None) -> list[FileResult]
             if progress is not None:
                 progress(done, len(work), result)
         # Files whose conflicts were released are loaded again against the new rows.
+        # (those the loop reached after their release are already loaded and come back unchanged).
         for name in dict.fromkeys(released):
-            results[name], _ = ingest_file(con, *by_name[name], config, set(by_name))
+            again, _ = ingest_file(con, *by_name[name], config, set(by_name))
+            if again.status != "unchanged":
+                results[name] = again
         missing = _mark_missing(con, set(by_name))
         store.build_table(con, "coverage")
     return list(results.values()) + missing
