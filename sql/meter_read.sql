@@ -8,19 +8,31 @@
 with source as (
     select * from landing
 ),
-typed as (
+parsed as (
     select
         l.source_row,
         nullif(trim(l.premise_id), '') as premise_id,
         l.interval_start as interval_text,
         p.timezone,
-        utc_instant(l.interval_start, p.timezone) as interval_start_utc,
+        regexp_matches(trim(l.interval_start), '(Z|[+-][0-9]{2}(:?[0-9]{2})?)$') as has_offset,
+        try_cast(trim(l.interval_start) as timestamp) as wall_clock,
         try_cast(trim(l.interval_minutes) as integer) as interval_minutes,
         coalesce(try_cast(trim(l.kwh) as double), try_cast(trim(l.wh) as double) / 1000.0) as kwh,
         lower(coalesce(nullif(trim(l.quality), ''), 'actual')) as quality,
         p.premise_id is not null as premise_known
     from source l
     left join premise p on p.premise_id = trim(l.premise_id)
+),
+-- The offset test and parse are done once per row here (the hot path of a large lake);
+-- the rules are those of the utc_instant and local_time_* macros in schema.sql.
+typed as (
+    select
+        *,
+        case
+            when has_offset then try_cast(trim(interval_text) as timestamptz)
+            else timezone(timezone, wall_clock)
+        end as interval_start_utc
+    from parsed
 ),
 row_checked as (
     select
@@ -30,8 +42,12 @@ row_checked as (
             when not premise_known then 'unknown_premise'
             when interval_text is null or trim(interval_text) = '' then 'missing_timestamp'
             when interval_start_utc is null then 'bad_timestamp'
-            when local_time_missing(interval_text, timezone) then 'nonexistent_local_time'
-            when local_time_ambiguous(interval_text, timezone) then 'ambiguous_local_time'
+            when not has_offset and timezone(timezone, interval_start_utc) <> wall_clock
+                then 'nonexistent_local_time'
+            when not has_offset
+                and (timezone(timezone, interval_start_utc - interval 1 hour) = wall_clock
+                    or timezone(timezone, interval_start_utc + interval 1 hour) = wall_clock)
+                then 'ambiguous_local_time'
             when interval_minutes is null or interval_minutes not in (15, 30, 60) then 'bad_interval_length'
             when epoch(interval_start_utc)::bigint % (interval_minutes * 60) <> 0 then 'interval_not_aligned'
             when kwh is null or isnan(kwh) then 'bad_number'

@@ -13,6 +13,10 @@ create table if not exists premise (
     source_row bigint,
     source_file varchar not null
 );
+-- meter_read and weather_obs are keyed (premise_id, interval_start_utc) and (station_id,
+-- observed_at_utc). The key is enforced by their check files (a second row for a key is
+-- counted or quarantined, never inserted) and tested, not by a primary-key index: keeping
+-- that index up cost more than the checks themselves on a 3-million-row file.
 create table if not exists meter_read (
     premise_id varchar not null,
     interval_start_utc timestamptz not null,
@@ -20,16 +24,14 @@ create table if not exists meter_read (
     kwh double not null,
     quality varchar not null,
     source_row bigint,
-    source_file varchar not null,
-    primary key (premise_id, interval_start_utc)
+    source_file varchar not null
 );
 create table if not exists weather_obs (
     station_id varchar not null,
     observed_at_utc timestamptz not null,
     dry_bulb_c double not null,
     source_row bigint,
-    source_file varchar not null,
-    primary key (station_id, observed_at_utc)
+    source_file varchar not null
 );
 create table if not exists thermostat_event (
     premise_id varchar not null,

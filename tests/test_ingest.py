@@ -189,6 +189,13 @@ def _check_accounting(con):
         ).fetchall()[0][0]
         assert (in_table, in_quarantine) == (loaded, quarantined), source_file
         assert sum(json.loads(by_reason).values()) == quarantined, source_file
+    # The time-series keys hold without an index: the checks alone keep them unique.
+    for table, key in (
+        ("meter_read", "premise_id, interval_start_utc"),
+        ("weather_obs", "station_id, observed_at_utc"),
+    ):
+        total, distinct = con.execute(f"select count(*), count(distinct ({key})) from {table}").fetchall()[0]
+        assert total == distinct, table
 
 
 REASON_CASES = [
