@@ -229,9 +229,20 @@ def ingest_file(
     started = time.perf_counter()
     name = _relative(path, config)
     content_hash = _content_hash(path)
-    seen = store.execute(con, "select content_hash from ingest_log where source_file = $f", {"f": name})
+    seen = store.execute(
+        con,
+        "select content_hash, status, rows_read, rows_loaded, rows_quarantined, rows_duplicate, message"
+        " from ingest_log where source_file = $f",
+        {"f": name},
+    )
     if seen and seen[0][0] == content_hash:
         store.execute(con, "update ingest_log set missing_since = null where source_file = $f", {"f": name})
+        _, status, *counts, message = seen[0]
+        if status == "refused":
+            # Still refused: reported again so the exit code says so until the file is fixed.
+            return FileResult(
+                name, folder.name, "refused", *counts, f"{message} (unchanged since last run)"
+            ), []
         return FileResult(name, folder.name, "unchanged", 0, 0, 0, 0), []
 
     # Staging reads the file into temp tables before the transaction: a reader error must not

@@ -16,7 +16,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline import ingest, store
+from pipeline import cli, ingest, store
 from tests.conftest import lake_config, write_landing
 
 TARIFF = """
@@ -588,3 +588,24 @@ def test_random_corruption_never_crashes_and_never_loses_a_row(data):
         if b'"' not in data and b"\r" not in data:
             lines = data.split(b"\n")[1:]
             assert meter["rows_read"] == sum(1 for line in lines if line.strip()), meter
+
+
+def test_command_line_prints_per_file_counts_with_progress_and_exits_1_on_a_refused_file(tmp_path, capsys):
+    """thermal-ledger ingest prints per-file counts and progress, and exits 1 while a file stays refused."""
+    root = write_landing(
+        tmp_path,
+        {
+            "tariffs/t.csv": TARIFF,
+            "premises/p.csv": PREMISES,
+            "meter/good.csv": METER_HEAD + GOOD_METER,
+            "meter/short.csv": "premise_id,interval_start\nP1,2026-06-01T12:00:00Z\n",
+        },
+    )
+    code = cli.main(["ingest", "--lake", str(root), "--out", str(root / "out")])
+    out, err = capsys.readouterr()
+    assert code == cli.EXIT_REFUSED
+    assert "landing/meter/good.csv" in out and "refused: landing/meter/short.csv" in out
+    assert "[4/4]" in err
+    assert cli.main(["ingest", "--lake", str(root), "--out", str(root / "out")]) == cli.EXIT_REFUSED
+    (root / "landing/meter/short.csv").write_text(METER_HEAD + GOOD_METER.replace("12:00", "13:00"))
+    assert cli.main(["ingest", "--lake", str(root), "--out", str(root / "out")]) == cli.EXIT_OK
