@@ -344,6 +344,9 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
         store.execute(
             con, "create or replace temp table landing_rejects_lines (source_row bigint, line varchar)"
         )
+        store.execute(
+            con, "create or replace temp table landing_reject_shifts (good_before bigint, shift bigint)"
+        )
     else:
         header = _csv_header(path)
         if not header:

@@ -6,6 +6,7 @@ import datetime as dt
 import gzip
 import json
 import tempfile
+import textwrap
 import zoneinfo
 from pathlib import Path
 
@@ -306,7 +307,11 @@ def test_malformed_rows_keep_their_row_numbers_around_good_ones(tmp_path):
 
 def test_gzip_bom_crlf_csv_and_parquet_all_load(tmp_path):
     """Gzip CSV with a byte-order mark and CRLF line ends, and Parquet, load like plain CSV."""
-    root = write_landing(tmp_path, {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES})
+    root = tmp_path
+    for folder, text in (("tariffs", TARIFF), ("premises", PREMISES)):
+        (root / "landing" / folder).mkdir(parents=True)
+        frame = pl.read_csv(textwrap.dedent(text).strip().encode(), infer_schema=False)
+        frame.write_parquet(root / "landing" / folder / "first.parquet")
     text = "\ufeff" + (METER_HEAD + GOOD_METER + "P1,2026-06-01T13:00:00Z,60,2.0,\n").replace("\n", "\r\n")
     (root / "landing/meter").mkdir()
     (root / "landing/meter/a.csv.gz").write_bytes(gzip.compress(text.encode("utf-8")))
