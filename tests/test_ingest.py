@@ -614,3 +614,23 @@ def test_command_line_prints_per_file_counts_with_progress_and_exits_1_on_a_refu
     assert cli.main(["ingest", "--lake", str(root), "--out", str(root / "out")]) == cli.EXIT_REFUSED
     (root / "landing/meter/short.csv").write_text(METER_HEAD + GOOD_METER.replace("12:00", "13:00"))
     assert cli.main(["ingest", "--lake", str(root), "--out", str(root / "out")]) == cli.EXIT_OK
+
+
+def test_weather_conflict_across_files_quarantines_both_observations(tmp_path):
+    """Two files giving one station and hour different temperatures leave neither loaded."""
+    head = "station_id,observed_at,dry_bulb_c\n"
+    config, _, con = _ingest(tmp_path, {"weather/a.csv": head + "S1,2026-06-01T12:00:00Z,30\n"})
+    con.close()
+    write_landing(
+        tmp_path, {"weather/b.csv": head + "S1,2026-06-01T12:00:00Z,31\nS1,2026-06-01T13:00:00Z,31\n"}
+    )
+    ingest.ingest(config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        assert con.execute("select strftime(observed_at_utc, '%H') from weather_obs").fetchall() == [("13",)]
+        assert con.execute(
+            "select source_file, row_number, reason from quarantine order by 1"
+        ).fetchall() == [
+            ("landing/weather/a.csv", 1, "conflicting_duplicate"),
+            ("landing/weather/b.csv", 1, "conflicting_duplicate"),
+        ]
+        _check_accounting(con)
