@@ -15,6 +15,7 @@ from typing import Any
 import polars as pl
 
 from pipeline import config as config_module
+from pipeline import ingest as ingestion
 from pipeline import stages
 from pipeline.config import ConfigError
 from pipeline.ingest import IngestError
@@ -104,9 +105,22 @@ def _table(frame: pl.DataFrame) -> str:
 
 
 def print_ingest(summary: stages.IngestSummary) -> None:
-    print(_table(summary.files.drop("message")))
-    for row in summary.files.filter(pl.col("message") != "").iter_rows(named=True):
-        print(f"refused: {row['message']}")
+    """The per-file table of counts, then a line for every refused or missing file."""
+    files = summary.files.with_columns(pl.col("seconds").round(2))
+    print(_table(files.drop("message")))
+    totals = files.select(pl.sum("rows_read", "rows_loaded", "rows_quarantined", "rows_duplicate")).row(0)
+    print("total rows read {:,}, loaded {:,}, quarantined {:,}, duplicate {:,}".format(*totals))
+    for row in files.filter(pl.col("status").is_in(["refused", "missing"])).iter_rows(named=True):
+        print(f"{row['status']}: {row['message']}")
+
+
+def _progress(done: int, total: int, result: ingestion.FileResult) -> None:
+    print(
+        f"[{done}/{total}] {result.source_file}: {result.status}, {result.rows_read:,} rows read,"
+        f" {result.rows_quarantined:,} quarantined ({result.seconds:.1f} s)",
+        file=sys.stderr,
+        flush=True,
+    )
 
 
 def print_summary(summary: stages.RunSummary) -> None:
@@ -162,7 +176,8 @@ def main(argv: list[str] | None = None) -> int:
         overrides = overrides_from(args)
         config = config_module.load(args.config, overrides)
         if args.stage == "ingest":
-            summary = stages.ingest(config)
+            files = ingestion.results_frame(ingestion.ingest(config, progress=_progress))
+            summary = stages.IngestSummary(files, int((files["status"] == "refused").sum()))
             print_ingest(summary)
             return EXIT_REFUSED if summary.refused else EXIT_OK
         if args.stage == "run":

@@ -10,9 +10,12 @@ a changed file replaces its old rows in one transaction.
 
 from __future__ import annotations
 
+import csv
+import gzip
 import hashlib
 import time
-from dataclasses import dataclass
+from collections.abc import Callable
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import duckdb
@@ -24,6 +27,20 @@ from pipeline.config import Config
 
 class IngestError(RuntimeError):
     """The landing folder itself is unusable (not a single bad file or row)."""
+
+
+class FileRefused(IngestError):
+    """One landing file cannot be loaded as a whole; its rows still go to quarantine."""
+
+
+class MissingColumnError(FileRefused):
+    """A landing file lacks a required column (after the configured column mapping)."""
+
+    def __init__(self, source_file: str, wanted: str) -> None:
+        super().__init__(
+            f"{source_file}: missing required column {wanted}; rename it in the file or map it in the"
+            f' config ([columns.<folder>] canonical = "name in file")'
+        )
 
 
 @dataclass(frozen=True)
@@ -38,6 +55,8 @@ class Folder:
     """Required columns; a tuple of several names means any one of them."""
     optional: tuple[str, ...] = ()
     """Columns read when present and left empty otherwise."""
+    key: tuple[str, ...] = ()
+    """Key of a time series whose conflicting duplicates across files are all quarantined."""
 
 
 # Order matters: premises need the tariffs, meter and thermostat rows need the premises.
@@ -60,12 +79,18 @@ FOLDERS: tuple[Folder, ...] = (
         ),
         ("cohort", "floor_area_m2"),
     ),
-    Folder("weather", "weather_obs", (("station_id",), ("observed_at",), ("dry_bulb_c", "dry_bulb_f"))),
+    Folder(
+        "weather",
+        "weather_obs",
+        (("station_id",), ("observed_at",), ("dry_bulb_c", "dry_bulb_f")),
+        key=("station_id", "observed_at_utc"),
+    ),
     Folder(
         "meter",
         "meter_read",
         (("premise_id",), ("interval_start",), ("interval_minutes",), ("kwh", "wh")),
         ("quality",),
+        ("premise_id", "interval_start_utc"),
     ),
     Folder(
         "thermostat",
@@ -88,11 +113,25 @@ class FileResult:
     source_file: str
     folder: str
     status: str
+    """loaded, loaded_with_quarantine, refused, unchanged or missing (gone from the lake)."""
     rows_read: int
     rows_loaded: int
     rows_quarantined: int
     rows_duplicate: int
     message: str = ""
+    seconds: float = 0.0
+
+
+Progress = Callable[[int, int, FileResult], None]
+"""Called after each file with (files done, files in total, its result)."""
+
+_ROW = "__row"
+"""Name of the record-number column of a staged landing file."""
+_CSV_OPTIONS = (
+    "header = true, delim = ',', quote = '\"', escape = '\"', auto_detect = false, null_padding = true,"
+    " store_rejects = true, rejects_table = 'landing_rejects', rejects_scan = 'landing_reject_scans'"
+)
+"""A fixed dialect: sniffing guesses wrong on damaged files; records that do not parse are kept as rejects."""
 
 
 def landing_files(lake: Path, folder: str) -> list[Path]:
@@ -104,18 +143,39 @@ def landing_files(lake: Path, folder: str) -> list[Path]:
     return sorted(p for p in base.rglob("*") if p.is_file() and p.name.lower().endswith(suffixes))
 
 
-def ingest(config: Config) -> list[FileResult]:
-    """Ingest every landing file of ``config.lake`` into the warehouse; return one result per file."""
+def ingest(config: Config, progress: Progress | None = None) -> list[FileResult]:
+    """Ingest every landing file of ``config.lake`` into the warehouse; return one result per file.
+
+    Unchanged files are skipped; a changed file replaces its earlier rows in one transaction,
+    and files whose rows were quarantined as conflicts with its old rows are loaded again after
+    it. Files that left the lake are reported with status ``missing``; their rows stay (the
+    lake may be pruned after loading, the warehouse is the record). Finally ``coverage`` is
+    rebuilt.
+    """
     landing = Path(config.lake) / "landing"
     if not landing.is_dir():
         raise IngestError(f"{landing} is not a folder: --lake must hold landing/")
-    results: list[FileResult] = []
+    work = [(folder, path) for folder in FOLDERS for path in landing_files(config.lake, folder.name)]
+    by_name = {_relative(path, config): (folder, path) for folder, path in work}
+    results: dict[str, FileResult] = {}
     with store.warehouse(config.warehouse_path) as con:
         store.run_sql(con, "schema")
-        for folder in FOLDERS:
-            for path in landing_files(config.lake, folder.name):
-                results.append(ingest_file(con, folder, path, config))
-    return results
+        released: list[str] = []
+        for done, (folder, path) in enumerate(work, 1):
+            result, freed = ingest_file(con, folder, path, config, set(by_name))
+            results[result.source_file] = result
+            released += freed
+            if progress is not None:
+                progress(done, len(work), result)
+        # Files whose conflicts were released are loaded again against the new rows.
+        # (those the loop reached after their release are already loaded and come back unchanged).
+        for name in dict.fromkeys(released):
+            again, _ = ingest_file(con, *by_name[name], config, set(by_name))
+            if again.status != "unchanged":
+                results[name] = again
+        missing = _mark_missing(con, set(by_name))
+        store.build_table(con, "coverage")
+    return list(results.values()) + missing
 
 
 def _relative(path: Path, config: Config) -> str:
@@ -133,37 +193,100 @@ def _content_hash(path: Path) -> str:
     return digest.hexdigest()
 
 
-def ingest_file(con: duckdb.DuckDBPyConnection, folder: Folder, path: Path, config: Config) -> FileResult:
-    """Ingest one file; unchanged files are skipped, changed ones replace their earlier rows."""
+def _mark_missing(con: duckdb.DuckDBPyConnection, present: set[str]) -> list[FileResult]:
+    store.execute(
+        con,
+        "update ingest_log set missing_since = coalesce(missing_since, now())"
+        " where not list_contains($present, source_file)",
+        {"present": sorted(present)},
+    )
+    rows = store.execute(
+        con,
+        "select source_file, folder, rows_read, rows_loaded, rows_quarantined, rows_duplicate"
+        " from ingest_log where missing_since is not null order by source_file",
+    )
+    return [
+        FileResult(f, folder, "missing", *counts, message=f"{f}: no longer in the lake; its rows are kept")
+        for f, folder, *counts in rows
+    ]
+
+
+def ingest_file(
+    con: duckdb.DuckDBPyConnection,
+    folder: Folder,
+    path: Path,
+    config: Config,
+    releasable: set[str] | None = None,
+) -> tuple[FileResult, list[str]]:
+    """Ingest one file; return its result and the other files released to be loaded again.
+
+    An unchanged file (same content hash) is skipped; otherwise its earlier rows, quarantine
+    rows and log entry are replaced in one transaction. Files in ``releasable`` (those still in
+    the lake) that hold conflicting duplicates with this file's old rows lose their rows and
+    log entry in the same transaction, so that they are checked again, against the new rows,
+    by this run or, if it stops, by the next.
+    """
     started = time.perf_counter()
     name = _relative(path, config)
     content_hash = _content_hash(path)
-    seen = con.execute("select content_hash from ingest_log where source_file = $f", {"f": name}).fetchall()
+    seen = store.execute(
+        con,
+        "select content_hash, status, rows_read, rows_loaded, rows_quarantined, rows_duplicate, message"
+        " from ingest_log where source_file = $f",
+        {"f": name},
+    )
     if seen and seen[0][0] == content_hash:
-        return FileResult(name, folder.name, "unchanged", 0, 0, 0, 0)
+        store.execute(con, "update ingest_log set missing_since = null where source_file = $f", {"f": name})
+        _, status, *counts, message = seen[0]
+        if status == "refused":
+            # Still refused: reported again so the exit code says so until the file is fixed.
+            return FileResult(
+                name, folder.name, "refused", *counts, f"{message} (unchanged since last run)"
+            ), []
+        return FileResult(name, folder.name, "unchanged", 0, 0, 0, 0), []
 
+    # Staging reads the file into temp tables before the transaction: a reader error must not
+    # abort the transaction that replaces the file's rows.
     try:
-        present = {
-            row[0]
-            for row in con.execute(f"describe select * from {_reader(path)}", {"path": str(path)}).fetchall()
-        }
-    except duckdb.Error as exc:
-        present = None
-        unreadable = f"{name}: file cannot be read: {exc}".splitlines()[0]
+        present, rejects = _stage(con, path)
+        failure = None
+    except (duckdb.Error, OSError, EOFError, UnicodeError, ValueError, FileRefused) as exc:
+        present, rejects = set(), 0
+        detail = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        failure = f"{name}: file cannot be read: {detail}"
 
     store.execute(con, "begin transaction")
     try:
-        store.execute(con, f"delete from {folder.table} where source_file = $f", {"f": name})
-        store.execute(con, "delete from quarantine where source_file = $f", {"f": name})
-        store.execute(con, "delete from ingest_log where source_file = $f", {"f": name})
-        if present is None:
-            result = _refuse_unreadable(con, folder, path, name, unreadable)
+        released = [
+            row[0]
+            for row in store.execute(
+                con,
+                "select distinct q.source_file from quarantine q semi join"
+                " (select record_key from quarantine where source_file = $f) mine using (record_key)"
+                " where q.source_file <> $f and list_contains($releasable, q.source_file)",
+                {"f": name, "releasable": sorted(releasable or ())},
+            )
+        ]
+        for gone in [name, *released]:
+            store.execute(con, f"delete from {folder.table} where source_file = $f", {"f": gone})
+            store.execute(con, "delete from quarantine where source_file = $f", {"f": gone})
+            store.execute(con, "delete from ingest_log where source_file = $f", {"f": gone})
+        if failure is not None:
+            result = _refuse_unreadable(con, folder, path, name, failure)
         else:
-            result = _load(con, folder, path, name, present, config)
+            try:
+                selected = _select_columns(folder, config.columns.get(folder.name, {}), present, name)
+                result, moved_from = _load(con, folder, name, selected, rejects, config)
+            except MissingColumnError as exc:
+                result, moved_from = _refuse_all_rows(con, folder, name, str(exc), rejects), []
+        if seen:
+            result = replace(result, message=result.message or "replaced the rows of an earlier version")
+        result = replace(result, seconds=time.perf_counter() - started)
         store.execute(
             con,
-            "insert into ingest_log values ($f, $folder, $h, $read, $loaded, $quar, $dup, $status, $msg,"
-            " $secs, now())",
+            "insert into ingest_log (source_file, folder, content_hash, rows_read, rows_loaded,"
+            " rows_quarantined, rows_duplicate, status, message, seconds, ingested_at)"
+            " values ($f, $folder, $h, $read, $loaded, $quar, $dup, $status, $msg, $secs, now())",
             {
                 "f": name,
                 "folder": folder.name,
@@ -174,48 +297,153 @@ def ingest_file(con: duckdb.DuckDBPyConnection, folder: Folder, path: Path, conf
                 "dup": result.rows_duplicate,
                 "status": result.status,
                 "msg": result.message,
-                "secs": time.perf_counter() - started,
+                "secs": result.seconds,
             },
         )
+        _refresh_log(con, folder, [name, *moved_from] if failure is None else [name])
         store.execute(con, "commit")
     except Exception:
         store.execute(con, "rollback")
         raise
-    return result
+    return result, released
 
 
-def _reader(path: Path) -> str:
+def _csv_header(path: Path) -> list[str]:
+    """Column names from the first line (BOM and CR removed); blank or repeated names made unique."""
+    opener = gzip.open if path.name.lower().endswith(".gz") else open
+    with opener(path, "rb") as fh:
+        first = fh.readline()
+    text = first.decode("utf-8", errors="replace").lstrip("\ufeff").rstrip("\r\n")
+    names: list[str] = []
+    for i, raw in enumerate(next(csv.reader([text]), [])):
+        base = raw.strip() or f"column{i + 1}"
+        name, n = base, 1
+        while name in names or name == _ROW:
+            n += 1
+            name = f"{base}_{n}"
+        names.append(name)
+    return names
+
+
+def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
+    """Read one file whole into ``landing_src`` (source_row, then its columns); return names and rejects.
+
+    CSV records that do not parse (bad encoding, too many fields, unclosed quote) are kept in
+    ``landing_rejects`` with their text, split into lines; the parsed records are numbered around
+    them, so every record has its own row number.
+    """
+    store.execute(con, "drop table if exists landing_rejects")
+    store.execute(con, "drop table if exists landing_reject_scans")
     if path.name.lower().endswith(".parquet"):
-        return "read_parquet($path)"
-    # Text columns so that checks, not the reader, decide what a bad value is.
-    return "read_csv($path, all_varchar = true, header = true, auto_detect = true)"
+        store.execute(
+            con,
+            f"create or replace temp table landing_raw as select file_row_number + 1 as {_ROW},"
+            " * exclude (file_row_number) from read_parquet($path, file_row_number = true)",
+            {"path": str(path)},
+        )
+        store.execute(
+            con, "create or replace temp table landing_rejects_lines (source_row bigint, line varchar)"
+        )
+        store.execute(
+            con, "create or replace temp table landing_reject_shifts (good_before bigint, shift bigint)"
+        )
+    else:
+        header = _csv_header(path)
+        if not header:
+            raise FileRefused(f"{path.name}: empty file, no header line")
+        # Insertion order is preserved, so rowid is the record's position among parsed records.
+        store.execute(
+            con,
+            f"create or replace temp table landing_parsed as select * from read_csv($path, columns = $cols,"
+            f" {_CSV_OPTIONS})",
+            {"path": str(path), "cols": dict.fromkeys(header, "VARCHAR")},
+        )
+        store.execute(
+            con,
+            f"create or replace temp table landing_raw as select rowid + 1 as {_ROW}, * from landing_parsed",
+        )
+        store.execute(con, "drop table landing_parsed")
+        _number_rejects(con)
+    store.execute(
+        con,
+        f"create or replace temp view landing_src as select coalesce(j.shift, 0) + r.{_ROW} as source_row,"
+        f" r.* exclude ({_ROW}) from landing_raw r"
+        f" asof left join landing_reject_shifts j on r.{_ROW} > j.good_before",
+    )
+    present = {row[0] for row in store.execute(con, "describe landing_src")} - {"source_row"}
+    rejects = store.execute(con, "select count(*) from landing_rejects_lines")[0][0]
+    return present, rejects
 
 
-def _load(
-    con: duckdb.DuckDBPyConnection, folder: Folder, path: Path, name: str, present: set[str], config: Config
-) -> FileResult:
-    mapping = config.columns.get(folder.name, {})
+def _number_rejects(con: duckdb.DuckDBPyConnection) -> None:
+    # A rejected record of n lines starting at data line k holds rows k .. k+n-1; parsed
+    # records after it are shifted by the lines of all rejects before them.
+    store.execute(
+        con,
+        "create or replace temp table landing_reject_records as"
+        " with first_error as ("
+        "   select line - 1 as first_row,"
+        "     string_split(replace(trim(any_value(csv_line), chr(13) || chr(10)),"
+        "       chr(13) || chr(10), chr(10)), chr(10)) as lines"
+        "   from landing_rejects group by line"
+        " )"
+        " select first_row, lines, len(lines) as span,"
+        "   sum(len(lines)) over (order by first_row rows unbounded preceding) as shift"
+        " from first_error",
+    )
+    store.execute(
+        con,
+        "create or replace temp table landing_reject_shifts as"
+        " select first_row - 1 - (shift - span) as good_before, shift from landing_reject_records",
+    )
+    store.execute(
+        con,
+        "create or replace temp table landing_rejects_lines as"
+        " select first_row + i - 1 as source_row, lines[i] as line"
+        " from (select *, unnest(range(1, span + 1)) as i from landing_reject_records)",
+    )
 
+
+def _select_columns(
+    folder: Folder, mapping: dict[str, str], present: set[str], name: str
+) -> dict[str, str | None]:
+    """Canonical column -> column of the file (None when an optional one is absent)."""
     selected: dict[str, str | None] = {}
     for choices in folder.required:
         found = [c for c in choices if mapping.get(c, c) in present]
         if not found:
-            wanted = " or ".join(repr(mapping.get(c, c)) for c in choices)
-            return _refuse_all_rows(con, folder, path, name, f"{name}: missing required column {wanted}")
+            raise MissingColumnError(name, " or ".join(repr(mapping.get(c, c)) for c in choices))
         for c in choices:
             selected[c] = mapping.get(c, c) if c in found else None
     for c in folder.optional:
         selected[c] = mapping.get(c, c) if mapping.get(c, c) in present else None
+    return selected
 
+
+def _quoted(identifier: str) -> str:
+    return '"' + identifier.replace('"', '""') + '"'
+
+
+_RAW_JSON = "json_merge_patch(to_json(s), '{\"source_row\": null}')::varchar"
+"""The landing record as JSON of its own columns, for quarantine."""
+
+
+def _load(
+    con: duckdb.DuckDBPyConnection,
+    folder: Folder,
+    name: str,
+    selected: dict[str, str | None],
+    rejects: int,
+    config: Config,
+) -> tuple[FileResult, list[str]]:
     columns = ", ".join(
-        f'cast(t."{src}" as varchar) as "{canon}"' if src else f'cast(null as varchar) as "{canon}"'
+        f"cast(t.{_quoted(src)} as varchar) as {_quoted(canon)}"
+        if src
+        else f"cast(null as varchar) as {canon}"
         for canon, src in selected.items()
     )
     store.execute(
-        con,
-        f"create or replace temp table landing as select row_number() over () as source_row,"
-        f" to_json(t)::varchar as raw, {columns} from {_reader(path)} t",
-        {"path": str(path)},
+        con, f"create or replace temp view landing as select t.source_row, {columns} from landing_src t"
     )
     params = {
         "cool_low": config.cool_band_c[0],
@@ -229,7 +457,9 @@ def _load(
     check = store.sql_text(folder.table)
     store.execute(con, f"create or replace temp table checked as {check}", store.params_for(check, params))
 
-    target_columns = [r[1] for r in con.execute(f"pragma table_info('{folder.table}')").fetchall()]
+    moved_from = _move_conflicting_loaded_rows(con, folder) if folder.key else []
+
+    target_columns = [r[1] for r in store.execute(con, f"pragma table_info('{folder.table}')")]
     value_columns = ", ".join(c for c in target_columns if c != "source_file")
     store.execute(
         con,
@@ -237,48 +467,126 @@ def _load(
         f" select {value_columns}, $f from checked where reason is null order by source_row",
         {"f": name},
     )
+    record_key = "c.record_key" if folder.key else "null"
+    # The raw JSON is made only for rejected rows: most rows pass and never need it.
     store.execute(
         con,
-        "insert into quarantine select $f, source_row, reason, raw from checked"
-        " where reason is not null and reason <> 'exact_duplicate'",
+        f"insert into quarantine (source_file, row_number, reason, raw, record_key)"
+        f" select $f, c.source_row, c.reason, {_RAW_JSON},"
+        f" case when c.reason = 'conflicting_duplicate' then {record_key} end"
+        f" from checked c join landing_src s using (source_row)"
+        f" where c.reason is not null and c.reason <> 'exact_duplicate'",
         {"f": name},
     )
-    read, loaded, dup = con.execute(
+    _quarantine_rejects(con, name)
+    read, loaded, dup = store.execute(
+        con,
         "select count(*), count(*) filter (reason is null), count(*) filter (reason = 'exact_duplicate')"
-        " from checked"
-    ).fetchall()[0]
+        " from checked",
+    )[0]
+    read += rejects
     quarantined = read - loaded - dup
     status = "loaded" if quarantined == 0 else "loaded_with_quarantine"
-    return FileResult(name, folder.name, status, read, loaded, quarantined, dup)
+    return FileResult(name, folder.name, status, read, loaded, quarantined, dup), moved_from
+
+
+def _move_conflicting_loaded_rows(con: duckdb.DuckDBPyConnection, folder: Folder) -> list[str]:
+    """Rows loaded from other files that conflict with this file's rows go to quarantine too."""
+    key = ", ".join(folder.key)
+    store.execute(
+        con,
+        f"create or replace temp table moved as select t.* from {folder.table} t"
+        f" semi join (select {key} from checked where loaded_conflict) c using ({key})",
+    )
+    if not store.execute(con, "select count(*) from moved")[0][0]:
+        return []
+    store.execute(
+        con,
+        f"insert into quarantine (source_file, row_number, reason, raw, record_key)"
+        f" select source_file, source_row, 'conflicting_duplicate',"
+        f' json_merge_patch(to_json(m), \'{{"source_file": null, "source_row": null}}\')::varchar,'
+        f" concat_ws('|', {key}) from moved m",
+    )
+    store.execute(
+        con,
+        f"delete from {folder.table} t using moved m where "
+        + " and ".join(f"t.{k} = m.{k}" for k in folder.key),
+    )
+    return [row[0] for row in store.execute(con, "select distinct source_file from moved")]
+
+
+def _refresh_log(con: duckdb.DuckDBPyConnection, folder: Folder, files: list[str]) -> None:
+    """Recount loaded and quarantined rows (by reason, as JSON) of ``files`` from the tables."""
+    store.execute(
+        con,
+        f"update ingest_log l set"
+        f"  rows_loaded = (select count(*) from {folder.table} t where t.source_file = l.source_file),"
+        f"  rows_quarantined = (select count(*) from quarantine q where q.source_file = l.source_file),"
+        f"  quarantined_by_reason = coalesce((select json_group_object(reason, n)::varchar from"
+        f"    (select reason, count(*) as n from quarantine q where q.source_file = l.source_file"
+        f"     group by reason order by reason)), '{{}}')"
+        f" where list_contains($files, l.source_file)",
+        {"files": files},
+    )
+    store.execute(
+        con,
+        "update ingest_log set status = 'loaded_with_quarantine'"
+        " where list_contains($files, source_file) and status = 'loaded' and rows_quarantined > 0",
+        {"files": files},
+    )
+
+
+def _quarantine_rejects(con: duckdb.DuckDBPyConnection, name: str) -> None:
+    store.execute(
+        con,
+        "insert into quarantine (source_file, row_number, reason, raw)"
+        " select $f, source_row, 'malformed_row', line from landing_rejects_lines",
+        {"f": name},
+    )
 
 
 def _refuse_all_rows(
-    con: duckdb.DuckDBPyConnection, folder: Folder, path: Path, name: str, message: str
+    con: duckdb.DuckDBPyConnection, folder: Folder, name: str, message: str, rejects: int
 ) -> FileResult:
     # The rows are kept in quarantine so the refusal loses nothing.
     store.execute(
         con,
-        f"insert into quarantine select $f, row_number() over (), 'missing_column', to_json(t)::varchar"
-        f" from {_reader(path)} t",
-        {"f": name, "path": str(path)},
+        f"insert into quarantine (source_file, row_number, reason, raw)"
+        f" select $f, source_row, 'missing_column', {_RAW_JSON} from landing_src s",
+        {"f": name},
     )
-    read = con.execute("select count(*) from quarantine where source_file = $f", {"f": name}).fetchall()[0][0]
+    _quarantine_rejects(con, name)
+    read = store.execute(con, "select count(*) from quarantine where source_file = $f", {"f": name})[0][0]
     return FileResult(name, folder.name, "refused", read, 0, read, 0, message)
 
 
 def _refuse_unreadable(
     con: duckdb.DuckDBPyConnection, folder: Folder, path: Path, name: str, message: str
 ) -> FileResult:
-    # An unreadable file is kept whole, line by line, as raw text in quarantine.
-    store.execute(
-        con,
-        "insert into quarantine select $f, row_number() over (), 'unreadable_file', line"
-        " from (select unnest(string_split(content, chr(10))) as line from read_text($path))"
-        " where trim(line) <> ''",
-        {"f": name, "path": str(path)},
-    )
-    read = con.execute("select count(*) from quarantine where source_file = $f", {"f": name}).fetchall()[0][0]
-    return FileResult(name, folder.name, "refused", read, 0, read, 0, message)
+    # An unreadable file is kept whole, line by line, as text in quarantine (bytes that are not
+    # UTF-8 replaced); for a CSV the first line is its header, not a row.
+    data = path.read_bytes()
+    if path.name.lower().endswith(".gz"):
+        try:
+            data = gzip.decompress(data)
+        except (OSError, EOFError):
+            pass
+    lines = pl.Series("line", data.decode("utf-8", errors="replace").splitlines(), dtype=pl.Utf8)
+    frame = pl.DataFrame({"source_row": range(1, len(lines) + 1), "line": lines})
+    if not path.name.lower().endswith(".parquet"):
+        frame = frame.slice(1).with_columns(pl.col("source_row") - 1)
+    frame = frame.filter(pl.col("line").str.strip_chars() != "")
+    con.register("unreadable_lines", frame.to_arrow())
+    try:
+        store.execute(
+            con,
+            "insert into quarantine (source_file, row_number, reason, raw)"
+            " select $f, source_row, 'unreadable_file', line from unreadable_lines",
+            {"f": name},
+        )
+    finally:
+        con.unregister("unreadable_lines")
+    return FileResult(name, folder.name, "refused", frame.height, 0, frame.height, 0, message)
 
 
 def results_frame(results: list[FileResult]) -> pl.DataFrame:
@@ -294,5 +602,6 @@ def results_frame(results: list[FileResult]) -> pl.DataFrame:
             "rows_quarantined": pl.Int64,
             "rows_duplicate": pl.Int64,
             "message": pl.Utf8,
+            "seconds": pl.Float64,
         },
     )

@@ -1,52 +1,91 @@
 -- Checked meter rows of one landing file: one row per landing row, key source_row.
 -- Instants become UTC using the premise's zone when the file gives wall-clock time;
--- duplicates are judged on (premise_id, interval_start_utc) so that a repeated interval
--- with the same kWh counts once and a conflicting one is never silently chosen.
+-- duplicates are judged on (premise_id, interval_start_utc) among rows that pass the
+-- per-row checks, so a repeated interval with the same kWh counts once and a conflicting
+-- one is never silently chosen: not within the file, not against a row already loaded
+-- from another file (loaded_conflict: ingest moves that row to quarantine too), and not
+-- against a key already quarantined as a conflict.
 with source as (
     select * from landing
 ),
-typed as (
+parsed as (
     select
         l.source_row,
-        l.raw,
         nullif(trim(l.premise_id), '') as premise_id,
         l.interval_start as interval_text,
         p.timezone,
-        utc_instant(l.interval_start, p.timezone) as interval_start_utc,
-        try_cast(l.interval_minutes as integer) as interval_minutes,
-        coalesce(try_cast(l.kwh as double), try_cast(l.wh as double) / 1000.0) as kwh,
+        regexp_matches(trim(l.interval_start), '(Z|[+-][0-9]{2}(:?[0-9]{2})?)$') as has_offset,
+        try_cast(trim(l.interval_start) as timestamp) as wall_clock,
+        try_cast(trim(l.interval_minutes) as integer) as interval_minutes,
+        coalesce(try_cast(trim(l.kwh) as double), try_cast(trim(l.wh) as double) / 1000.0) as kwh,
         lower(coalesce(nullif(trim(l.quality), ''), 'actual')) as quality,
         p.premise_id is not null as premise_known
     from source l
     left join premise p on p.premise_id = trim(l.premise_id)
 ),
-keyed as (
+-- The offset test and parse are done once per row here (the hot path of a large lake);
+-- the rules are those of the utc_instant and local_time_* macros in schema.sql.
+typed as (
     select
-        typed.*,
-        count(distinct typed.kwh) over (partition by premise_id, interval_start_utc) as key_values,
-        row_number() over (partition by premise_id, interval_start_utc order by source_row) as key_rank,
-        m.kwh as loaded_kwh
-    from typed
-    left join meter_read m using (premise_id, interval_start_utc)
+        *,
+        case
+            when has_offset then try_cast(trim(interval_text) as timestamptz)
+            else timezone(timezone, wall_clock)
+        end as interval_start_utc
+    from parsed
 ),
-checked as (
+row_checked as (
     select
-        premise_id, interval_start_utc, interval_minutes, kwh, quality, source_row, raw,
+        *,
         case
             when premise_id is null then 'missing_key'
             when not premise_known then 'unknown_premise'
             when interval_text is null or trim(interval_text) = '' then 'missing_timestamp'
             when interval_start_utc is null then 'bad_timestamp'
-            when local_time_missing(interval_text, timezone) then 'nonexistent_local_time'
-            when local_time_ambiguous(interval_text, timezone) then 'ambiguous_local_time'
+            when not has_offset and timezone(timezone, interval_start_utc) <> wall_clock
+                then 'nonexistent_local_time'
+            when not has_offset
+                and (timezone(timezone, interval_start_utc - interval 1 hour) = wall_clock
+                    or timezone(timezone, interval_start_utc + interval 1 hour) = wall_clock)
+                then 'ambiguous_local_time'
             when interval_minutes is null or interval_minutes not in (15, 30, 60) then 'bad_interval_length'
             when epoch(interval_start_utc)::bigint % (interval_minutes * 60) <> 0 then 'interval_not_aligned'
-            when kwh is null then 'bad_number'
+            when kwh is null or isnan(kwh) then 'bad_number'
             when kwh < 0 or kwh > $max_kw * interval_minutes / 60.0 then 'kwh_out_of_range'
             when quality not in ('actual', 'estimated') then 'bad_code'
-            when key_values > 1 then 'conflicting_duplicate'
-            when loaded_kwh is not null and loaded_kwh <> kwh then 'conflicting_duplicate'
-            when key_rank > 1 or loaded_kwh is not null then 'exact_duplicate'
+        end as row_reason,
+        concat_ws('|', premise_id, interval_start_utc) as record_key
+    from typed
+),
+conflict_keys as (
+    select distinct record_key from quarantine where reason = 'conflicting_duplicate' and record_key is not null
+),
+keyed as (
+    select
+        r.*,
+        min(r.kwh) over key_all <> max(r.kwh) over key_all
+            or min(r.interval_minutes) over key_all <> max(r.interval_minutes) over key_all as key_conflict,
+        row_number() over key_rows as key_rank,
+        m.kwh is not null and (m.kwh <> r.kwh or m.interval_minutes <> r.interval_minutes) as loaded_conflict,
+        m.kwh is not null as loaded_same_key,
+        c.record_key is not null as known_conflict
+    from row_checked r
+    left join meter_read m
+        on r.row_reason is null
+        and m.premise_id = r.premise_id
+        and m.interval_start_utc = r.interval_start_utc
+    left join conflict_keys c on r.row_reason is null and c.record_key = r.record_key
+    window
+        key_all as (partition by r.premise_id, r.interval_start_utc, r.row_reason is null),
+        key_rows as (partition by r.premise_id, r.interval_start_utc, r.row_reason is null order by r.source_row)
+),
+checked as (
+    select
+        premise_id, interval_start_utc, interval_minutes, kwh, quality, source_row, record_key, loaded_conflict,
+        case
+            when row_reason is not null then row_reason
+            when key_conflict or loaded_conflict or known_conflict then 'conflicting_duplicate'
+            when key_rank > 1 or loaded_same_key then 'exact_duplicate'
         end as reason
     from keyed
 )

@@ -1,21 +1,23 @@
 -- Checked premise rows of one landing file: one row per landing row, key source_row.
 -- Every row comes out with either typed values or a reason, so ingest can prove that
--- rows read = rows loaded + rows quarantined + exact duplicates.
+-- rows read = rows loaded + rows quarantined + exact duplicates. A premise already loaded
+-- from another file with different attributes keeps its loaded row (meter and thermostat
+-- rows hang on it) and the new row is quarantined as a conflict; the same row again is an
+-- exact duplicate.
 with source as (
     select * from landing
 ),
 typed as (
     select
         source_row,
-        raw,
         nullif(trim(premise_id), '') as premise_id,
         nullif(trim(timezone), '') as timezone,
         nullif(trim(weather_station_id), '') as weather_station_id,
         nullif(trim(rate_plan_id), '') as rate_plan_id,
-        try_cast(comfort_cool_c as double) as comfort_cool_c,
-        try_cast(comfort_heat_c as double) as comfort_heat_c,
+        try_cast(trim(comfort_cool_c) as double) as comfort_cool_c,
+        try_cast(trim(comfort_heat_c) as double) as comfort_heat_c,
         coalesce(nullif(trim(cohort), ''), 'all') as cohort,
-        try_cast(floor_area_m2 as double) as floor_area_m2
+        try_cast(trim(floor_area_m2) as double) as floor_area_m2
     from source
 ),
 known_zones as (
@@ -29,6 +31,13 @@ keyed as (
             over (partition by premise_id) as key_values,
         row_number() over (partition by premise_id order by source_row) as key_rank,
         exists (select 1 from premise p where p.premise_id = typed.premise_id) as already_loaded,
+        exists (
+            select 1 from premise p
+            where p.premise_id = typed.premise_id
+                and (p.timezone, p.weather_station_id, p.rate_plan_id, p.comfort_cool_c, p.comfort_heat_c, p.cohort)
+                    = (typed.timezone, typed.weather_station_id, typed.rate_plan_id, typed.comfort_cool_c,
+                       typed.comfort_heat_c, typed.cohort)
+        ) as loaded_same,
         timezone in (select name from known_zones) as zone_known,
         rate_plan_id in (select rate_plan_id from tariff_rate) as plan_known
     from typed
@@ -45,8 +54,8 @@ checked as (
             when comfort_cool_c not between $cool_low and $cool_high then 'setpoint_out_of_range'
             when comfort_heat_c not between $heat_low and $heat_high then 'setpoint_out_of_range'
             when key_values > 1 then 'conflicting_duplicate'
-            when already_loaded then 'conflicting_duplicate'
-            when key_rank > 1 then 'exact_duplicate'
+            when already_loaded and not loaded_same then 'conflicting_duplicate'
+            when key_rank > 1 or already_loaded then 'exact_duplicate'
         end as reason
     from keyed
 )

@@ -10,23 +10,28 @@ create table if not exists premise (
     comfort_heat_c double not null,
     cohort varchar not null,
     floor_area_m2 double,
+    source_row bigint,
     source_file varchar not null
 );
+-- meter_read and weather_obs are keyed (premise_id, interval_start_utc) and (station_id,
+-- observed_at_utc). The key is enforced by their check files (a second row for a key is
+-- counted or quarantined, never inserted) and tested, not by a primary-key index: keeping
+-- that index up cost more than the checks themselves on a 3-million-row file.
 create table if not exists meter_read (
     premise_id varchar not null,
     interval_start_utc timestamptz not null,
     interval_minutes integer not null,
     kwh double not null,
     quality varchar not null,
-    source_file varchar not null,
-    primary key (premise_id, interval_start_utc)
+    source_row bigint,
+    source_file varchar not null
 );
 create table if not exists weather_obs (
     station_id varchar not null,
     observed_at_utc timestamptz not null,
     dry_bulb_c double not null,
-    source_file varchar not null,
-    primary key (station_id, observed_at_utc)
+    source_row bigint,
+    source_file varchar not null
 );
 create table if not exists thermostat_event (
     premise_id varchar not null,
@@ -47,13 +52,19 @@ create table if not exists tariff_rate (
     start_hour integer not null,
     end_hour integer not null,
     price_per_kwh double not null,
+    source_row bigint,
     source_file varchar not null
 );
+-- row_number counts data records of the file (header and blank lines not counted); raw
+-- is the record as JSON of its columns, or the text line when it could not be parsed.
+-- record_key (table|key values) is set on conflicting duplicates so that a later file
+-- with the same key is quarantined too instead of being silently chosen.
 create table if not exists quarantine (
     source_file varchar not null,
     row_number bigint not null,
     reason varchar not null,
-    raw varchar
+    raw varchar,
+    record_key varchar
 );
 create table if not exists ingest_log (
     source_file varchar primary key,
@@ -66,8 +77,18 @@ create table if not exists ingest_log (
     status varchar not null,
     message varchar,
     seconds double not null,
-    ingested_at timestamptz not null
+    ingested_at timestamptz not null,
+    quarantined_by_reason varchar,
+    missing_since timestamptz
 );
+-- Warehouses made before these columns existed gain them here.
+alter table premise add column if not exists source_row bigint;
+alter table meter_read add column if not exists source_row bigint;
+alter table weather_obs add column if not exists source_row bigint;
+alter table tariff_rate add column if not exists source_row bigint;
+alter table quarantine add column if not exists record_key varchar;
+alter table ingest_log add column if not exists quarantined_by_reason varchar;
+alter table ingest_log add column if not exists missing_since timestamptz;
 -- An instant in UTC from landing text: with an offset (or Z) it is absolute; without,
 -- it is local wall-clock time in the premise's zone.
 create or replace macro utc_instant(txt, tz) as

@@ -7,7 +7,6 @@ with source as (
 typed as (
     select
         source_row,
-        raw,
         nullif(trim(rate_plan_id), '') as rate_plan_id,
         try_cast(split_part(trim(months), '-', 1) as integer) as month_from,
         try_cast(coalesce(nullif(split_part(trim(months), '-', 2), ''), split_part(trim(months), '-', 1))
@@ -20,7 +19,7 @@ typed as (
 ),
 checked as (
     select
-        rate_plan_id, month_from, month_to, day_type, start_hour, end_hour, price_per_kwh, source_row, raw,
+        rate_plan_id, month_from, month_to, day_type, start_hour, end_hour, price_per_kwh, source_row,
         case
             when rate_plan_id is null then 'missing_key'
             when month_from is null or month_to is null or start_hour is null or end_hour is null

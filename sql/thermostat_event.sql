@@ -7,7 +7,6 @@ with source as (
 typed as (
     select
         l.source_row,
-        l.raw,
         nullif(trim(l.premise_id), '') as premise_id,
         l.changed_at as changed_text,
         p.timezone,
@@ -30,7 +29,7 @@ typed as (
 checked as (
     select
         premise_id, changed_at_utc, mode, cool_setpoint_c, heat_setpoint_c, occupied, indoor_c,
-        source_row, raw,
+        source_row,
         case
             when premise_id is null then 'missing_key'
             when not premise_known then 'unknown_premise'

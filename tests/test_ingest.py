@@ -2,10 +2,22 @@
 
 from __future__ import annotations
 
-import duckdb
-import pytest
+import datetime as dt
+import gzip
+import json
+import tempfile
+import textwrap
+import zoneinfo
+from pathlib import Path
 
-from pipeline import ingest, store
+import duckdb
+import numpy as np
+import polars as pl
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from pipeline import cli, ingest, store
 from tests.conftest import lake_config, write_landing
 
 TARIFF = """
@@ -153,3 +165,472 @@ def test_reingesting_unchanged_files_changes_nothing_and_changed_file_replaces_r
         after = con.execute("select kwh from meter_read").fetchall()
         logged = con.execute("select count(*) from ingest_log").fetchall()[0][0]
     assert len(before) == 1 and after == [(2.0,)] and logged == 3
+
+
+# --- every reason code, each from a tiny inline file ---------------------------------------
+
+METER_HEAD = "premise_id,interval_start,interval_minutes,kwh,quality\n"
+GOOD_METER = "P1,2026-06-01T12:00:00Z,60,1.0,actual\n"
+
+
+def _check_accounting(con):
+    """Every logged file: read = loaded + quarantined + duplicates, and the tables agree with the log."""
+    tables = {f.name: f.table for f in ingest.FOLDERS}
+    rows = con.execute(
+        "select source_file, folder, rows_read, rows_loaded, rows_quarantined, rows_duplicate,"
+        " quarantined_by_reason from ingest_log"
+    ).fetchall()
+    for source_file, folder, read, loaded, quarantined, duplicate, by_reason in rows:
+        assert read == loaded + quarantined + duplicate, source_file
+        in_table = con.execute(
+            f"select count(*) from {tables[folder]} where source_file = $f", {"f": source_file}
+        ).fetchall()[0][0]
+        in_quarantine = con.execute(
+            "select count(*) from quarantine where source_file = $f", {"f": source_file}
+        ).fetchall()[0][0]
+        assert (in_table, in_quarantine) == (loaded, quarantined), source_file
+        assert sum(json.loads(by_reason).values()) == quarantined, source_file
+    # The time-series keys hold without an index: the checks alone keep them unique.
+    for table, key in (
+        ("meter_read", "premise_id, interval_start_utc"),
+        ("weather_obs", "station_id, observed_at_utc"),
+    ):
+        total, distinct = con.execute(f"select count(*), count(distinct ({key})) from {table}").fetchall()[0]
+        assert total == distinct, table
+
+
+REASON_CASES = [
+    ("meter/m.csv", METER_HEAD + ",2026-06-01T12:00:00Z,60,1.0,actual\n", "missing_key"),
+    ("meter/m.csv", METER_HEAD + "P9,2026-06-01T12:00:00Z,60,1.0,actual\n", "unknown_premise"),
+    ("meter/m.csv", METER_HEAD + "P1,,60,1.0,actual\n", "missing_timestamp"),
+    ("meter/m.csv", METER_HEAD + "P1,June the first,60,1.0,actual\n", "bad_timestamp"),
+    # 02:30 on 8 March 2026 does not exist in America/Chicago (IANA tz database via zoneinfo).
+    ("meter/m.csv", METER_HEAD + "P1,2026-03-08 02:30,15,0.2,actual\n", "nonexistent_local_time"),
+    # 01:30 on 1 November 2026 happens twice in America/Chicago (IANA tz database via zoneinfo).
+    ("meter/m.csv", METER_HEAD + "P1,2026-11-01 01:30,15,0.2,actual\n", "ambiguous_local_time"),
+    ("meter/m.csv", METER_HEAD + "P1,2026-06-01T12:00:00Z,20,1.0,actual\n", "bad_interval_length"),
+    ("meter/m.csv", METER_HEAD + "P1,2026-06-01T12:15:00Z,30,1.0,actual\n", "interval_not_aligned"),
+    ("meter/m.csv", METER_HEAD + "P1,2026-06-01T12:00:00Z,60,-0.1,actual\n", "kwh_out_of_range"),
+    # 61 kWh in one hour is a 61 kW mean draw, beyond residential service (common practice).
+    ("meter/m.csv", METER_HEAD + "P1,2026-06-01T12:00:00Z,60,61,actual\n", "kwh_out_of_range"),
+    ("meter/m.csv", METER_HEAD + "P1,2026-06-01T12:00:00Z,60,a lot,actual\n", "bad_number"),
+    ("meter/m.csv", METER_HEAD + "P1,2026-06-01T12:00:00Z,60,1.0,guessed\n", "bad_code"),
+    (
+        "meter/m.csv",
+        METER_HEAD + GOOD_METER + "P1,2026-06-01T12:00:00Z,60,1.5,actual\n",
+        "conflicting_duplicate",
+    ),
+    ("meter/m.csv", METER_HEAD + "P1,2026-06-01T12:00:00Z,60,1.0,actual,extra\n", "malformed_row"),
+    ("meter/m.csv", "premise_id,interval_start,kwh\nP1,2026-06-01T12:00:00Z,1.0\n", "missing_column"),
+    ("meter/m.parquet", "PAR1 this is not parquet\n", "unreadable_file"),
+    # -60..60 °C bounds the dry-bulb temperatures ever observed at the surface (common practice).
+    (
+        "weather/w.csv",
+        "station_id,observed_at,dry_bulb_c\nS1,2026-06-01T12:00:00Z,71\n",
+        "temperature_out_of_range",
+    ),
+    (
+        "thermostat/t.csv",
+        "premise_id,changed_at,mode,cool_setpoint_c,heat_setpoint_c\nP1,2026-06-01T12:00:00Z,cool,45,20\n",
+        "setpoint_out_of_range",
+    ),
+    (
+        "thermostat/t.csv",
+        "premise_id,changed_at,mode,cool_setpoint_c,heat_setpoint_c\nP1,2026-06-01T12:00:00Z,warm,24,20\n",
+        "bad_code",
+    ),
+    (
+        "premises/q.csv",
+        "premise_id,timezone,weather_station_id,rate_plan_id,comfort_cool_c,comfort_heat_c\n"
+        "P2,America/Chicago,S1,FLAT-9,24,20\n",
+        "unknown_rate_plan",
+    ),
+    (
+        "premises/q.csv",
+        "premise_id,timezone,weather_station_id,rate_plan_id,comfort_cool_c,comfort_heat_c\n"
+        "P2,America/Chicago,,TOU,24,20\n",
+        "missing_value",
+    ),
+    (
+        "tariffs/u.csv",
+        "rate_plan_id,months,day_type,start_hour,end_hour,price_per_kwh\nX,1-12,weekday,0,24,25\n",
+        "price_out_of_range",
+    ),
+]
+
+
+@pytest.mark.parametrize(("name", "text", "reason"), REASON_CASES, ids=[c[2] for c in REASON_CASES])
+def test_each_reason_code_lands_in_quarantine_and_every_file_adds_up(tmp_path, name, text, reason):
+    """The bad row is quarantined with its reason code and every file's counts add up."""
+    _, results, con = _ingest(tmp_path, {name: text})
+    reasons = set(_reasons(con, f"landing/{name}").values())
+    assert reason in reasons
+    _check_accounting(con)
+    for row in results.iter_rows(named=True):
+        assert row["rows_read"] == row["rows_loaded"] + row["rows_quarantined"] + row["rows_duplicate"]
+    if reason == "conflicting_duplicate":
+        assert _reasons(con, f"landing/{name}") == {1: reason, 2: reason}
+        assert con.execute("select count(*) from meter_read").fetchall() == [(0,)]
+
+
+def test_exact_duplicates_are_counted_and_loaded_once(tmp_path):
+    """The same interval twice with the same kWh is one loaded row and one counted duplicate."""
+    _, results, con = _ingest(tmp_path, {"meter/m.csv": METER_HEAD + GOOD_METER * 3})
+    row = results.filter(pl.col("folder") == "meter").row(0, named=True)
+    assert (row["rows_read"], row["rows_loaded"], row["rows_quarantined"], row["rows_duplicate"]) == (
+        3,
+        1,
+        0,
+        2,
+    )
+    assert con.execute("select count(*) from meter_read").fetchall() == [(1,)]
+
+
+def test_malformed_rows_keep_their_row_numbers_around_good_ones(tmp_path):
+    """Records the CSV reader rejects keep their text and row number; the rows after them still load."""
+    meter = (
+        METER_HEAD
+        + "P1,2026-06-01T12:00:00Z,60,1.0,actual\n"
+        + "P1,2026-06-01T13:00:00Z,60,1.0,actual,surplus\n"
+        + "P1,2026-06-01T14:00:00Z,60,1.0,actual\n"
+        + "P1,2026-06-01T15:00:00Z,60,-5,actual\n"
+    )
+    _, _, con = _ingest(tmp_path, {"meter/m.csv": meter})
+    assert _reasons(con, "landing/meter/m.csv") == {2: "malformed_row", 4: "kwh_out_of_range"}
+    raw = con.execute("select raw from quarantine where row_number = 2").fetchall()[0][0]
+    assert raw.endswith("surplus")
+    _check_accounting(con)
+
+
+# --- readers and the column mapping ---------------------------------------------------------
+
+
+def test_gzip_bom_crlf_csv_and_parquet_all_load(tmp_path):
+    """Gzip CSV with a byte-order mark and CRLF line ends, and Parquet, load like plain CSV."""
+    root = tmp_path
+    for folder, text in (("tariffs", TARIFF), ("premises", PREMISES)):
+        (root / "landing" / folder).mkdir(parents=True)
+        frame = pl.read_csv(textwrap.dedent(text).strip().encode(), infer_schema=False)
+        frame.write_parquet(root / "landing" / folder / "first.parquet")
+    text = "\ufeff" + (METER_HEAD + GOOD_METER + "P1,2026-06-01T13:00:00Z,60,2.0,\n").replace("\n", "\r\n")
+    (root / "landing/meter").mkdir()
+    (root / "landing/meter/a.csv.gz").write_bytes(gzip.compress(text.encode("utf-8")))
+    pl.DataFrame(
+        {
+            "premise_id": ["P1", "P1"],
+            "interval_start": [
+                dt.datetime(2026, 6, 1, 14, tzinfo=dt.UTC),
+                dt.datetime(2026, 6, 1, 15, tzinfo=dt.UTC),
+            ],
+            "interval_minutes": [60, 60],
+            "kwh": [3.0, 4.0],
+        }
+    ).write_parquet(root / "landing/meter/b.parquet")
+    config = lake_config(root)
+    results = ingest.results_frame(ingest.ingest(config))
+    assert set(results["status"]) == {"loaded"}
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        rows = con.execute(
+            "select strftime(interval_start_utc, '%H'), kwh, quality from meter_read order by 1"
+        ).fetchall()
+    assert rows == [
+        ("12", 1.0, "actual"),
+        ("13", 2.0, "actual"),
+        ("14", 3.0, "actual"),
+        ("15", 4.0, "actual"),
+    ]
+
+
+def test_column_mapping_renames_and_converts_units(tmp_path):
+    """Mapped headers load: usage_kwh for kwh, wh converted to kWh, dry_bulb_f converted to °C."""
+    root = write_landing(
+        tmp_path,
+        {
+            "tariffs/t.csv": TARIFF,
+            "premises/p.csv": PREMISES,
+            "meter/a.csv": "meter,start,minutes,usage_kwh\nP1,2026-06-01T12:00:00Z,60,1.25\n",
+            "meter/b.csv": "meter,start,minutes,wh\nP1,2026-06-01T13:00:00Z,30,750\n",
+            "weather/w.csv": "station,time_utc,temp_f\nS1,2026-06-01T12:00:00Z,50\n",
+        },
+    )
+    config = lake_config(
+        root,
+        columns={
+            "meter": {
+                "premise_id": "meter",
+                "interval_start": "start",
+                "interval_minutes": "minutes",
+                "kwh": "usage_kwh",
+            },
+            "weather": {"station_id": "station", "observed_at": "time_utc", "dry_bulb_f": "temp_f"},
+        },
+    )
+    results = ingest.results_frame(ingest.ingest(config))
+    assert set(results["status"]) == {"loaded"}
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        kwh = con.execute(
+            "select interval_minutes, kwh from meter_read order by interval_start_utc"
+        ).fetchall()
+        temp = con.execute("select dry_bulb_c from weather_obs").fetchall()
+    # 50 °F = 10 °C; 750 Wh = 0.75 kWh (SI definitions).
+    assert kwh == [(60, 1.25), (30, 0.75)] and temp == [(pytest.approx(10.0),)]
+
+
+# --- daylight saving ----------------------------------------------------------------------
+
+CHICAGO = zoneinfo.ZoneInfo("America/Chicago")
+
+
+def _local_day_rows(day: dt.date, minutes: int, rng: np.random.Generator) -> tuple[list[str], int, float]:
+    """Meter rows with offsets covering one local day; return them, the day's hours and kWh."""
+    start = dt.datetime.combine(day, dt.time(), CHICAGO).astimezone(dt.UTC)
+    end = dt.datetime.combine(day + dt.timedelta(days=1), dt.time(), CHICAGO).astimezone(dt.UTC)
+    count = int((end - start) / dt.timedelta(minutes=minutes))
+    kwh = np.round(rng.uniform(0.05, 0.5, count) * minutes / 15, 3)
+    rows = [
+        f"P1,{(start + dt.timedelta(minutes=minutes * i)).astimezone(CHICAGO).isoformat()},{minutes},{kwh[i]}"
+        for i in range(count)
+    ]
+    return rows, int((end - start) / dt.timedelta(hours=1)), float(kwh.sum())
+
+
+def test_daylight_saving_days_have_23_and_25_hours_and_keep_their_kwh(tmp_path):
+    """Spring-forward and fall-back local days have 23 and 25 hourly rows whose kWh equals the reads'."""
+    rng = np.random.default_rng(4)
+    spring, spring_hours, spring_kwh = _local_day_rows(dt.date(2026, 3, 8), 15, rng)
+    fall, fall_hours, fall_kwh = _local_day_rows(dt.date(2026, 11, 1), 30, rng)
+    summer, summer_hours, summer_kwh = _local_day_rows(dt.date(2026, 7, 1), 60, rng)
+    # A spring-forward local day has 23 hours, a fall-back day 25 (common practice); here the
+    # count comes independently from the IANA tz database via zoneinfo.
+    assert (spring_hours, fall_hours, summer_hours) == (23, 25, 24)
+    meter = "premise_id,interval_start,interval_minutes,kwh\n" + "\n".join(spring + fall + summer) + "\n"
+    config, results, con = _ingest(tmp_path, {"meter/m.csv": meter})
+    con.close()
+    assert results.filter(pl.col("folder") == "meter")["rows_loaded"].to_list() == [
+        len(spring + fall + summer)
+    ]
+    with store.warehouse(config.warehouse_path) as con:
+        store.build_table(con, "hourly", {})
+        days = dict(
+            (d, (n, kwh))
+            for d, n, kwh in con.execute(
+                "select local_date, count(*), sum(kwh) from hourly"
+                " where local_date in ('2026-03-08', '2026-11-01', '2026-07-01') group by local_date"
+            ).fetchall()
+        )
+    assert days[dt.date(2026, 3, 8)] == (spring_hours, pytest.approx(spring_kwh))
+    assert days[dt.date(2026, 11, 1)] == (fall_hours, pytest.approx(fall_kwh))
+    assert days[dt.date(2026, 7, 1)] == (summer_hours, pytest.approx(summer_kwh))
+
+
+# --- idempotency, increments, replacement, files that leave the lake ---------------------------
+
+TABLES = ("premise", "tariff_rate", "meter_read", "weather_obs", "thermostat_event", "quarantine")
+
+
+def _snapshot(config):
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        tables = {t: con.execute(f"select * from {t} order by all").fetchall() for t in TABLES}
+        tables["ingest_log"] = con.execute(
+            "select source_file, content_hash, rows_read, rows_loaded, rows_quarantined, rows_duplicate,"
+            " quarantined_by_reason from ingest_log order by all"
+        ).fetchall()
+        tables["coverage"] = con.execute("select * from coverage order by all").fetchall()
+    return tables
+
+
+def _meter_day(day: int, kwh: float) -> str:
+    rows = [f"P1,2026-06-{day:02d}T{h:02d}:00:00Z,60,{kwh}" for h in range(24)]
+    return "premise_id,interval_start,interval_minutes,kwh\n" + "\n".join(rows) + "\nP1,bad,60,1\n"
+
+
+def test_same_lake_twice_identical_new_file_adds_only_its_rows_changed_file_replaces_its_rows(tmp_path):
+    """Re-ingest changes nothing; a new file adds exactly its rows; an edited file swaps its own rows."""
+    weather = "station_id,observed_at,dry_bulb_c\nS1,2026-06-01T12:00:00Z,30\nS1,2026-06-01T13:00:00Z,99\n"
+    config, _, con = _ingest(tmp_path, {"meter/d01.csv": _meter_day(1, 1.0), "weather/w.csv": weather})
+    con.close()
+    first = _snapshot(config)
+    ingest.ingest(config)
+    assert _snapshot(config) == first
+
+    write_landing(tmp_path, {"meter/d02.csv": _meter_day(2, 2.0)})
+    results = ingest.results_frame(ingest.ingest(config))
+    assert results.filter(pl.col("status") != "unchanged")["source_file"].to_list() == [
+        "landing/meter/d02.csv"
+    ]
+    second = _snapshot(config)
+    added = [r for r in second["meter_read"] if r not in first["meter_read"]]
+    assert len(added) == 24 and {r[-1] for r in added} == {"landing/meter/d02.csv"}
+    assert set(first["meter_read"]) <= set(second["meter_read"])
+    assert len(second["quarantine"]) == len(first["quarantine"]) + 1
+
+    write_landing(tmp_path, {"meter/d02.csv": _meter_day(2, 3.0).replace("P1,bad,60,1\n", "")})
+    ingest.ingest(config)
+    third = _snapshot(config)
+    d02 = [r for r in third["meter_read"] if r[-1] == "landing/meter/d02.csv"]
+    assert len(d02) == 24 and {r[3] for r in d02} == {3.0}
+    assert [r for r in third["meter_read"] if r[-1] != "landing/meter/d02.csv"] == first["meter_read"]
+    assert third["quarantine"] == first["quarantine"]
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        _check_accounting(con)
+
+
+def test_conflict_with_a_loaded_row_quarantines_both_and_is_released_when_fixed(tmp_path):
+    """A later file disagreeing with a loaded interval quarantines both rows; fixing it reloads one."""
+    config, _, con = _ingest(tmp_path, {"meter/a.csv": METER_HEAD + GOOD_METER})
+    con.close()
+    write_landing(tmp_path, {"meter/b.csv": METER_HEAD + GOOD_METER.replace("1.0", "1.7")})
+    ingest.ingest(config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        assert con.execute("select count(*) from meter_read").fetchall() == [(0,)]
+        assert con.execute("select source_file, reason from quarantine order by 1").fetchall() == [
+            ("landing/meter/a.csv", "conflicting_duplicate"),
+            ("landing/meter/b.csv", "conflicting_duplicate"),
+        ]
+        _check_accounting(con)
+    # A third file agreeing with either side is not silently chosen either.
+    write_landing(tmp_path, {"meter/c.csv": METER_HEAD + GOOD_METER})
+    ingest.ingest(config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        assert con.execute("select count(*) from meter_read").fetchall() == [(0,)]
+    # Correcting b releases the conflict: a and c are checked again and the value loads once.
+    write_landing(tmp_path, {"meter/b.csv": METER_HEAD + GOOD_METER})
+    results = ingest.results_frame(ingest.ingest(config))
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        assert con.execute("select kwh, source_file from meter_read").fetchall() == [
+            (1.0, "landing/meter/b.csv")
+        ]
+        assert con.execute("select count(*) from quarantine").fetchall() == [(0,)]
+        _check_accounting(con)
+    assert results.filter(pl.col("folder") == "meter")["rows_duplicate"].sum() == 2
+
+
+def test_a_file_gone_from_the_lake_is_reported_and_its_rows_stay(tmp_path):
+    """A file that disappeared is listed as missing; the rows it loaded are kept."""
+    config, _, con = _ingest(tmp_path, {"meter/d01.csv": _meter_day(1, 1.0)})
+    con.close()
+    (tmp_path / "landing/meter/d01.csv").unlink()
+    results = ingest.results_frame(ingest.ingest(config))
+    missing = results.filter(pl.col("status") == "missing").row(0, named=True)
+    assert missing["source_file"] == "landing/meter/d01.csv" and missing["rows_loaded"] == 24
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        assert con.execute("select count(*) from meter_read").fetchall() == [(24,)]
+
+
+# --- coverage -----------------------------------------------------------------------------
+
+
+def test_coverage_reports_missing_intervals_per_premise_consistently_with_the_hourly_grid(tmp_path):
+    """Coverage counts expected and present intervals, and its gap hours are the grid's short hours."""
+    starts = [dt.datetime(2026, 6, 1, 0, tzinfo=dt.UTC) + dt.timedelta(minutes=15 * i) for i in range(96)]
+    kept = [s for i, s in enumerate(starts) if not (20 <= i < 28 or i == 50)]
+    meter = "premise_id,interval_start,interval_minutes,kwh\n" + "".join(
+        f"P1,{s.isoformat()},15,0.25\n" for s in kept
+    )
+    premises = PREMISES + "    P2,America/Chicago,S1,TOU,24,20,north\n"
+    config = lake_config(
+        write_landing(tmp_path, {"tariffs/t.csv": TARIFF, "premises/p.csv": premises, "meter/m.csv": meter})
+    )
+    ingest.ingest(config)
+    with store.warehouse(config.warehouse_path) as con:
+        coverage = store.frame(con, "select * from coverage order by premise_id")
+        store.build_table(con, "hourly", {})
+        short = con.execute(
+            "select count(*) from hourly where premise_id = 'P1' and minutes_read < 60"
+        ).fetchall()
+    p1, p2 = coverage.rows(named=True)
+    assert (p1["intervals_expected"], p1["intervals_present"]) == (96, 87)
+    assert p1["coverage_pct"] == pytest.approx(100 * 87 / 96, abs=1e-3)
+    # Hours 5 and 6 are empty, hour 12 lacks one quarter: three gap hours either way.
+    assert p1["gap_hours"] == short[0][0] == 3
+    assert (p2["intervals_present"], p2["coverage_pct"]) == (0, 0.0)
+
+
+# --- random corruption never crashes ingest or loses a row from the accounting --------------
+
+
+def _valid_meter_csv() -> bytes:
+    rows = [f"P1,2026-06-01T{h:02d}:{m:02d}:00Z,15,0.{h % 9 + 1}" for h in range(6) for m in (0, 15, 30, 45)]
+    return ("premise_id,interval_start,interval_minutes,kwh\n" + "\n".join(rows) + "\n").encode()
+
+
+@st.composite
+def corrupted(draw):
+    lines = _valid_meter_csv().split(b"\n")[:-1]
+    for _ in range(draw(st.integers(1, 4))):
+        i = draw(st.integers(0, len(lines) - 1))
+        kind = draw(st.sampled_from(["drop_field", "garbage", "swap", "truncate"]))
+        fields = lines[i].split(b",")
+        if kind == "drop_field" and len(fields) > 1:
+            del fields[draw(st.integers(0, len(fields) - 1))]
+            lines[i] = b",".join(fields)
+        elif kind == "garbage":
+            at = draw(st.integers(0, len(lines[i])))
+            lines[i] = lines[i][:at] + draw(st.binary(min_size=1, max_size=6)) + lines[i][at:]
+        elif kind == "swap" and len(fields) > 1:
+            a, b = draw(st.lists(st.integers(0, len(fields) - 1), min_size=2, max_size=2, unique=True))
+            fields[a], fields[b] = fields[b], fields[a]
+            lines[i] = b",".join(fields)
+        elif kind == "truncate":
+            lines[i] = lines[i][: draw(st.integers(0, len(lines[i])))]
+    return b"\n".join(lines) + b"\n"
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(data=corrupted())
+def test_random_corruption_never_crashes_and_never_loses_a_row(data):
+    """Dropped fields, garbage bytes, swapped fields or cut lines: ingest ends and every row is counted."""
+    with tempfile.TemporaryDirectory() as tmp:
+        root = write_landing(Path(tmp), {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES})
+        (root / "landing/meter").mkdir()
+        (root / "landing/meter/m.csv").write_bytes(data)
+        config = lake_config(root)
+        results = ingest.results_frame(ingest.ingest(config))
+        with store.warehouse(config.warehouse_path, read_only=True) as con:
+            _check_accounting(con)
+        meter = results.filter(pl.col("folder") == "meter").row(0, named=True)
+        # Without quotes or carriage returns each non-empty line after the header is one record.
+        if b'"' not in data and b"\r" not in data:
+            lines = data.split(b"\n")[1:]
+            assert meter["rows_read"] == sum(1 for line in lines if line.strip()), meter
+
+
+def test_command_line_prints_per_file_counts_with_progress_and_exits_1_on_a_refused_file(tmp_path, capsys):
+    """thermal-ledger ingest prints per-file counts and progress, and exits 1 while a file stays refused."""
+    root = write_landing(
+        tmp_path,
+        {
+            "tariffs/t.csv": TARIFF,
+            "premises/p.csv": PREMISES,
+            "meter/good.csv": METER_HEAD + GOOD_METER,
+            "meter/short.csv": "premise_id,interval_start\nP1,2026-06-01T12:00:00Z\n",
+        },
+    )
+    code = cli.main(["ingest", "--lake", str(root), "--out", str(root / "out")])
+    out, err = capsys.readouterr()
+    assert code == cli.EXIT_REFUSED
+    assert "landing/meter/good.csv" in out and "refused: landing/meter/short.csv" in out
+    assert "[4/4]" in err
+    assert cli.main(["ingest", "--lake", str(root), "--out", str(root / "out")]) == cli.EXIT_REFUSED
+    (root / "landing/meter/short.csv").write_text(METER_HEAD + GOOD_METER.replace("12:00", "13:00"))
+    assert cli.main(["ingest", "--lake", str(root), "--out", str(root / "out")]) == cli.EXIT_OK
+
+
+def test_weather_conflict_across_files_quarantines_both_observations(tmp_path):
+    """Two files giving one station and hour different temperatures leave neither loaded."""
+    head = "station_id,observed_at,dry_bulb_c\n"
+    config, _, con = _ingest(tmp_path, {"weather/a.csv": head + "S1,2026-06-01T12:00:00Z,30\n"})
+    con.close()
+    write_landing(
+        tmp_path, {"weather/b.csv": head + "S1,2026-06-01T12:00:00Z,31\nS1,2026-06-01T13:00:00Z,31\n"}
+    )
+    ingest.ingest(config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        assert con.execute("select strftime(observed_at_utc, '%H') from weather_obs").fetchall() == [("13",)]
+        assert con.execute(
+            "select source_file, row_number, reason from quarantine order by 1"
+        ).fetchall() == [
+            ("landing/weather/a.csv", 1, "conflicting_duplicate"),
+            ("landing/weather/b.csv", 1, "conflicting_duplicate"),
+        ]
+        _check_accounting(con)
