@@ -82,9 +82,9 @@ class Config:
     """Smallest Kish effective sample size at which an estimate counts as supported."""
     max_weight_share: float = 0.25
     """Largest share of the total importance weight one episode may carry in a supported estimate."""
-    estimators: tuple[str, ...] = ("weighted_per_decision_is", "weighted_is", "doubly_robust")
+    estimators: tuple[str, ...] = ("weighted_is", "weighted_per_decision_is", "doubly_robust")
     """Off-policy estimators reported for every candidate (names in pipeline.estimators)."""
-    recommended_estimator: str = "weighted_per_decision_is"
+    recommended_estimator: str = "weighted_is"
     """The estimator whose rows are marked recommended."""
     cooling_days_per_year: int = 122
     """Days a year the cooling schedule is in force, for annualising per-episode savings."""

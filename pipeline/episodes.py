@@ -32,7 +32,8 @@ class EpisodeCounts:
     """Used weekday episodes per premise and observed weekday, averaged over premises with episodes."""
 
 
-def _params(config: Config) -> dict[str, object]:
+def sql_params(config: Config) -> dict[str, object]:
+    """Bound parameters of the hourly, episode and step SQL for ``config``."""
     return {
         "recovery_hours": config.recovery_hours,
         "min_hours": config.min_episode_hours,
@@ -69,14 +70,14 @@ def add_state_keys(steps: pl.DataFrame, config: Config) -> pl.DataFrame:
 
 def steps_for(con: duckdb.DuckDBPyConnection, config: Config) -> pl.DataFrame:
     """Decision steps of the usable episodes under ``config`` (not stored), with state keys and cohort."""
-    steps = store.query(con, "step", _params(config)).sort("episode_id", "t")
+    steps = store.query(con, "step", sql_params(config)).sort("episode_id", "t")
     cohorts = store.frame(con, "select premise_id, cohort from premise")
     return add_state_keys(steps, config).join(cohorts, on="premise_id", how="left")
 
 
 def build(con: duckdb.DuckDBPyConnection, config: Config) -> EpisodeCounts:
     """Rebuild ``hourly``, ``episode`` and ``step`` in the warehouse from the typed tables."""
-    params = _params(config)
+    params = sql_params(config)
     hours = store.build_table(con, "hourly", params)
     episodes = store.build_table(con, "episode", params)
     raw_steps = store.query(con, "step", params).sort("episode_id", "t")

@@ -18,6 +18,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipeline import cli, ingest, store
+from pipeline.config import Config
+from pipeline.episodes import sql_params
 from tests.conftest import lake_config, write_landing
 
 TARIFF = """
@@ -410,7 +412,7 @@ def test_daylight_saving_days_have_23_and_25_hours_and_keep_their_kwh(tmp_path):
         len(spring + fall + summer)
     ]
     with store.warehouse(config.warehouse_path) as con:
-        store.build_table(con, "hourly", {})
+        store.build_table(con, "hourly", sql_params(Config()))
         days = dict(
             (d, (n, kwh))
             for d, n, kwh in con.execute(
@@ -534,7 +536,7 @@ def test_coverage_reports_missing_intervals_per_premise_consistently_with_the_ho
     ingest.ingest(config)
     with store.warehouse(config.warehouse_path) as con:
         coverage = store.frame(con, "select * from coverage order by premise_id")
-        store.build_table(con, "hourly", {})
+        store.build_table(con, "hourly", sql_params(Config()))
         short = con.execute(
             "select count(*) from hourly where premise_id = 'P1' and minutes_read < 60"
         ).fetchall()
@@ -589,8 +591,9 @@ def test_random_corruption_never_crashes_and_never_loses_a_row(data):
         with store.warehouse(config.warehouse_path, read_only=True) as con:
             _check_accounting(con)
         meter = results.filter(pl.col("folder") == "meter").row(0, named=True)
-        # Without quotes or carriage returns each non-empty line after the header is one record.
-        if b'"' not in data and b"\r" not in data:
+        # Without quotes or carriage returns each non-empty line after the header is one record
+        # (with a one-column header a blank line is a record too: an empty value).
+        if b'"' not in data and b"\r" not in data and b"," in data.split(b"\n")[0]:
             lines = data.split(b"\n")[1:]
             assert meter["rows_read"] == sum(1 for line in lines if line.strip()), meter
 
