@@ -98,10 +98,12 @@ class BehaviorPolicy:
         self.floor = floor
         self.actions = actions
 
-    def fit(self, steps: pl.DataFrame) -> BehaviorPolicy:
+    def fit(self, steps: pl.DataFrame, weight: np.ndarray | None = None) -> BehaviorPolicy:
         """Count logged actions; ``steps`` needs premise_id, cohort, state_key and action columns.
 
-        Sets ``portfolio_``, ``cohort_`` and ``premise_`` (frames of counts and probabilities).
+        ``weight`` (n_steps,), optional, counts each step that many times (a bootstrap
+        replicate's multiplicities). Sets ``portfolio_``, ``cohort_`` and ``premise_``
+        (frames of counts and probabilities).
         """
         missing = [c for c in REQUIRED if c not in steps.columns]
         if missing:
@@ -114,6 +116,9 @@ class BehaviorPolicy:
         if self.prior_strength <= 0 or not 0 <= self.floor < 1 / len(self.actions):
             raise BehaviorInputError("prior_strength must be > 0 and floor in [0, 1/|A|)")
 
+        steps = steps.with_columns(
+            pl.Series("_weight", np.ones(steps.height) if weight is None else np.asarray(weight, dtype=float))
+        )
         k = self.prior_strength
         self.split_ = ["mode"] if "mode" in steps.columns else []
         split = self.split_
@@ -121,7 +126,9 @@ class BehaviorPolicy:
 
         def counts(keys: list[str]) -> pl.DataFrame:
             keys = [*split, *keys]
-            observed = steps.group_by([*keys, "state_key", "action"]).agg(pl.len().alias("count"))
+            observed = steps.group_by([*keys, "state_key", "action"]).agg(
+                pl.col("_weight").sum().alias("count")
+            )
             states = observed.select([*keys, "state_key"]).unique()
             return (
                 states.join(grid, how="cross")

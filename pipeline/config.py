@@ -76,6 +76,8 @@ class Config:
     """Mix of the uniform policy into each candidate rule, so weights stay bounded."""
     bootstrap_replicates: int = 400
     """Bootstrap resamples of episodes for confidence intervals."""
+    bootstrap_refit_behavior: bool = False
+    """Re-fit the behaviour model in every bootstrap replicate (weighted IS), so intervals carry its error."""
     confidence: float = 0.95
     """Level of confidence intervals and of the lower bound."""
     min_ess: float = 10.0

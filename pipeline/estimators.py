@@ -38,6 +38,7 @@ __all__ = [
     "bootstrap_interval",
     "bootstrap_replicates",
     "percentile_interval",
+    "refit_weighted_is_replicates",
     "diagnostics",
     "doubly_robust",
     "effective_sample_size",
@@ -847,6 +848,59 @@ def bootstrap_replicates(
         replicates[first : first + rows] = _paired_values(s, terms, base, multiplicity)
 
     return s.labels, point, replicates
+
+
+def refit_weighted_is_replicates(
+    steps: pl.DataFrame, multiplicity: np.ndarray, behavior: np.ndarray, *, savings: bool = True
+) -> tuple[np.ndarray, np.ndarray]:
+    """Bootstrap replicates of weighted IS where every replicate brings its own behaviour model.
+
+    When the behaviour probabilities are estimated from the same episodes, a
+    bootstrap that keeps them fixed leaves their estimation error out of the
+    interval. Here each replicate r has episode multiplicities ``multiplicity[r]``
+    and the behaviour probabilities ``behavior[r]`` re-estimated on that resample,
+    and weighted IS (and the paired on-policy value) is recomputed from both.
+
+    Parameters
+    ----------
+    steps : polars.DataFrame
+        Decision steps sorted by (episode_id, t) with ``episode_id``, ``t``,
+        ``reward`` (USD), ``pi`` and optionally ``group``.
+    multiplicity : numpy.ndarray, shape (n_replicates, n_episodes)
+        Episode multiplicities, episodes in frame order.
+    behavior : numpy.ndarray, shape (n_replicates, n_steps)
+        Behaviour probability of each logged action in each replicate, all > 0.
+
+    Returns
+    -------
+    labels : numpy.ndarray, shape (n_groups,)
+    replicates : numpy.ndarray, shape (n_replicates, n_groups)
+        Savings (or values, when ``savings`` is false), USD per episode; NaN where
+        a replicate has no weight in a group.
+    """
+    s = _prepare(steps, ("episode_id", "t", "reward", "pi"), 1.0)
+    pi = steps["pi"].to_numpy().astype(np.float64)
+    behavior = np.asarray(behavior, dtype=np.float64)
+    multiplicity = np.asarray(multiplicity, dtype=np.float64)
+    if behavior.shape[1:] != pi.shape or multiplicity.shape != (behavior.shape[0], s.n_episodes):
+        raise EstimatorInputError(
+            f"behavior must be (n_replicates, {pi.size}) and multiplicity (n_replicates, {s.n_episodes})"
+        )
+    if not (behavior > 0).all():
+        raise EstimatorInputError("re-estimated behaviour probabilities must all be > 0")
+    positive = pi > 0
+    log_ratio = np.where(positive, np.log(np.where(positive, pi, 1.0)), -np.inf) - np.log(behavior)
+    log_rho = np.add.reduceat(log_ratio, s.starts, axis=1)
+    rho = np.exp(np.minimum(log_rho, _MAX_LOG_WEIGHT))
+    episode_return = np.add.reduceat(s.reward, s.starts)
+    member = np.zeros((s.n_episodes, s.n_groups))
+    member[np.arange(s.n_episodes), s.group] = 1.0
+    weight = multiplicity * rho
+    with np.errstate(invalid="ignore", divide="ignore"):
+        value = ((weight * episode_return) @ member) / (weight @ member)
+        if savings:
+            value = value - ((multiplicity * episode_return) @ member) / (multiplicity @ member)
+    return np.asarray(s.labels), value
 
 
 def _clipped_moments(

@@ -66,6 +66,29 @@ def _model_columns(steps: pl.DataFrame, table: np.ndarray, reward: str, config: 
     return pl.DataFrame({"q_hat": q_hat, "v_hat": v_hat})
 
 
+def behavior_replicates(
+    steps: pl.DataFrame, behavior: BehaviorPolicy, config: Config
+) -> tuple[np.ndarray, np.ndarray]:
+    """Poisson episode multiplicities and the behaviour model re-fitted on each resample.
+
+    Returns
+    -------
+    multiplicity : numpy.ndarray, shape (n_replicates, n_episodes)
+    probabilities : numpy.ndarray, shape (n_replicates, n_steps)
+        Re-fitted behaviour probability of each logged action, per replicate.
+    """
+    episode = steps["episode_id"].to_numpy()
+    code = np.cumsum(np.r_[True, episode[1:] != episode[:-1]]) - 1
+    rng = np.random.default_rng(config.seed)
+    multiplicity = rng.poisson(1.0, (config.bootstrap_replicates, int(code[-1]) + 1)).astype(float)
+    probabilities = np.empty((config.bootstrap_replicates, steps.height))
+    # One re-fit per replicate: a bounded loop, each fit a handful of columnar group-bys.
+    for r in range(config.bootstrap_replicates):
+        model = BehaviorPolicy(behavior.prior_strength, behavior.floor, behavior.actions)
+        probabilities[r] = model.fit(steps, multiplicity[r, code]).probabilities(steps)
+    return multiplicity, probabilities
+
+
 def evaluate_policy(
     steps: pl.DataFrame,
     pi: np.ndarray,
@@ -73,6 +96,7 @@ def evaluate_policy(
     days: pl.DataFrame,
     config: Config,
     table: np.ndarray | None = None,
+    refit: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Savings rows (one per scope, group and estimator) and diagnostics of one target policy.
 
@@ -96,6 +120,9 @@ def evaluate_policy(
     table : numpy.ndarray, optional
         The target's probability table (n_states, n_actions), needed for the
         doubly robust estimator's Q model.
+    refit : tuple of numpy.ndarray, optional
+        ``behavior_replicates`` output; when given, weighted IS intervals come
+        from a bootstrap that re-fits the behaviour model in every replicate.
     """
     base = steps.select(
         "episode_id",
@@ -131,17 +158,27 @@ def evaluate_policy(
         diag = estimators.diagnostics(usd_frame)
         for name in names:
             fn = getattr(estimators, name)
-            interval = estimators.bootstrap_interval(
-                usd_frame,
-                fn,
-                savings=True,
-                level=config.confidence,
-                n_replicates=config.bootstrap_replicates,
-                seed=config.seed,
-            ).select("group", "ci_low", "ci_high")
+            point = fn(usd_frame)
+            if refit is not None and name == "weighted_is":
+                labels, replicates = estimators.refit_weighted_is_replicates(usd_frame, *refit)
+                saving = point.join(behavior, on="group").select(
+                    "group", pl.col("estimate") - pl.col("value_behavior_usd")
+                )
+                by_label = dict(zip(saving["group"].to_list(), saving["estimate"].to_list(), strict=True))
+                interval = estimators.percentile_interval(
+                    labels, np.array([by_label[g] for g in labels]), replicates, config.confidence
+                ).select("group", "ci_low", "ci_high")
+            else:
+                interval = estimators.bootstrap_interval(
+                    usd_frame,
+                    fn,
+                    savings=True,
+                    level=config.confidence,
+                    n_replicates=config.bootstrap_replicates,
+                    seed=config.seed,
+                ).select("group", "ci_low", "ci_high")
             joined = (
-                fn(usd_frame)
-                .rename({"estimate": "value_policy_usd"})
+                point.rename({"estimate": "value_policy_usd"})
                 .join(behavior, on="group")
                 .join(fn(kwh_frame).select("group", (-pl.col("estimate")).alias("kwh_policy")), on="group")
                 .join(kwh_behavior, on="group")
@@ -267,14 +304,21 @@ def evaluate_candidates(
     """Evaluate every configured candidate rule, per mode (cooling and heating never mix)."""
     visits = steps.group_by("state_key").agg(pl.len().alias("visits"))
     savings, diags, policies = [], [], []
+    refits: dict[str, tuple[np.ndarray, np.ndarray] | None] = {}
     for rule in config.candidates:
         table = rule.table(config.state, config.actions, config.target_epsilon)
         policies.append(policy_frame(rule.name, table, config).join(visits, on="state_key", how="left"))
         for mode in sorted(steps["mode"].unique()):
             in_mode = steps.filter(pl.col("mode") == mode)
+            if mode not in refits:
+                refits[mode] = (
+                    behavior_replicates(in_mode, behavior, config)
+                    if config.bootstrap_refit_behavior
+                    else None
+                )
             b = behavior.probabilities(in_mode)
             pi = target_probabilities(in_mode, table, config)
-            s, d = evaluate_policy(in_mode, pi, b, days, config, table)
+            s, d = evaluate_policy(in_mode, pi, b, days, config, table, refits[mode])
             tag = (pl.lit(rule.name).alias("policy_name"), pl.lit(mode).alias("mode"))
             savings.append(s.with_columns(*tag))
             diags.append(d.with_columns(*tag))

@@ -811,3 +811,36 @@ def test_zero_target_probabilities_give_zero_weights_without_warnings():
     assert ordinary_is(steps)["estimate"].item() == 0.0
     assert np.isnan(weighted_is(steps)["estimate"].item())
     assert diagnostics(steps)["n_nonzero_weight_episodes"].item() == 0
+
+
+def test_refit_replicates_equal_the_plain_bootstrap_when_the_behaviour_model_does_not_move():
+    """With the same b in every replicate, re-fit replicates of WIS savings equal the plain bootstrap's."""
+    rng = np.random.default_rng(5)
+    n_episodes, horizon = 30, 3
+    steps = pl.DataFrame(
+        {
+            "episode_id": np.repeat(np.arange(n_episodes), horizon),
+            "t": np.tile(np.arange(horizon), n_episodes),
+            "reward": -rng.uniform(0.0, 1.0, n_episodes * horizon),
+            "pi": rng.uniform(0.1, 0.9, n_episodes * horizon),
+            "b": rng.uniform(0.1, 0.9, n_episodes * horizon),
+            "group": np.repeat(np.where(np.arange(n_episodes) < 15, "a", "b"), horizon),
+        }
+    )
+    multiplicity = rng.poisson(1.0, (20, n_episodes)).astype(float)
+    behavior = np.tile(steps["b"].to_numpy(), (20, 1))
+    labels, replicates = est.refit_weighted_is_replicates(steps, multiplicity, behavior)
+    assert list(labels) == ["a", "b"]
+    for r in range(3):
+        resampled = steps.filter(pl.Series(np.repeat(multiplicity[r], horizon) > 0))
+        weights = np.repeat(multiplicity[r], horizon)[np.repeat(multiplicity[r], horizon) > 0]
+        rho = (resampled["pi"] / resampled["b"]).to_numpy().reshape(-1, horizon).prod(axis=1)
+        returns = resampled["reward"].to_numpy().reshape(-1, horizon).sum(axis=1)
+        m = weights[::horizon]
+        group = resampled["group"].to_numpy()[::horizon]
+        for g, label in enumerate(("a", "b")):
+            sel = group == label
+            expected = (m * rho * returns)[sel].sum() / (m * rho)[sel].sum() - (m * returns)[sel].sum() / m[
+                sel
+            ].sum()
+            np.testing.assert_allclose(replicates[r, g], expected)

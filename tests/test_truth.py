@@ -1,0 +1,129 @@
+"""Off-policy estimates against the simulator's truth on the committed sample lake.
+
+The simulator rolled every default candidate out on-policy on the same weather,
+prices, occupancy and base load as the logged history (truth/policy_values.parquet,
+which the pipeline never reads), so each estimate has a known right answer.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from types import SimpleNamespace
+
+import polars as pl
+import pytest
+
+from pipeline import config as config_module
+from pipeline import stages
+
+SAMPLE_LAKE = Path(__file__).resolve().parent.parent / "sample_lake"
+
+
+@pytest.fixture(scope="module")
+def evaluated(tmp_path_factory):
+    out = tmp_path_factory.mktemp("truth_out")
+    # Only homes with presence sensing: their episodes are exactly the simulator's.
+    config = config_module.load(
+        overrides={"lake": str(SAMPLE_LAKE), "out": str(out), "presence_sources": ["occupancy_flag"]}
+    )
+    summary = stages.run_all(config)
+    values = pl.read_parquet(SAMPLE_LAKE / "truth" / "policy_values.parquet").filter(
+        pl.col("epsilon") == config.target_epsilon
+    )
+    behavior = pl.read_parquet(SAMPLE_LAKE / "truth" / "policy_values.parquet").filter(
+        pl.col("policy_name") == "behavior"
+    )
+    truth = values.join(
+        behavior.select("premise_id", pl.col("value_usd").alias("behavior_usd")),
+        on="premise_id",
+        how="left",
+        nulls_equal=True,
+    ).select(
+        "policy_name",
+        pl.col("premise_id").fill_null("portfolio").alias("key"),
+        (pl.col("value_usd") - pl.col("behavior_usd")).alias("true_savings"),
+    )
+    recommended = summary.evaluation.savings.filter(pl.col("recommended"))
+    return SimpleNamespace(rows=recommended.join(truth, on=["policy_name", "key"]), config=config)
+
+
+def _portfolio(evaluated, policy_name):
+    rows = evaluated.rows.filter((pl.col("scope") == "portfolio") & (pl.col("policy_name") == policy_name))
+    assert rows.height == 1
+    return rows.row(0, named=True)
+
+
+@pytest.mark.parametrize(
+    "policy_name",
+    [
+        "setback-2",
+        "setback-2-early",
+        pytest.param(
+            "setback-1",
+            marks=pytest.mark.xfail(
+                strict=True,
+                reason="known defect (issue 6): on this lake the estimated behaviour model pulls the "
+                "setback-1 estimate toward the residents' own value; with the true behaviour "
+                "probabilities the interval covers",
+            ),
+        ),
+    ],
+)
+def test_portfolio_interval_covers_the_true_savings(evaluated, policy_name):
+    """The recommended portfolio 95 % interval covers the candidate's true savings."""
+    row = _portfolio(evaluated, policy_name)
+    assert row["status"] == "ok"
+    assert row["ci_low"] <= row["true_savings"] <= row["ci_high"], row
+
+
+def test_per_premise_intervals_cover_the_truth_near_their_nominal_rate(evaluated, record_property):
+    """Across premises with enough evidence, 95 % intervals cover the truth at least 85 % of the time."""
+    premises = evaluated.rows.filter((pl.col("scope") == "premise") & (pl.col("status") == "ok"))
+    covered = (
+        (pl.col("ci_low") <= pl.col("true_savings")) & (pl.col("true_savings") <= pl.col("ci_high"))
+    ).mean()
+    rate = premises.select(covered).item()
+    record_property("premise_coverage", rate)
+    print(f"per-premise coverage {rate:.3f} over {premises.height} supported premise-policy rows")
+    assert premises.height >= 30 and rate >= 0.85
+
+
+def test_lower_bound_is_below_the_truth_at_least_at_its_level(evaluated):
+    """The 95 % lower bound on savings lies below the true savings in at least 95 % of rows."""
+    below = evaluated.rows.select((pl.col("lower_bound_usd") <= pl.col("true_savings")).mean()).item()
+    assert below >= 0.95
+
+
+@pytest.mark.parametrize("policy_name", ["setback-1", "setback-2", "setback-2-early"])
+def test_with_the_true_behaviour_probabilities_the_interval_covers(evaluated, policy_name):
+    """Weighted IS with the simulator's own behaviour probabilities: the 95 % interval covers the truth.
+
+    Isolates the estimator and its bootstrap from the behaviour model (Sutton and Barto 2018,
+    eq. 5.6 needs the true b for consistency).
+    """
+    from pipeline import estimators, store
+    from pipeline.episodes import load_steps
+    from pipeline.evaluate import target_probabilities
+
+    config = evaluated.config
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        steps = load_steps(con)
+    true_b = pl.read_parquet(SAMPLE_LAKE / "truth" / "steps.parquet").select(
+        "premise_id",
+        pl.col("hour_start").dt.convert_time_zone("UTC").alias("step_start_utc"),
+        pl.col("probability").alias("b"),
+    )
+    steps = steps.with_columns(pl.col("step_start_utc").dt.convert_time_zone("UTC")).join(
+        true_b, on=["premise_id", "step_start_utc"], how="left"
+    )
+    assert steps["b"].null_count() == 0
+    rule = next(r for r in config.candidates if r.name == policy_name)
+    table = rule.table(config.state, config.actions, config.target_epsilon)
+    frame = steps.select("episode_id", "t", "reward", "b").with_columns(
+        pl.Series("pi", target_probabilities(steps, table, config))
+    )
+    row = estimators.bootstrap_interval(frame, "weighted_is", savings=True, n_replicates=400, seed=1).row(
+        0, named=True
+    )
+    truth = _portfolio(evaluated, policy_name)["true_savings"]
+    assert row["ci_low"] <= truth <= row["ci_high"], (row, truth)
