@@ -26,5 +26,9 @@ lint: $(STAMP)
 	$(BIN)/ruff check pipeline flows tests
 	$(BIN)/ruff format --check pipeline flows tests
 
+bench: $(STAMP)
+	$(BIN)/python bench/ingest_bench.py --premises 1000 --days 92 --work bench_out/ingest
+	$(BIN)/python bench/pipeline_bench.py --premises 1000 --days 92 --work bench_out/pipeline
+
 clean:
 	rm -rf $(OUT) .pytest_cache

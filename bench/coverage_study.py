@@ -1,0 +1,125 @@
+"""How often do the estimators' intervals cover the truth? A study over simulated lakes.
+
+Not a test (it takes minutes). For each seed it simulates a lake with the true values
+of the default candidates, runs ingest and the episode build (homes with presence
+sensing only), fits the behaviour model and, for each candidate and estimator, computes
+the portfolio savings estimate and its 95 % percentile bootstrap interval, both with
+the episodes pooled and stratified by premise. Prints coverage, mean absolute error and
+mean width per estimator; DEVELOPERS.md ("Choosing the estimator") quotes a run:
+
+    PYTHONPATH=. python bench/coverage_study.py --seeds 11 12 13 14 15 16 --work /tmp/coverage
+"""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+
+from pipeline import config as config_module
+from pipeline import estimators, ingest, store
+from pipeline.behavior import fit_behavior
+from pipeline.episodes import build, load_steps
+from pipeline.evaluate import _model_columns, target_probabilities
+from pipeline.simulate import generate_lake
+
+ESTIMATORS = ("weighted_is", "weighted_per_decision_is", "doubly_robust")
+
+
+def study_lake(seed: int, work: Path, replicates: int) -> list[dict]:
+    root = work / f"seed{seed}"
+    shutil.rmtree(root, ignore_errors=True)
+    generate_lake(root / "lake", n_premises=60, seed=seed, policy_values=True)
+    config = config_module.load(
+        overrides={
+            "lake": str(root / "lake"),
+            "out": str(root / "out"),
+            "presence_sources": ["occupancy_flag"],
+        }
+    )
+    ingest.ingest(config)
+    with store.warehouse(config.warehouse_path) as con:
+        build(con, config)
+        steps = load_steps(con)
+    b = fit_behavior(steps, config).probabilities(steps)
+    values = pl.read_parquet(root / "lake" / "truth" / "policy_values.parquet").filter(
+        pl.col("premise_id").is_null()
+    )
+    behavior_value = values.filter(pl.col("policy_name") == "behavior")["value_usd"][0]
+    episodes = steps.group_by("premise_id").agg(pl.col("episode_id").n_unique().alias("n"))
+    rows = []
+    for rule in config.candidates:
+        table = rule.table(config.state, config.actions, config.target_epsilon)
+        truth = (
+            values.filter(
+                (pl.col("policy_name") == rule.name) & (pl.col("epsilon") == config.target_epsilon)
+            )["value_usd"][0]
+            - behavior_value
+        )
+        frame = steps.select("episode_id", "t", "reward", pl.col("premise_id").alias("group")).with_columns(
+            pl.Series("pi", target_probabilities(steps, table, config)), pl.Series("b", b)
+        )
+        frame = pl.concat([frame, _model_columns(steps, table, "reward", config)], how="horizontal")
+        for name in ESTIMATORS:
+            for combined in ("pooled", "premise"):
+                data = frame if combined == "premise" else frame.with_columns(pl.lit("all").alias("group"))
+                labels, point, reps = estimators.bootstrap_replicates(
+                    data, name, savings=True, n_replicates=replicates, seed=1
+                )
+                if combined == "premise":
+                    n = dict(zip(episodes["premise_id"], episodes["n"], strict=True))
+                    weight = np.array([n[label] for label in labels], dtype=float)
+
+                    def mean(x, weight=weight):
+                        ok = np.isfinite(x)
+                        return (np.where(ok, x, 0.0) * weight).sum(-1) / (ok * weight).sum(-1)
+
+                    point, reps = mean(point), mean(reps)
+                else:
+                    point, reps = point[0], reps[:, 0]
+                low, high = np.nanquantile(reps, [0.025, 0.975])
+                rows.append(
+                    {
+                        "seed": seed,
+                        "policy": rule.name,
+                        "estimator": name,
+                        "combined": combined,
+                        "truth": truth,
+                        "estimate": float(point),
+                        "covered": bool(low <= truth <= high),
+                        "abs_error": abs(float(point) - truth),
+                        "width": high - low,
+                    }
+                )
+    return rows
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(
+        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
+    )
+    parser.add_argument("--seeds", type=int, nargs="+", default=[11, 12, 13, 14, 15, 16])
+    parser.add_argument("--replicates", type=int, default=400)
+    parser.add_argument("--work", type=Path, default=Path("bench_out/coverage"))
+    args = parser.parse_args()
+    rows = [row for seed in args.seeds for row in study_lake(seed, args.work, args.replicates)]
+    result = pl.DataFrame(rows)
+    summary = (
+        result.group_by("estimator", "combined")
+        .agg(
+            pl.len().alias("cases"),
+            pl.col("covered").sum().alias("covered"),
+            pl.col("abs_error").mean().round(3),
+            pl.col("width").mean().round(3),
+        )
+        .sort("covered", descending=True)
+    )
+    with pl.Config(tbl_rows=50, tbl_width_chars=140):
+        print(summary)
+
+
+if __name__ == "__main__":
+    main()
