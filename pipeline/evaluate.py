@@ -302,14 +302,19 @@ def evaluate_candidates(
     steps: pl.DataFrame, behavior: BehaviorPolicy, days: pl.DataFrame, config: Config
 ) -> Evaluation:
     """Evaluate every configured candidate rule, per mode (cooling and heating never mix)."""
-    visits = steps.group_by("state_key").agg(pl.len().alias("visits"))
+    visits = steps.group_by("mode", "state_key").agg(pl.len().alias("visits"))
     savings, diags, policies = [], [], []
     refits: dict[str, tuple[np.ndarray, np.ndarray] | None] = {}
     for rule in config.candidates:
         table = rule.table(config.state, config.actions, config.target_epsilon)
-        policies.append(policy_frame(rule.name, table, config).join(visits, on="state_key", how="left"))
         for mode in sorted(steps["mode"].unique()):
             in_mode = steps.filter(pl.col("mode") == mode)
+            q_model = FittedQ(config.state, config.actions).fit(in_mode, table)
+            policies.append(
+                policy_frame(rule.name, table, config, q_model.q_)
+                .with_columns(pl.lit(mode).alias("mode"))
+                .join(visits, on=["mode", "state_key"], how="left")
+            )
             if mode not in refits:
                 refits[mode] = (
                     behavior_replicates(in_mode, behavior, config)
@@ -332,15 +337,23 @@ def evaluate_candidates(
     )
     return Evaluation(
         savings=savings_frame,
-        policy=pl.concat(policies).with_columns(pl.col("visits").fill_null(0)),
+        policy=pl.concat(policies)
+        .with_columns(pl.col("visits").fill_null(0))
+        .select(
+            "policy_name", "mode", "scope", "key", "state_key", "action", "probability", "q_value", "visits"
+        ),
         diagnostics=pl.concat(diags).select(
             "policy_name", "mode", "scope", "key", pl.exclude("policy_name", "mode", "scope", "key")
         ),
     )
 
 
-def policy_frame(name: str, table: np.ndarray, config: Config) -> pl.DataFrame:
-    """Long form of a policy table: one row per (state_key, action) with its probability."""
+def policy_frame(name: str, table: np.ndarray, config: Config, q: np.ndarray | None = None) -> pl.DataFrame:
+    """Long form of a policy table: one row per (state_key, action) with its probability.
+
+    ``q`` (n_states, n_actions), optional, is the fitted Q value of each pair under the
+    policy (USD, rest of the episode), reported as ``q_value``.
+    """
     n_states, n_actions = table.shape
     return pl.DataFrame(
         {
@@ -350,6 +363,7 @@ def policy_frame(name: str, table: np.ndarray, config: Config) -> pl.DataFrame:
             "state_key": np.repeat(np.arange(n_states, dtype=np.int64), n_actions),
             "action": np.tile(np.asarray(config.actions, dtype=np.int64), n_states),
             "probability": table.reshape(-1),
+            "q_value": np.full(n_states * n_actions, np.nan) if q is None else q.reshape(-1),
         }
     )
 
