@@ -155,6 +155,17 @@ def print_summary(summary: stages.RunSummary) -> None:
         pl.col("ess").round(1),
         pl.col("savings_usd_annual").round(2),
     )
+    horizon = summary.evaluation.horizon.select(
+        "decision_points",
+        "mode",
+        "policy_name",
+        pl.col("mean_decisions").round(1),
+        pl.col("ess").round(1),
+        pl.col("ess_share").round(3),
+        pl.col("max_weight_share").round(3),
+    )
+    print("importance-weight spread per choice of decision points (fewer decisions, tamer weights):")
+    print(_table(horizon))
     print(
         "portfolio savings per episode, USD (95 % interval, lower bound), and per premise per year"
         " (* recommended estimator):"

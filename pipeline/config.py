@@ -48,8 +48,12 @@ class Config:
     """Local hours [from, to) assumed away on weekdays for premises with no occupancy or setback evidence."""
     schedule_max_load_ratio: float = 0.9
     """An assumed schedule is implausible unless weekday kWh in it is below this share of weekend kWh."""
-    presence_sources: tuple[str, ...] = ("occupancy_flag", "setback_hold", "schedule")
-    """Evidence of absence trusted for episodes; others are excluded as 'presence_source_not_used'."""
+    presence_sources: tuple[str, ...] = ("occupancy_flag", "schedule")
+    """Evidence of absence trusted for episodes; others are excluded as 'presence_source_not_used'.
+
+    'setback_hold' is opt-in: its episodes exist only on days the residents set back, so
+    they over-represent setbacks and bias every estimate toward the residents' choices.
+    """
     setback_hold_hours: tuple[int, int] = (6, 20)
     """Local hours [from, to) in which a held setback counts as absence (premises without occupancy flag)."""
     comfort_penalty_basis: str = "setpoint"

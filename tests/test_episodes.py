@@ -177,9 +177,9 @@ def test_heating_offsets_and_actions_are_in_the_setback_direction(tmp_path):
 
 
 def test_setback_hold_stands_in_for_a_missing_occupancy_flag(tmp_path):
-    """Without an occupancy flag, hours whose setback is in force at their end form the episode."""
+    """Without an occupancy flag, hours whose setback is in force at their end form the episode (opt-in)."""
     rows = [(_utc(0), 24, ""), (_utc(8), 26, ""), (_utc(12, 20), 24, "")]
-    _, counts, steps, episodes = _lake(tmp_path, rows)
+    _, counts, steps, episodes = _lake(tmp_path, rows, presence_sources=["occupancy_flag", "setback_hold"])
     assert episodes["presence_source"].to_list() == ["setback_hold"]
     assert steps["local_hour"].to_list() == [8, 9, 10, 11]
     assert counts.excluded == {}
@@ -213,7 +213,7 @@ def test_schedule_fallback_is_refused_when_the_load_does_not_drop(tmp_path):
 
 
 def test_untrusted_evidence_of_absence_is_excluded_with_its_reason(tmp_path):
-    """When only occupancy flags are trusted, a setback-hold episode is listed but not used."""
+    """By default a setback-hold episode is listed but not used."""
     rows = [(_utc(0), 24, ""), (_utc(8), 26, ""), (_utc(12, 20), 24, "")]
-    _, counts, steps, _ = _lake(tmp_path, rows, presence_sources=["occupancy_flag"])
+    _, counts, steps, _ = _lake(tmp_path, rows)
     assert steps.height == 0 and counts.excluded == {"presence_source_not_used": 1}
