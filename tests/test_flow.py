@@ -61,3 +61,10 @@ def test_analyst_selects_savings_per_premise_with_the_sql_views(flow_run):
         len(premises)
         == con.execute("select count(distinct key) from savings where scope = 'premise'").fetchall()[0][0]
     )
+
+
+def test_sample_lake_has_about_one_away_episode_per_weekday(flow_run):
+    """The scenario sends residents out on 60-90 % of weekdays (sample_lake/README.md); the build agrees."""
+    _, summary = flow_run
+    assert 0.6 <= summary.episodes.weekday_episodes_per_weekday <= 0.9
+    assert 2.5 <= summary.episodes.mean_decisions <= 4.5  # anchored: departure, tier rises, last hour
