@@ -96,3 +96,40 @@ def test_premise_savings_shrink_toward_cohort_by_the_empirical_bayes_weight():
     np.testing.assert_allclose(
         out["savings_shrunk_usd_per_episode"].to_numpy(), [weight * s + (1 - weight) * 0.5 for s in own]
     )
+
+
+def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_estimate():
+    """With the re-fitting bootstrap on, weighted IS rows still carry finite intervals around their estimate."""
+    from pipeline.behavior import BehaviorPolicy
+    from pipeline.evaluate import evaluate_candidates
+
+    rng = np.random.default_rng(11)
+    config = Config(bootstrap_replicates=40, bootstrap_refit_behavior=True, estimators=("weighted_is",))
+    n_episodes, horizon = 60, 3
+    keys = config.state.encode(
+        np.full(n_episodes * horizon, 9),
+        np.full(n_episodes * horizon, 5.0),
+        np.zeros(n_episodes * horizon, dtype=int),
+        np.zeros(n_episodes * horizon, dtype=int),
+        np.tile([3, 2, 1], n_episodes),
+    )
+    steps = pl.DataFrame(
+        {
+            "episode_id": np.repeat(np.arange(n_episodes), horizon),
+            "t": np.tile(np.arange(horizon), n_episodes),
+            "state_key": keys,
+            "action": rng.integers(-1, 2, n_episodes * horizon),
+            "reward": -rng.uniform(0.1, 1.0, n_episodes * horizon),
+            "kwh": rng.uniform(0.5, 2.0, n_episodes * horizon),
+            "recovery_kwh": 0.0,
+            "premise_id": np.repeat(np.where(np.arange(n_episodes) % 2 == 0, "A", "B"), horizon),
+            "cohort": "c",
+            "mode": "cool",
+        }
+    )
+    behavior = BehaviorPolicy(actions=config.actions).fit(steps)
+    days = pl.DataFrame({"premise_id": ["A", "B"], "cohort": ["c", "c"], "days_observed": [30, 30]})
+    savings = evaluate_candidates(steps, behavior, days, config).savings.filter(pl.col("status") == "ok")
+    assert savings.height > 0
+    inside = (pl.col("ci_low") <= pl.col("ci_high")) & pl.col("ci_low").is_finite()
+    assert savings.select(inside.all()).item()
