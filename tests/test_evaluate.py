@@ -99,7 +99,7 @@ def test_premise_savings_shrink_toward_cohort_by_the_empirical_bayes_weight():
 
 
 def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_estimate():
-    """With the re-fitting bootstrap on, weighted IS rows still carry finite intervals around their estimate."""
+    """With the re-fitting bootstrap on, weighted IS rows still carry finite, ordered intervals."""
     from pipeline.behavior import BehaviorPolicy
     from pipeline.evaluate import evaluate_candidates
 
