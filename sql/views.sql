@@ -39,6 +39,7 @@ create or replace view savings_by_premise as
         round(ci_low, 3) as ci_low,
         round(ci_high, 3) as ci_high,
         round(lower_bound_usd, 3) as lower_bound_usd,
+        round(lower_bound_bootstrap_usd, 3) as lower_bound_bootstrap_usd,
         round(savings_shrunk_usd_per_episode, 3) as savings_shrunk_usd_per_episode,
         round(shrinkage, 2) as shrinkage,
         round(ess, 1) as ess,

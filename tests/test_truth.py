@@ -127,3 +127,12 @@ def test_with_the_true_behaviour_probabilities_the_interval_covers(evaluated, po
     )
     truth = _portfolio(evaluated, policy_name)["true_savings"]
     assert row["ci_low"] <= truth <= row["ci_high"], (row, truth)
+
+
+def test_bootstrap_lower_bound_is_below_the_truth_in_most_supported_rows(evaluated, record_property):
+    """The approximate one-sided 95 % bootstrap bound lies below the true savings in at least 85 % of rows."""
+    rows = evaluated.rows.filter(pl.col("status") == "ok")
+    below = rows.select((pl.col("lower_bound_bootstrap_usd") <= pl.col("true_savings")).mean()).item()
+    record_property("bootstrap_bound_below_truth", below)
+    print(f"bootstrap lower bound below the truth in {below:.3f} of {rows.height} supported rows")
+    assert rows.height >= 30 and below >= 0.85
