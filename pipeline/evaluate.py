@@ -389,6 +389,36 @@ def policy_frame(name: str, table: np.ndarray, config: Config, q: np.ndarray | N
     )
 
 
+def state_values(steps: pl.DataFrame) -> pl.DataFrame:
+    """First- and every-visit Monte Carlo values of the behaviour policy per state, at every scope.
+
+    Returns
+    -------
+    polars.DataFrame
+        mode, scope, key, method ('first_visit' / 'every_visit'), state_key, value
+        (mean return from the state on, USD), visits and n_episodes.
+    """
+    frames = []
+    for mode in sorted(steps["mode"].unique()):
+        in_mode = steps.filter(pl.col("mode") == mode).select(
+            "episode_id", "t", "reward", "state_key", "premise_id", "cohort"
+        )
+        for scope, column in SCOPES:
+            frame = _scoped(in_mode, column)
+            for method, fn in (
+                ("first_visit", estimators.first_visit_mc),
+                ("every_visit", estimators.every_visit_mc),
+            ):
+                frames.append(
+                    _with_scope(fn(frame), scope).with_columns(
+                        pl.lit(mode).alias("mode"), pl.lit(method).alias("method")
+                    )
+                )
+    return pl.concat(frames).select(
+        "mode", "scope", "key", "method", "state_key", "value", "visits", "n_episodes"
+    )
+
+
 def horizon_report(steps_by_choice: dict[str, pl.DataFrame], config: Config) -> pl.DataFrame:
     """Weight spread of each candidate under each decision-point choice (the curse of horizon).
 

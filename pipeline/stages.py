@@ -110,6 +110,7 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     result = evaluation.evaluate_candidates(steps, behavior, days, config)
     horizon = evaluation.horizon_report(by_choice, config)
     run.write("horizon", horizon)
+    run.write("state_value", evaluation.state_values(steps))
     run.write("savings", result.savings)
     run.write("policy", result.policy)
     run.write("diagnostics", result.diagnostics)

@@ -3,24 +3,30 @@
 -- Before running this file set the ledger folder, e.g. in the duckdb shell:
 --     set variable ledger_root = '/path/to/out/ledger';
 -- (pipeline.store.connect_ledger does this for you from Python.)
+-- Files are read with union_by_name so runs written before a column was added still read
+-- (their rows give null there).
 create or replace view run as
-    select * from read_parquet(getvariable('ledger_root') || '/run/*/*.parquet', hive_partitioning = true);
+    select * from read_parquet(getvariable('ledger_root') || '/run/*/*.parquet', hive_partitioning = true, union_by_name = true);
 create or replace view savings as
-    select * from read_parquet(getvariable('ledger_root') || '/savings/*/*.parquet', hive_partitioning = true);
+    select * from read_parquet(getvariable('ledger_root') || '/savings/*/*.parquet', hive_partitioning = true, union_by_name = true);
 create or replace view policy as
-    select * from read_parquet(getvariable('ledger_root') || '/policy/*/*.parquet', hive_partitioning = true);
+    select * from read_parquet(getvariable('ledger_root') || '/policy/*/*.parquet', hive_partitioning = true, union_by_name = true);
 create or replace view behavior_policy as
     select * from read_parquet(
-        getvariable('ledger_root') || '/behavior_policy/*/*.parquet', hive_partitioning = true
+        getvariable('ledger_root') || '/behavior_policy/*/*.parquet', hive_partitioning = true, union_by_name = true
     );
 create or replace view diagnostics as
-    select * from read_parquet(getvariable('ledger_root') || '/diagnostics/*/*.parquet', hive_partitioning = true);
+    select * from read_parquet(getvariable('ledger_root') || '/diagnostics/*/*.parquet', hive_partitioning = true, union_by_name = true);
 create or replace view episode_summary as
     select * from read_parquet(
-        getvariable('ledger_root') || '/episode_summary/*/*.parquet', hive_partitioning = true
+        getvariable('ledger_root') || '/episode_summary/*/*.parquet', hive_partitioning = true, union_by_name = true
     );
+create or replace view state_value as
+    select * from read_parquet(getvariable('ledger_root') || '/state_value/*/*.parquet', hive_partitioning = true, union_by_name = true);
+create or replace view horizon as
+    select * from read_parquet(getvariable('ledger_root') || '/horizon/*/*.parquet', hive_partitioning = true, union_by_name = true);
 create or replace view state_lookup as
-    select * from read_parquet(getvariable('ledger_root') || '/state_lookup/*/*.parquet', hive_partitioning = true);
+    select * from read_parquet(getvariable('ledger_root') || '/state_lookup/*/*.parquet', hive_partitioning = true, union_by_name = true);
 create or replace view latest_run as
     select run_id from run order by finished_at desc limit 1;
 create or replace view savings_latest as

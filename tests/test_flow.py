@@ -26,7 +26,17 @@ def flow_run(prefect_harness, tmp_path_factory):
 def test_flow_writes_every_ledger_table(flow_run):
     """savings, policy, behavior_policy, episode_summary, diagnostics and run are non-empty Parquet."""
     out, summary = flow_run
-    for table in ("savings", "policy", "behavior_policy", "episode_summary", "diagnostics", "run"):
+    for table in (
+        "savings",
+        "policy",
+        "behavior_policy",
+        "episode_summary",
+        "diagnostics",
+        "horizon",
+        "state_value",
+        "state_lookup",
+        "run",
+    ):
         files = list((out / "ledger" / table).glob("run_date=*/*.parquet"))
         assert len(files) == 1, table
         assert files[0].stat().st_size > 0
@@ -68,3 +78,15 @@ def test_sample_lake_has_about_one_away_episode_per_weekday(flow_run):
     _, summary = flow_run
     assert 0.6 <= summary.episodes.weekday_episodes_per_weekday <= 0.9
     assert 2.5 <= summary.episodes.mean_decisions <= 4.5  # anchored: departure, tier rises, last hour
+
+
+def test_state_values_give_first_and_every_visit_values_at_every_scope(flow_run):
+    """The behaviour policy's Monte Carlo state values are there per premise, cohort and portfolio."""
+    out, _ = flow_run
+    con = store.connect_ledger(out / "ledger")
+    rows = con.execute("select distinct scope, method from state_value order by all").fetchall()
+    assert rows == [
+        (scope, method)
+        for scope in ("cohort", "portfolio", "premise")
+        for method in ("every_visit", "first_visit")
+    ]
