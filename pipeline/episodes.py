@@ -153,16 +153,3 @@ def episode_summary(episodes: pl.DataFrame, steps: pl.DataFrame) -> pl.DataFrame
 def load_episodes(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
     """Every candidate episode with its exclusion reason (null when used)."""
     return store.frame(con, "select * from episode order by episode_id")
-
-
-def decision_summary(steps: pl.DataFrame) -> pl.DataFrame:
-    """Decisions per episode and the clipped-action count, for the stage's report."""
-    per_episode = steps.group_by("episode_id").agg(pl.len().alias("decisions"))
-    return pl.DataFrame(
-        {
-            "episodes": [per_episode.height],
-            "mean_decisions": [per_episode["decisions"].mean()],
-            "max_decisions": [per_episode["decisions"].max()],
-            "clipped_actions": [int(steps["action_clipped"].sum() or 0)],
-        }
-    )

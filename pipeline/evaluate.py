@@ -419,13 +419,17 @@ def state_values(steps: pl.DataFrame) -> pl.DataFrame:
     )
 
 
-def horizon_report(steps_by_choice: dict[str, pl.DataFrame], config: Config) -> pl.DataFrame:
+def horizon_report(
+    steps_by_choice: dict[str, pl.DataFrame], config: Config, fitted: dict[str, BehaviorPolicy] | None = None
+) -> pl.DataFrame:
     """Weight spread of each candidate under each decision-point choice (the curse of horizon).
 
     Parameters
     ----------
     steps_by_choice : dict of str to polars.DataFrame
         Decision steps built with each choice of decision points ('fixed', 'anchored').
+    fitted : dict of str to BehaviorPolicy, optional
+        Behaviour models already fitted for some choices (the run's own); the others are fitted here.
 
     Returns
     -------
@@ -435,7 +439,7 @@ def horizon_report(steps_by_choice: dict[str, pl.DataFrame], config: Config) -> 
     """
     rows = []
     for choice, steps in steps_by_choice.items():
-        behavior = fit_behavior(steps, config)
+        behavior = (fitted or {}).get(choice) or fit_behavior(steps, config)
         for mode in sorted(steps["mode"].unique()):
             in_mode = steps.filter(pl.col("mode") == mode)
             b = behavior.probabilities(in_mode)

@@ -108,7 +108,7 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
             for choice in ("fixed", "anchored")
         }
     result = evaluation.evaluate_candidates(steps, behavior, days, config)
-    horizon = evaluation.horizon_report(by_choice, config)
+    horizon = evaluation.horizon_report(by_choice, config, {config.decision_points: behavior})
     run.write("horizon", horizon)
     run.write("state_value", evaluation.state_values(steps))
     run.write("savings", result.savings)
