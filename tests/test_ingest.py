@@ -578,6 +578,9 @@ def corrupted(draw):
     return b"\n".join(lines) + b"\n"
 
 
+# The session's Prefect test server (tests/test_flow.py) runs threads that draw from the
+# global random module; Hypothesis sees that as the strategy using it and warns.
+@pytest.mark.filterwarnings("ignore:Do not use the `random` module inside strategies")
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(data=corrupted())
 def test_random_corruption_never_crashes_and_never_loses_a_row(data):
