@@ -72,8 +72,12 @@ class Config:
     """Hours after the return hour charged to the episode (pull-back to comfort)."""
     comfort_penalty_usd_per_degree_hour: float = 0.10
     """Price put on each °C-hour of setback still in force over the recovery window, USD."""
+    behavior_model: str = "types"
+    """'types': each premise a mixture of habit types; 'counts': premise counts shrunk toward the cohort's."""
+    behavior_types: int | str = "auto"
+    """Number of habit types of the 'types' model; 'auto': best held-out fit."""
     behavior_prior_strength: float | str = "auto"
-    """Pseudo-counts shrinking a premise's action counts toward its cohort's; 'auto': best held-out fit."""
+    """Pseudo-counts shrinking each count table toward the coarser one above it; 'auto': best held-out fit."""
     behavior_floor: float = 0.01
     """Smallest behaviour probability assigned to any allowed action."""
     target_epsilon: float = 0.05
@@ -129,6 +133,12 @@ def _coerce(name: str, value: Any) -> Any:
         if value == "auto" or (isinstance(value, int | float) and value > 0):
             return value if value == "auto" else float(value)
         raise ConfigError(f"behavior_prior_strength must be 'auto' or a positive number, got {value!r}")
+    if name == "behavior_types":
+        if value == "auto" or (isinstance(value, int) and not isinstance(value, bool) and value >= 1):
+            return value
+        raise ConfigError(f"behavior_types must be 'auto' or a whole number >= 1, got {value!r}")
+    if name == "behavior_model" and value not in ("types", "counts"):
+        raise ConfigError(f"behavior_model must be 'types' or 'counts', got {value!r}")
     if kind == "int" and not isinstance(value, int):
         raise ConfigError(f"{name} must be a whole number, got {value!r}")
     if kind == "float" and isinstance(value, int | float):

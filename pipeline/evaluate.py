@@ -84,8 +84,7 @@ def behavior_replicates(
     probabilities = np.empty((config.bootstrap_replicates, steps.height))
     # One re-fit per replicate: a bounded loop, each fit a handful of columnar group-bys.
     for r in range(config.bootstrap_replicates):
-        model = BehaviorPolicy(behavior.prior_strength, behavior.floor, behavior.actions)
-        probabilities[r] = model.fit(steps, multiplicity[r, code]).probabilities(steps)
+        probabilities[r] = behavior.clone().fit(steps, multiplicity[r, code]).probabilities(steps)
     return multiplicity, probabilities
 
 

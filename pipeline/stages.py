@@ -88,6 +88,7 @@ def learn(config: Config, run: Run) -> int:
         store.frame(con, "create or replace table behavior_policy as select * from behavior_frame")
         con.unregister("behavior_frame")
     run.write("behavior_policy", table)
+    run.write("behavior_type", model.membership())
     return table.height
 
 
@@ -96,7 +97,7 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     steps = _steps(config)
     with store.warehouse(config.warehouse_path, read_only=True) as con:
         behavior = BehaviorPolicy.from_table(
-            store.frame(con, "select * from behavior_policy"), config.actions
+            store.frame(con, "select * from behavior_policy"), config.actions, config.state
         )
         days = store.frame(
             con,

@@ -15,6 +15,10 @@ create or replace view behavior_policy as
     select * from read_parquet(
         getvariable('ledger_root') || '/behavior_policy/*/*.parquet', hive_partitioning = true, union_by_name = true
     );
+create or replace view behavior_type as
+    select * from read_parquet(
+        getvariable('ledger_root') || '/behavior_type/*/*.parquet', hive_partitioning = true, union_by_name = true
+    );
 create or replace view diagnostics as
     select * from read_parquet(getvariable('ledger_root') || '/diagnostics/*/*.parquet', hive_partitioning = true, union_by_name = true);
 create or replace view episode_summary as

@@ -1,4 +1,4 @@
-"""Behaviour policy: hierarchical smoothed counts, computed by hand on a few steps."""
+"""Behaviour policy: hierarchical smoothed counts and the habit-type mixture, on a few inline steps."""
 
 from __future__ import annotations
 
@@ -59,18 +59,105 @@ def test_actions_outside_the_set_are_refused():
         BehaviorPolicy().fit(STEPS.with_columns(pl.lit(3).alias("action")))
 
 
+def _opposite_habits(n: int = 400, seed: int = 3) -> pl.DataFrame:
+    """Two premises of one cohort with opposite habits in the same state: A sets back 90 %, B 10 %."""
+    rng = np.random.default_rng(seed)
+    premise = np.where(np.arange(n) < n // 2, "A", "B")
+    p_up = np.where(premise == "A", 0.9, 0.1)
+    action = np.where(rng.random(n) < p_up, 1, 0)
+    return pl.DataFrame(
+        {"episode_id": np.arange(n), "premise_id": premise, "cohort": "c", "state_key": 1, "action": action}
+    )
+
+
 def test_held_out_likelihood_prefers_light_pooling_when_premises_differ():
     """Two premises with opposite habits: a weak prior predicts held-out actions better than a strong one."""
     from pipeline.behavior import held_out_log_likelihood
 
-    rng = np.random.default_rng(3)
-    n = 400
-    premise = np.where(np.arange(n) < n // 2, "A", "B")
-    p_up = np.where(premise == "A", 0.9, 0.1)
-    action = np.where(rng.random(n) < p_up, 1, 0)
-    steps = pl.DataFrame(
-        {"episode_id": np.arange(n), "premise_id": premise, "cohort": "c", "state_key": 1, "action": action}
+    candidates = {
+        "weak": BehaviorPolicy(0.5, 0.01, (-1, 0, 1)),
+        "strong": BehaviorPolicy(500.0, 0.01, (-1, 0, 1)),
+    }
+    scores = dict(held_out_log_likelihood(_opposite_habits(), candidates).iter_rows())
+    assert scores["weak"] > scores["strong"]
+
+
+# Habit-type mixture (the default model). State keys 0 and 24 differ only in price tier, so they
+# share one coarse state (offset -1, one decision left) under the default StateSpace.
+TYPED = pl.DataFrame(
+    {
+        "premise_id": ["A", "A", "A", "B"],
+        "cohort": ["c", "c", "c", "c"],
+        "state_key": [0, 0, 24, 0],
+        "action": [1, 1, 0, 0],
+    }
+)
+
+
+def test_one_type_is_coarse_then_fine_shrinkage_by_hand():
+    """With one type and k = 2 the table is the two-level additive smoothing of the module docstring."""
+    model = BehaviorPolicy(2.0, 0.0, (-1, 0, 1), n_types=1).fit(TYPED)
+    # Coarse cell: counts (-1, 0, +1) = (0, 2, 2) of 4; portfolio prior (n + 2/3) / 6; type (n + 2 p) / 6.
+    portfolio = (np.array([0, 2, 2]) + 2 / 3) / 6
+    coarse = (np.array([0, 2, 2]) + 2 * portfolio) / 6
+    # Fine state 0: counts (0, 1, 2) of 3; state 24: (0, 1, 0) of 1.
+    fine0 = (np.array([0, 1, 2]) + 2 * coarse) / 5
+    fine24 = (np.array([0, 1, 0]) + 2 * coarse) / 3
+    np.testing.assert_allclose(model.probabilities(TYPED), [fine0[2], fine0[2], fine24[1], fine0[1]])
+
+
+def test_types_tell_apart_premises_with_opposite_habits():
+    """Two types recover each premise's own rate where cohort pooling pulls both toward one half."""
+    steps = _opposite_habits()
+    typed = BehaviorPolicy(5.0, 0.01, (-1, 0, 1), n_types=2).fit(steps)
+    shares = typed.membership().pivot(on="habit_type", index="premise_id", values="share")
+    assert (shares.drop("premise_id").max_horizontal() > 0.99).all()
+    up = steps.with_columns(pl.lit(1).alias("action")).unique("premise_id").sort("premise_id")
+    observed = steps.group_by("premise_id").agg((pl.col("action") == 1).mean()).sort("premise_id")
+    np.testing.assert_allclose(typed.probabilities(up), observed["action"].to_numpy(), atol=0.03)
+    pooled = BehaviorPolicy(500.0, 0.01, (-1, 0, 1)).fit(steps).probabilities(up)
+    assert np.abs(pooled - 0.5).max() < 0.15
+
+
+def test_held_out_likelihood_prefers_two_types_when_premises_differ():
+    """The held-out choice of the number of types finds the two habits."""
+    from pipeline.behavior import held_out_log_likelihood
+
+    candidates = {str(z): BehaviorPolicy(5.0, 0.01, (-1, 0, 1), n_types=z) for z in (1, 2)}
+    scores = dict(held_out_log_likelihood(_opposite_habits(), candidates).iter_rows())
+    assert scores["2"] > scores["1"]
+
+
+def test_step_weights_count_like_repeated_rows():
+    """Weight 2 on every step (a bootstrap multiplicity) fits the same model as each step logged twice."""
+    steps = _opposite_habits(60)
+    weighted = BehaviorPolicy(5.0, 0.01, (-1, 0, 1), n_types=2).fit(steps, np.full(steps.height, 2.0))
+    doubled = BehaviorPolicy(5.0, 0.01, (-1, 0, 1), n_types=2).fit(pl.concat([steps, steps]))
+    np.testing.assert_allclose(weighted.probabilities(steps), doubled.probabilities(steps))
+
+
+def test_types_model_round_trips_and_keeps_modes_apart():
+    """Cooling and heating fit apart; every row is a distribution; from_table keeps the probabilities."""
+    steps = pl.concat(
+        [
+            _opposite_habits(80).with_columns(pl.lit("cool").alias("mode")),
+            _opposite_habits(80, seed=4).with_columns(
+                pl.lit("heat").alias("mode"), pl.col("episode_id") + 80
+            ),
+        ]
     )
-    scores = held_out_log_likelihood(steps, strengths=(0.5, 500.0), floor=0.01, actions=(-1, 0, 1))
-    weak, strong = scores.sort("prior_strength")["log_likelihood"].to_list()
-    assert weak > strong
+    model = BehaviorPolicy(5.0, 0.05, (-1, 0, 1), n_types=2).fit(steps)
+    table = model.table()
+    assert set(table["scope"]) == {"premise", "cohort", "portfolio", "type"}
+    sums = table.group_by("scope", "key", "mode", "state_key").agg(pl.col("probability").sum())
+    np.testing.assert_allclose(sums["probability"].to_numpy(), 1.0)
+    assert table["probability"].min() >= 0.05 / (1 + 3 * 0.05) - 1e-12
+    assert model.membership().group_by("mode").len().height == 2
+    again = BehaviorPolicy.from_table(table, (-1, 0, 1))
+    np.testing.assert_allclose(again.probabilities(steps), model.probabilities(steps))
+
+
+def test_a_number_of_types_below_one_is_refused():
+    """n_types=0 is an input error naming the setting."""
+    with pytest.raises(BehaviorInputError, match="n_types"):
+        BehaviorPolicy(n_types=0).fit(TYPED)

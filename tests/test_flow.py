@@ -24,12 +24,13 @@ def flow_run(prefect_harness, tmp_path_factory):
 
 
 def test_flow_writes_every_ledger_table(flow_run):
-    """savings, policy, behavior_policy, episode_summary, diagnostics and run are non-empty Parquet."""
+    """Every ledger table a run writes (savings, policy, behavior_type, ...) is non-empty Parquet."""
     out, summary = flow_run
     for table in (
         "savings",
         "policy",
         "behavior_policy",
+        "behavior_type",
         "episode_summary",
         "diagnostics",
         "horizon",

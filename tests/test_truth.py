@@ -53,22 +53,7 @@ def _portfolio(evaluated, policy_name):
     return rows.row(0, named=True)
 
 
-@pytest.mark.parametrize(
-    "policy_name",
-    [
-        "setback-2",
-        "setback-2-early",
-        pytest.param(
-            "setback-1",
-            marks=pytest.mark.xfail(
-                strict=True,
-                reason="known defect (issue 6): on this lake the estimated behaviour model pulls the "
-                "setback-1 estimate toward the residents' own value; with the true behaviour "
-                "probabilities the interval covers",
-            ),
-        ),
-    ],
-)
+@pytest.mark.parametrize("policy_name", ["setback-1", "setback-2", "setback-2-early"])
 def test_portfolio_interval_covers_the_true_savings(evaluated, policy_name):
     """The recommended portfolio 95 % interval covers the candidate's true savings."""
     row = _portfolio(evaluated, policy_name)
