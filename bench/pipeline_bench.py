@@ -2,6 +2,7 @@
 
 Not a test. Generates a lake with the project's simulator (``--premises`` homes,
 ``--days`` days), ingests it, then times the episode build (SQL only) and the
+behaviour model fit (with its held-out choice of the number of habit types) and the
 off-policy estimators, vectorised against a plain per-episode reference loop,
 and reports the speed-up ratio rather than a raw time:
 
@@ -21,7 +22,7 @@ import polars as pl
 
 from pipeline import config as config_module
 from pipeline import estimators, ingest, store
-from pipeline.behavior import BehaviorPolicy
+from pipeline.behavior import fit_behavior
 from pipeline.episodes import build, load_steps
 from pipeline.evaluate import target_probabilities
 from pipeline.simulate import generate_lake
@@ -96,7 +97,12 @@ def main() -> None:
         f" ({counts.hours / build_seconds:,.0f} premise-hours/s)"
     )
 
-    behavior = BehaviorPolicy(5.0, config.behavior_floor, config.actions).fit(steps)
+    started = time.perf_counter()
+    behavior = fit_behavior(steps, config)
+    print(
+        f"behaviour model ({config.behavior_model}, {behavior.n_types} types, k={behavior.prior_strength:g},"
+        f" chosen by 5-fold held-out likelihood): {time.perf_counter() - started:.1f} s"
+    )
     rule = config.candidates[0]
     frame = steps.select("episode_id", "t", "reward").with_columns(
         pl.Series("pi", target_probabilities(steps, rule.table(config.state, config.actions, 0.05), config)),

@@ -79,22 +79,27 @@ class _TypeMixture:
 
     def fit(
         self,
-        premise,
-        state,
-        coarse,
-        action,
-        weight,
+        premise: np.ndarray,
+        state: np.ndarray,
+        coarse: np.ndarray,
+        action: np.ndarray,
+        weight: np.ndarray,
         n_premises: int,
         restarts: int = 3,
         iterations: int = 200,
-    ):
+    ) -> _TypeMixture:
         k, n_actions = self.strength, self.n_actions
         self.states_, cell = np.unique(state, return_inverse=True)
-        self.cell_coarse_ = np.zeros(self.states_.size, dtype=np.int64)
+        n_cells = self.states_.size
+        self.cell_coarse_ = np.zeros(n_cells, dtype=np.int64)
         self.cell_coarse_[cell] = coarse
         overall = np.bincount(coarse * n_actions + action, weight, self.n_coarse * n_actions)
         overall = overall.reshape(self.n_coarse, n_actions)
         self.portfolio_coarse_ = (overall + k / n_actions) / (overall.sum(1, keepdims=True) + k)
+        # EM needs only the weighted count of each (premise, state, action): work on those.
+        triple, where = np.unique((premise * n_cells + cell) * n_actions + action, return_inverse=True)
+        count = np.bincount(where, weight, triple.size)
+        owner, cell_action = triple // (n_cells * n_actions), triple % (n_cells * n_actions)
         rng = np.random.default_rng(self.seed)
         best = None
         # A few restarts from random memberships: EM finds a local optimum; keep the likeliest.
@@ -102,8 +107,8 @@ class _TypeMixture:
             shares = rng.dirichlet(np.ones(self.n_types), n_premises)
             previous = -np.inf
             for _ in range(iterations):
-                tables = self._tables(premise, cell, coarse, action, weight, shares)
-                shares, loglik = self._memberships(premise, cell, action, weight, tables, shares, n_premises)
+                tables = self._tables(owner, cell_action, count, shares, n_cells)
+                shares, loglik = self._memberships(owner, cell_action, count, tables[1], shares, n_premises)
                 if loglik - previous < 1e-7 * max(1.0, abs(loglik)):
                     break
                 previous = loglik
@@ -112,22 +117,17 @@ class _TypeMixture:
         self.loglik_, self.shares_, (self.coarse_tables_, self.tables_, self.counts_) = best
         return self
 
-    def _tables(self, premise, cell, coarse, action, weight, shares):
+    def _tables(self, owner, cell_action, count, shares, n_cells):
+        """M step: each type's smoothed tables from the share-weighted counts."""
         k, n_actions, n_types = self.strength, self.n_actions, self.n_types
-        step_share = shares[premise] * weight[:, None]
-        n_cells = self.states_.size
-        coarse_counts = np.stack(
-            [
-                np.bincount(coarse * n_actions + action, step_share[:, z], self.n_coarse * n_actions)
-                for z in range(n_types)
-            ]
-        ).reshape(n_types, self.n_coarse, n_actions)
-        counts = np.stack(
-            [
-                np.bincount(cell * n_actions + action, step_share[:, z], n_cells * n_actions)
-                for z in range(n_types)
-            ]
+        offsets = (np.arange(n_types) * n_cells * n_actions)[None, :]
+        counts = np.bincount(
+            (cell_action[:, None] + offsets).ravel(),
+            (shares[owner] * count[:, None]).ravel(),
+            n_types * n_cells * n_actions,
         ).reshape(n_types, n_cells, n_actions)
+        coarse_counts = np.zeros((n_types, self.n_coarse, n_actions))
+        np.add.at(coarse_counts, (slice(None), self.cell_coarse_), counts)
         coarse_tables = (coarse_counts + k * self.portfolio_coarse_) / (
             coarse_counts.sum(2, keepdims=True) + k
         )
@@ -138,12 +138,21 @@ class _TypeMixture:
         floored = np.maximum(tables, self.floor)
         return floored / floored.sum(-1, keepdims=True)
 
-    def _memberships(self, premise, cell, action, weight, tables, shares, n_premises):
-        _, tables, _ = tables
-        log_step = np.log(tables[:, cell, action]).T * weight[:, None]
-        loglik = np.stack([np.bincount(premise, log_step[:, z], n_premises) for z in range(self.n_types)], 1)
-        mixing = shares.mean(0)
-        loglik = loglik + np.log(np.maximum(mixing, 1e-300))
+    def _memberships(self, owner, cell_action, count, tables, shares, n_premises):
+        """E step: each premise's posterior type shares, and the total log-likelihood."""
+        log_tables = np.log(tables.reshape(self.n_types, -1))
+        log_cell = log_tables[:, cell_action].T * count[:, None]
+        offsets = (np.arange(self.n_types) * n_premises)[None, :]
+        loglik = (
+            np.bincount(
+                (owner[:, None] + offsets).ravel(order="F"),
+                log_cell.ravel(order="F"),
+                self.n_types * n_premises,
+            )
+            .reshape(self.n_types, n_premises)
+            .T
+        )
+        loglik = loglik + np.log(np.maximum(shares.mean(0), 1e-300))
         top = loglik.max(1, keepdims=True)
         joint = np.exp(loglik - top)
         total = joint.sum(1, keepdims=True)
