@@ -2,12 +2,16 @@
 
 Not a test (it takes minutes). For each seed it simulates a lake with the true values
 of the default candidates, runs ingest and the episode build (homes with presence
-sensing only), fits the behaviour model and, for each candidate and estimator, computes
-the portfolio savings estimate and its 95 % percentile bootstrap interval, both with
-the episodes pooled and stratified by premise. Prints coverage, mean absolute error and
-mean width per estimator; DEVELOPERS.md ("Choosing the estimator") quotes a run:
+sensing only; a lake already under --work is reused), fits the behaviour model
+(or takes the simulator's true probabilities, --behavior-model true) and, for each
+candidate and estimator, computes the portfolio savings estimate and its 95 %
+percentile bootstrap interval, both with the episodes pooled and stratified by
+premise. Prints coverage, mean absolute error and mean width per estimator;
+DEVELOPERS.md ("Choosing the behaviour model and the estimator") quotes these runs:
 
-    PYTHONPATH=. python bench/coverage_study.py --seeds 11 12 13 14 15 16 --work /tmp/coverage
+    PYTHONPATH=. python bench/coverage_study.py --seeds $(seq 11 26) --work /tmp/cov
+    PYTHONPATH=. python bench/coverage_study.py --seeds $(seq 11 26) --work /tmp/cov --behavior-model counts
+    PYTHONPATH=. python bench/coverage_study.py --seeds $(seq 11 26) --work /tmp/cov --behavior-model true
 """
 
 from __future__ import annotations
@@ -29,22 +33,37 @@ from pipeline.simulate import generate_lake
 ESTIMATORS = ("weighted_is", "weighted_per_decision_is", "doubly_robust")
 
 
-def study_lake(seed: int, work: Path, replicates: int) -> list[dict]:
+def study_lake(seed: int, work: Path, replicates: int, behavior_model: str) -> list[dict]:
     root = work / f"seed{seed}"
-    shutil.rmtree(root, ignore_errors=True)
-    generate_lake(root / "lake", n_premises=60, seed=seed, policy_values=True)
     config = config_module.load(
         overrides={
             "lake": str(root / "lake"),
             "out": str(root / "out"),
             "presence_sources": ["occupancy_flag"],
+            "behavior_model": "counts" if behavior_model == "counts" else "types",
         }
     )
-    ingest.ingest(config)
-    with store.warehouse(config.warehouse_path) as con:
-        build(con, config)
+    if not (root / "lake" / "truth" / "policy_values.parquet").exists() or not config.warehouse_path.exists():
+        shutil.rmtree(root, ignore_errors=True)
+        generate_lake(root / "lake", n_premises=60, seed=seed, policy_values=True)
+        ingest.ingest(config)
+        with store.warehouse(config.warehouse_path) as con:
+            build(con, config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
         steps = load_steps(con)
-    b = fit_behavior(steps, config).probabilities(steps)
+    if behavior_model == "true":
+        truth = pl.read_parquet(root / "lake" / "truth" / "steps.parquet").select(
+            "premise_id",
+            pl.col("hour_start").dt.convert_time_zone("UTC").alias("step_start_utc"),
+            pl.col("probability").alias("b"),
+        )
+        b = (
+            steps.with_columns(pl.col("step_start_utc").dt.convert_time_zone("UTC"))
+            .join(truth, on=["premise_id", "step_start_utc"], how="left", maintain_order="left")["b"]
+            .to_numpy()
+        )
+    else:
+        b = fit_behavior(steps, config).probabilities(steps)
     values = pl.read_parquet(root / "lake" / "truth" / "policy_values.parquet").filter(
         pl.col("premise_id").is_null()
     )
@@ -104,8 +123,18 @@ def main() -> None:
     parser.add_argument("--seeds", type=int, nargs="+", default=[11, 12, 13, 14, 15, 16])
     parser.add_argument("--replicates", type=int, default=400)
     parser.add_argument("--work", type=Path, default=Path("bench_out/coverage"))
+    parser.add_argument(
+        "--behavior-model",
+        choices=("types", "counts", "true"),
+        default="types",
+        help="behaviour probabilities: a fitted model, or the simulator's own (the ideal)",
+    )
     args = parser.parse_args()
-    rows = [row for seed in args.seeds for row in study_lake(seed, args.work, args.replicates)]
+    rows = [
+        row
+        for seed in args.seeds
+        for row in study_lake(seed, args.work, args.replicates, args.behavior_model)
+    ]
     result = pl.DataFrame(rows)
     summary = (
         result.group_by("estimator", "combined")

@@ -38,7 +38,8 @@ portfolio's toward the uniform policy (hierarchical additive smoothing):
 
 with k = ``prior_strength``. Kept for comparison and for programs whose homes
 are known to be alike; on simulated lakes it biases savings toward the
-residents' own value (DEVELOPERS.md, "Choosing the behaviour model").
+residents' own value (DEVELOPERS.md, "Choosing the behaviour
+model and the estimator").
 
 In both, a floor keeps every action's probability positive, so no importance
 weight divides by zero; the floor is reported with the table. When the steps

@@ -105,7 +105,7 @@ def evaluate_policy(
     about fifty episodes per premise, per-premise self-normalisation is biased
     by more than its bootstrap interval shows, while the pooled weighted
     estimate's interval covered the truth (see DEVELOPERS.md, "Choosing the
-    estimator").
+    behaviour model and the estimator").
 
     Parameters
     ----------
