@@ -16,8 +16,10 @@ $(STAMP): pyproject.toml | $(BIN)/python
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	touch $(STAMP)
 
+# The embedded Prefect server would otherwise try to send usage analytics (and log a
+# failure on a machine without network).
 demo: $(STAMP)
-	$(BIN)/thermal-ledger run --lake $(LAKE) --out $(OUT)
+	PREFECT_SERVER_ANALYTICS_ENABLED=false $(BIN)/thermal-ledger run --lake $(LAKE) --out $(OUT)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest

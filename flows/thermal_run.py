@@ -28,7 +28,7 @@ def episodes_task(config: Config, run: Run) -> stages.EpisodeCounts:
 
 
 @task(name="learn", cache_policy=NO_CACHE)
-def learn_task(config: Config, run: Run) -> int:
+def learn_task(config: Config, run: Run) -> stages.BehaviorSummary:
     return stages.learn(config, run)
 
 
@@ -51,7 +51,7 @@ def thermal_ledger_run(
     run = Run(config)
     ingested = ingest_task(config)
     counts = episodes_task(config, run)
-    learn_task(config, run)
+    behavior = learn_task(config, run)
     evaluation = evaluate_task(config, run)
     finish_task(config, run)
-    return stages.RunSummary(run.run_id, ingested, counts, evaluation)
+    return stages.RunSummary(run.run_id, ingested, counts, behavior, evaluation)

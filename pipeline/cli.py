@@ -110,6 +110,9 @@ def print_ingest(summary: stages.IngestSummary) -> None:
     print(_table(files.drop("message")))
     totals = files.select(pl.sum("rows_read", "rows_loaded", "rows_quarantined", "rows_duplicate")).row(0)
     print("total rows read {:,}, loaded {:,}, quarantined {:,}, duplicate {:,}".format(*totals))
+    unchanged = files.filter(pl.col("status") == "unchanged").height
+    if unchanged:
+        print(f"{unchanged} of {files.height} landing files already loaded and unchanged: not read again")
     for row in files.filter(pl.col("status").is_in(["refused", "missing"])).iter_rows(named=True):
         print(f"{row['status']}: {row['message']}")
 
@@ -139,6 +142,7 @@ def print_summary(summary: stages.RunSummary) -> None:
     )
     if counts.excluded:
         print("episodes excluded: " + ", ".join(f"{k} {v}" for k, v in sorted(counts.excluded.items())))
+    print(summary.behavior.describe())
     portfolio = savings.filter(pl.col("scope") == "portfolio").select(
         "policy_name",
         "mode",
@@ -206,7 +210,8 @@ def main(argv: list[str] | None = None) -> int:
             counts = stages.episodes(config, run)
             print(counts)
         elif args.stage == "learn":
-            print(f"behaviour policy rows: {stages.learn(config, run)}")
+            learned = stages.learn(config, run)
+            print(f"{learned.describe()}; behaviour policy rows: {learned.rows}")
         elif args.stage == "evaluate":
             print(_table(stages.evaluate(config, run).savings))
         stages.finish(config, run)

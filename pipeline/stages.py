@@ -19,7 +19,7 @@ from pipeline.config import Config
 from pipeline.episodes import EpisodeCounts, build, episode_summary, load_episodes, load_steps, steps_for
 from pipeline.ledger import Run
 
-__all__ = ["EpisodeCounts", "EvaluationSummary", "IngestSummary", "RunSummary"]
+__all__ = ["BehaviorSummary", "EpisodeCounts", "EvaluationSummary", "IngestSummary", "RunSummary"]
 
 
 class StageError(RuntimeError):
@@ -43,12 +43,35 @@ class EvaluationSummary:
 
 
 @dataclass(frozen=True)
+class BehaviorSummary:
+    """The behaviour model a run fitted: its kind, the settings chosen and its size."""
+
+    model: str
+    n_types: int | None
+    prior_strength: float
+    rows: int
+    premises_per_type: tuple[int, ...]
+    """Premises whose largest share is each habit type, in type order (empty for the counts model)."""
+
+    def describe(self) -> str:
+        """One line for the run summary."""
+        if self.n_types is None:
+            return f"behaviour model: cohort-shrunk counts (k={self.prior_strength:g})"
+        homes = ", ".join(str(n) for n in self.premises_per_type)
+        return (
+            f"behaviour model: {self.n_types} habit types (k={self.prior_strength:g});"
+            f" premises per type {homes}"
+        )
+
+
+@dataclass(frozen=True)
 class RunSummary:
     """What one whole run did."""
 
     run_id: str
     ingest: IngestSummary
     episodes: EpisodeCounts
+    behavior: BehaviorSummary
     evaluation: EvaluationSummary
 
 
@@ -78,7 +101,7 @@ def _steps(config: Config) -> pl.DataFrame:
     return steps
 
 
-def learn(config: Config, run: Run) -> int:
+def learn(config: Config, run: Run) -> BehaviorSummary:
     """Estimate the behaviour policy; keep it in the warehouse and write it to the ledger."""
     steps = _steps(config)
     model = fit_behavior(steps, config)
@@ -88,8 +111,15 @@ def learn(config: Config, run: Run) -> int:
         store.frame(con, "create or replace table behavior_policy as select * from behavior_frame")
         con.unregister("behavior_frame")
     run.write("behavior_policy", table)
-    run.write("behavior_type", model.membership())
-    return table.height
+    membership = model.membership()
+    run.write("behavior_type", membership)
+    per_type: tuple[int, ...] = ()
+    if model.n_types is not None:
+        top = membership.sort("share", descending=True).unique(["premise_id", *model.split_], keep="first")
+        counts = top.group_by("habit_type").len()
+        found = dict(zip(counts["habit_type"].to_list(), counts["len"].to_list(), strict=True))
+        per_type = tuple(found.get(z, 0) for z in range(1, model.n_types + 1))
+    return BehaviorSummary(config.behavior_model, model.n_types, model.prior_strength, table.height, per_type)
 
 
 def evaluate(config: Config, run: Run) -> EvaluationSummary:
@@ -129,7 +159,7 @@ def run_all(config: Config) -> RunSummary:
     run = Run(config)
     ingested = ingest(config)
     counts = episodes(config, run)
-    learn(config, run)
+    behavior = learn(config, run)
     evaluated = evaluate(config, run)
     finish(config, run)
-    return RunSummary(run.run_id, ingested, counts, evaluated)
+    return RunSummary(run.run_id, ingested, counts, behavior, evaluated)
