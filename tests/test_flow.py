@@ -91,3 +91,18 @@ def test_state_values_give_first_and_every_visit_values_at_every_scope(flow_run)
         for scope in ("cohort", "portfolio", "premise")
         for method in ("every_visit", "first_visit")
     ]
+
+
+def test_habit_type_shares_are_one_distribution_per_premise(flow_run):
+    """behavior_type has one row per (mode, premise, type), shares summing to one, every premise counted."""
+    out, summary = flow_run
+    con = store.connect_ledger(out / "ledger")
+    keys, unique_keys, worst = con.execute(
+        "select count(*), count(distinct (mode, premise_id, habit_type)),"
+        " max(abs(total - 1)) from behavior_type"
+        " join (select mode, premise_id, sum(share) as total from behavior_type group by all)"
+        " using (mode, premise_id)"
+    ).fetchall()[0]
+    assert keys == unique_keys > 0 and worst < 1e-9
+    premises = con.execute("select count(distinct premise_id) from behavior_type").fetchall()[0][0]
+    assert summary.behavior.n_types >= 1 and sum(summary.behavior.premises_per_type) == premises
