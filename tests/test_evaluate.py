@@ -98,8 +98,9 @@ def test_premise_savings_shrink_toward_cohort_by_the_empirical_bayes_weight():
     )
 
 
-def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_estimate():
-    """With the re-fitting bootstrap on, weighted IS rows still carry finite, ordered intervals."""
+@pytest.mark.parametrize("n_types", [None, 2])
+def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_estimate(n_types):
+    """With the re-fitting bootstrap on (either model), weighted IS rows carry finite, ordered intervals."""
     from pipeline.behavior import BehaviorPolicy
     from pipeline.evaluate import evaluate_candidates
 
@@ -127,7 +128,7 @@ def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_
             "mode": "cool",
         }
     )
-    behavior = BehaviorPolicy(actions=config.actions).fit(steps)
+    behavior = BehaviorPolicy(actions=config.actions, n_types=n_types, space=config.state).fit(steps)
     days = pl.DataFrame({"premise_id": ["A", "B"], "cohort": ["c", "c"], "days_observed": [30, 30]})
     savings = evaluate_candidates(steps, behavior, days, config).savings.filter(pl.col("status") == "ok")
     assert savings.height > 0
