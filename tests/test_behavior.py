@@ -161,3 +161,51 @@ def test_a_number_of_types_below_one_is_refused():
     """n_types=0 is an input error naming the setting."""
     with pytest.raises(BehaviorInputError, match="n_types"):
         BehaviorPolicy(n_types=0).fit(TYPED)
+
+
+def test_em_step_matches_a_plain_loop():
+    """One EM iteration (M step, then E step) equals the same sums written as loops over steps."""
+    from pipeline.behavior import _TypeMixture
+
+    rng = np.random.default_rng(5)
+    n, n_premises, n_types, n_actions, n_coarse, k, floor = 200, 6, 3, 3, 4, 2.0, 0.02
+    premise = rng.integers(0, n_premises, n)
+    state = rng.choice([3, 7, 11, 20, 21], n)
+    coarse = state % n_coarse
+    action = rng.integers(0, n_actions, n)
+    weight = rng.poisson(1.0, n).astype(float)
+    fitted = _TypeMixture(n_types, k, floor, n_actions, n_coarse, seed=9).fit(
+        premise, state, coarse, action, weight, n_premises, restarts=1, iterations=1
+    )
+
+    shares = np.random.default_rng(9).dirichlet(np.ones(n_types), n_premises)
+    states = sorted(set(state.tolist()))
+    overall = np.zeros((n_coarse, n_actions))
+    for i in range(n):
+        overall[coarse[i], action[i]] += weight[i]
+    portfolio = (overall + k / n_actions) / (overall.sum(1, keepdims=True) + k)
+
+    def floored(row):
+        row = np.maximum(row, floor)
+        return row / row.sum()
+
+    tables = np.zeros((n_types, len(states), n_actions))
+    for z in range(n_types):
+        by_coarse = np.zeros((n_coarse, n_actions))
+        by_state = np.zeros((len(states), n_actions))
+        for i in range(n):
+            by_coarse[coarse[i], action[i]] += shares[premise[i], z] * weight[i]
+            by_state[states.index(state[i]), action[i]] += shares[premise[i], z] * weight[i]
+        coarse_table = (by_coarse + k * portfolio) / (by_coarse.sum(1, keepdims=True) + k)
+        for c, s in enumerate(states):
+            prior = coarse_table[s % n_coarse]
+            tables[z, c] = floored((by_state[c] + k * prior) / (by_state[c].sum() + k))
+    loglik = np.log(shares.mean(0))[None, :].repeat(n_premises, 0)
+    for i in range(n):
+        for z in range(n_types):
+            loglik[premise[i], z] += weight[i] * np.log(tables[z, states.index(state[i]), action[i]])
+    posterior = np.exp(loglik - loglik.max(1, keepdims=True))
+    posterior /= posterior.sum(1, keepdims=True)
+
+    np.testing.assert_allclose(fitted.tables_, tables, rtol=1e-12)
+    np.testing.assert_allclose(fitted.shares_, posterior, rtol=1e-9)
