@@ -222,9 +222,10 @@ def ingest_file(
 
     An unchanged file (same content hash) is skipped; otherwise its earlier rows, quarantine
     rows and log entry are replaced in one transaction. Files in ``releasable`` (those still in
-    the lake) that hold conflicting duplicates with this file's old rows lose their rows and
-    log entry in the same transaction, so that they are checked again, against the new rows,
-    by this run or, if it stops, by the next.
+    the lake) that hold conflicting duplicates with this file's old rows, or (when old rows are
+    replaced) exact duplicates in the same folder, lose their rows and log entry in the same
+    transaction, so that they are checked again, against the new rows, by this run or, if it
+    stops, by the next.
     """
     started = time.perf_counter()
     name = _relative(path, config)
@@ -257,14 +258,24 @@ def ingest_file(
 
     store.execute(con, "begin transaction")
     try:
+        # Files to check again: those holding conflicts with this file's old rows and, when old
+        # rows go, those whose exact duplicates may have been copies of them (else they'd be lost).
         released = [
             row[0]
             for row in store.execute(
                 con,
-                "select distinct q.source_file from quarantine q semi join"
+                "select distinct source_file from ("
+                " select q.source_file from quarantine q semi join"
                 " (select record_key from quarantine where source_file = $f) mine using (record_key)"
-                " where q.source_file <> $f and list_contains($releasable, q.source_file)",
-                {"f": name, "releasable": sorted(releasable or ())},
+                " union all select source_file from ingest_log"
+                " where $replacing and folder = $folder and rows_duplicate > 0"
+                ") where source_file <> $f and list_contains($releasable, source_file) order by 1",
+                {
+                    "f": name,
+                    "folder": folder.name,
+                    "replacing": bool(seen),
+                    "releasable": sorted(releasable or ()),
+                },
             )
         ]
         for gone in [name, *released]:

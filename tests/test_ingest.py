@@ -640,3 +640,20 @@ def test_weather_conflict_across_files_quarantines_both_observations(tmp_path):
             ("landing/weather/b.csv", 1, "conflicting_duplicate"),
         ]
         _check_accounting(con)
+
+
+def test_an_exact_duplicate_is_loaded_when_the_file_holding_its_copy_drops_the_row(tmp_path):
+    """a.csv and b.csv carry the same readings (loaded once); when a.csv drops half, b's copies load."""
+    rows = _meter_day(1, 1.0).replace("P1,bad,60,1\n", "")
+    config, _, con = _ingest(tmp_path, {"meter/a.csv": rows, "meter/b.csv": rows})
+    assert con.execute("select count(*) from meter_read").fetchall() == [(24,)]
+    con.close()
+    write_landing(tmp_path, {"meter/a.csv": "\n".join(rows.splitlines()[:13]) + "\n"})
+    ingest.ingest(config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        assert con.execute("select count(*) from meter_read").fetchall() == [(24,)]
+        by_file = dict(
+            con.execute("select source_file, count(*) from meter_read group by 1 order by 1").fetchall()
+        )
+        assert by_file == {"landing/meter/a.csv": 12, "landing/meter/b.csv": 12}
+        _check_accounting(con)
