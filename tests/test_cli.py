@@ -52,3 +52,14 @@ def test_unknown_setting_is_a_usage_error(tmp_path, capsys):
     code = main(["ingest", "--lake", str(tmp_path), "--out", str(tmp_path / "o"), "--set", "recovry_hours=2"])
     assert code == EXIT_USAGE
     assert "recovry_hours" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize(
+    "setting",
+    ["behavior_model=mixture", "behavior_types=0", "behavior_types=2.5", "behavior_prior_strength=-1"],
+)
+def test_unusable_behaviour_settings_are_usage_errors(tmp_path, capsys, setting):
+    """A behaviour model, number of types or strength out of range exits 2 and names the setting."""
+    code = main(["learn", "--lake", str(tmp_path), "--out", str(tmp_path / "o"), "--set", setting])
+    assert code == EXIT_USAGE
+    assert setting.split("=")[0] in capsys.readouterr().err
