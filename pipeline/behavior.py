@@ -178,13 +178,19 @@ def _coarse_code(space: StateSpace, state_key: np.ndarray) -> np.ndarray:
 
 
 def _level_shares(member: pl.DataFrame, level: list[str], n_types: int) -> pl.DataFrame:
-    """Habit-type shares per premise, cohort or overall (members averaged by decisions), a column per type."""
+    """Habit-type shares per premise, cohort or overall (members weighted by decisions), a column per type."""
     keys = level or ["_all"]
     mass = pl.col("share") * pl.col("decisions")
     shares = (
         member.with_columns(pl.lit("all").alias("_all"))
         .group_by(*keys, "habit_type")
-        .agg((mass.sum() / pl.col("decisions").sum()).alias("share"))
+        .agg(
+            # A group whose decisions all weigh zero (a bootstrap resample) takes the plain mean.
+            pl.when(pl.col("decisions").sum() > 0)
+            .then(mass.sum() / pl.col("decisions").sum())
+            .otherwise(pl.col("share").mean())
+            .alias("share")
+        )
     )
     wide = shares.pivot(on="habit_type", index=keys, values="share", sort_columns=True)
     columns = [f"share_{z}" for z in range(1, n_types + 1)]

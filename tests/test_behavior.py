@@ -209,3 +209,12 @@ def test_em_step_matches_a_plain_loop():
 
     np.testing.assert_allclose(fitted.tables_, tables, rtol=1e-12)
     np.testing.assert_allclose(fitted.shares_, posterior, rtol=1e-9)
+
+
+def test_a_premise_whose_steps_all_weigh_zero_still_gets_probabilities():
+    """A resample may drop all of a premise's episodes: its rows use the mixing shares, never NaN."""
+    steps = _opposite_habits(100)
+    weight = np.where(steps["premise_id"] == "A", 0.0, 1.0)
+    model = BehaviorPolicy(5.0, 0.01, (-1, 0, 1), n_types=2).fit(steps, weight)
+    assert not model.table()["probability"].is_nan().any()
+    assert np.isfinite(model.probabilities(steps)).all()
