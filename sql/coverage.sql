@@ -10,9 +10,8 @@ reads as (
     from meter_read
 ),
 hours as (
-    select premise_id, date_trunc('hour', interval_start_utc) as hour_utc, sum(interval_minutes) as minutes_read
-    from reads
-    group by all
+    select premise_id, hour_utc, minutes_read
+    from meter_hours()
 ),
 spans as (
     select

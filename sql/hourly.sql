@@ -8,10 +8,8 @@ with premises as (
     select * from premise
 ),
 reads as (
-    select premise_id, date_trunc('hour', interval_start_utc) as hour_utc,
-           sum(kwh) as kwh, sum(interval_minutes) as minutes_read
-    from meter_read
-    group by all
+    select premise_id, hour_utc, kwh, minutes_read
+    from meter_hours()
 ),
 spans as (
     select premise_id, min(hour_utc) as first_hour, max(hour_utc) as last_hour

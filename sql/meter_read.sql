@@ -49,7 +49,10 @@ row_checked as (
                     or timezone(timezone, interval_start_utc + interval 1 hour) = wall_clock)
                 then 'ambiguous_local_time'
             when interval_minutes is null or interval_minutes not in (15, 30, 60) then 'bad_interval_length'
-            when epoch(interval_start_utc)::bigint % (interval_minutes * 60) <> 0 then 'interval_not_aligned'
+            -- On the UTC clock or on the local one (they differ in zones offset by part of an hour).
+            when epoch(interval_start_utc)::bigint % (interval_minutes * 60) <> 0
+                and epoch(timezone(timezone, interval_start_utc))::bigint % (interval_minutes * 60) <> 0
+                then 'interval_not_aligned'
             when kwh is null or isnan(kwh) then 'bad_number'
             when kwh < 0 or kwh > $max_kw * interval_minutes / 60.0 then 'kwh_out_of_range'
             when quality not in ('actual', 'estimated') then 'bad_code'

@@ -106,4 +106,44 @@ create or replace macro local_time_ambiguous(txt, tz) as
     and (
         timezone(tz, timezone(tz, try_cast(trim(txt) as timestamp)) - interval 1 hour) = try_cast(trim(txt) as timestamp)
         or timezone(tz, timezone(tz, try_cast(trim(txt) as timestamp)) + interval 1 hour) = try_cast(trim(txt) as timestamp)
+    );
+-- Meter kWh and minutes read per premise and UTC hour. A read lies inside one UTC hour
+-- unless its zone is offset by a part of an hour (e.g. a 60-minute read on the local
+-- hour in a -03:30 zone); such a read is shared among the hours it overlaps in
+-- proportion to the minutes in each, so kWh is conserved. hourly and coverage both
+-- read hours from here, so their counts of short hours agree.
+create or replace macro meter_hours() as table
+    with reads as (
+        select premise_id, interval_start_utc as starts, interval_minutes, kwh from meter_read
+    ),
+    -- Every read counted whole in the hour it starts in (all reads, in whole-hour zones) ...
+    whole as (
+        select premise_id, date_trunc('hour', starts) as hour_utc, kwh, interval_minutes as minutes
+        from reads
+    ),
+    -- ... then, for the few that run past that hour, each hour's share minus the whole read.
+    straddling as (
+        select *, date_trunc('hour', starts) as first_hour
+        from reads
+        where epoch(starts)::bigint % 3600 + interval_minutes * 60 > 3600
+    ),
+    shares as (
+        select *,
+               (epoch(least(starts + to_minutes(interval_minutes), hour_utc + interval 1 hour))
+                - epoch(greatest(starts, hour_utc)))::bigint // 60 as minutes_in_hour
+        from (
+            select *, unnest(generate_series(first_hour,
+                                             starts + to_minutes(interval_minutes) - interval 1 microsecond,
+                                             interval 1 hour)) as hour_utc
+            from straddling
+        )
+    ),
+    corrections as (
+        select premise_id, hour_utc,
+               kwh * minutes_in_hour / interval_minutes - if(hour_utc = first_hour, kwh, 0) as kwh,
+               minutes_in_hour - if(hour_utc = first_hour, interval_minutes, 0) as minutes
+        from shares
     )
+    select premise_id, hour_utc, sum(kwh) as kwh, sum(minutes) as minutes_read
+    from (select * from whole union all select * from corrections)
+    group by all;

@@ -657,3 +657,27 @@ def test_an_exact_duplicate_is_loaded_when_the_file_holding_its_copy_drops_the_r
         )
         assert by_file == {"landing/meter/a.csv": 12, "landing/meter/b.csv": 12}
         _check_accounting(con)
+
+
+def test_hourly_reads_in_a_half_hour_offset_zone_load_and_keep_their_kwh(tmp_path):
+    """Newfoundland (UTC-02:30 in July): 60-minute reads on the local hour load; UTC hours get two halves."""
+    zone = zoneinfo.ZoneInfo("America/St_Johns")
+    # The offset comes from the IANA tz database via zoneinfo, not from the code under test.
+    assert dt.datetime(2026, 7, 1, 12, tzinfo=zone).utcoffset() == -dt.timedelta(hours=2, minutes=30)
+    premises = PREMISES.replace("P1,America/Chicago", "P1,America/St_Johns")
+    kwh = np.round(np.random.default_rng(8).uniform(0.2, 1.5, 24), 3)
+    rows = [f"P1,2026-07-01T{h:02d}:00:00,60,{kwh[h]}" for h in range(24)]
+    meter = "premise_id,interval_start,interval_minutes,kwh\n" + "\n".join(rows) + "\n"
+    config = lake_config(
+        write_landing(tmp_path, {"tariffs/t.csv": TARIFF, "premises/p.csv": premises, "meter/m.csv": meter})
+    )
+    results = ingest.results_frame(ingest.ingest(config))
+    assert results.filter(pl.col("folder") == "meter")["rows_loaded"].to_list() == [24]
+    with store.warehouse(config.warehouse_path) as con:
+        store.build_table(con, "hourly", sql_params(Config()))
+        hours = con.execute("select hour_utc, kwh, minutes_read from hourly order by hour_utc").fetchall()
+        coverage = con.execute("select partial_hours from coverage").fetchall()
+    assert len(hours) == 25 and sum(h[1] for h in hours) == pytest.approx(kwh.sum())
+    assert [h[2] for h in hours] == [30] + [60] * 23 + [30]
+    assert hours[1][1] == pytest.approx((kwh[0] + kwh[1]) / 2)
+    assert coverage == [(2,)]
