@@ -28,7 +28,7 @@ from pipeline import estimators, ingest, store
 from pipeline.behavior import fit_behavior
 from pipeline.episodes import build, load_steps
 from pipeline.evaluate import _model_columns, target_probabilities
-from pipeline.simulate import generate_lake
+from pipeline.simulate import generate_lake, true_step_probabilities
 
 ESTIMATORS = ("weighted_is", "weighted_per_decision_is", "doubly_robust")
 
@@ -52,16 +52,7 @@ def study_lake(seed: int, work: Path, replicates: int, behavior_model: str) -> l
     with store.warehouse(config.warehouse_path, read_only=True) as con:
         steps = load_steps(con)
     if behavior_model == "true":
-        truth = pl.read_parquet(root / "lake" / "truth" / "steps.parquet").select(
-            "premise_id",
-            pl.col("hour_start").dt.convert_time_zone("UTC").alias("step_start_utc"),
-            pl.col("probability").alias("b"),
-        )
-        b = (
-            steps.with_columns(pl.col("step_start_utc").dt.convert_time_zone("UTC"))
-            .join(truth, on=["premise_id", "step_start_utc"], how="left", maintain_order="left")["b"]
-            .to_numpy()
-        )
+        b = true_step_probabilities(root / "lake", steps)
     else:
         b = fit_behavior(steps, config).probabilities(steps)
     values = pl.read_parquet(root / "lake" / "truth" / "policy_values.parquet").filter(

@@ -588,7 +588,9 @@ STRENGTHS_FOR_TYPES: tuple[float, ...] = (2.0, 5.0, 10.0, 20.0)
 """Prior strengths tried for the types model when the strength is chosen by held-out likelihood."""
 
 
-def _best(scores: pl.DataFrame) -> str:
+def _best(steps: pl.DataFrame, candidates: dict[str, BehaviorPolicy], seed: int) -> str:
+    """Label of the candidate with the best held-out log-likelihood (the first of any tie)."""
+    scores = held_out_log_likelihood(steps, candidates, seed=seed)
     return str(scores.sort("log_likelihood", descending=True, maintain_order=True)["model"][0])
 
 
@@ -602,7 +604,7 @@ def fit_behavior(steps: pl.DataFrame, config) -> BehaviorPolicy:
     if config.behavior_model == "counts":
         if strength == "auto":
             grid = {str(k): BehaviorPolicy(k, floor, actions) for k in STRENGTH_GRID}
-            strength = float(_best(held_out_log_likelihood(steps, grid, seed=config.seed)))
+            strength = float(_best(steps, grid, config.seed))
         return BehaviorPolicy(float(strength), floor, actions).fit(steps)
 
     def types_model(n_types: int, k: float) -> BehaviorPolicy:
@@ -611,9 +613,8 @@ def fit_behavior(steps: pl.DataFrame, config) -> BehaviorPolicy:
     n_types = config.behavior_types
     start = 5.0 if strength == "auto" else float(strength)
     if n_types == "auto":
-        grid = {str(z): types_model(z, start) for z in TYPES_GRID}
-        n_types = int(_best(held_out_log_likelihood(steps, grid, seed=config.seed)))
+        n_types = int(_best(steps, {str(z): types_model(z, start) for z in TYPES_GRID}, config.seed))
     if strength == "auto":
         grid = {str(k): types_model(n_types, k) for k in STRENGTHS_FOR_TYPES}
-        strength = float(_best(held_out_log_likelihood(steps, grid, seed=config.seed)))
+        strength = float(_best(steps, grid, config.seed))
     return types_model(int(n_types), float(strength)).fit(steps)

@@ -409,3 +409,16 @@ def test_pipeline_anchored_steps_equal_the_simulator_truth_on_the_sample_lake(tm
     np.testing.assert_allclose(
         joined["reward"].to_numpy(), joined["reward_usd"].to_numpy(), rtol=0, atol=1e-9
     )
+
+
+def test_true_step_probabilities_refuse_a_step_the_simulator_never_made():
+    """A decision step with no simulated counterpart is an error, not a silent gap."""
+    import datetime as dt
+
+    from pipeline.simulate import SimulationError, true_step_probabilities
+
+    stray = pl.DataFrame(
+        {"premise_id": ["P0001"], "step_start_utc": [dt.datetime(2020, 1, 1, tzinfo=dt.UTC)]}
+    )
+    with pytest.raises(SimulationError, match="no simulated counterpart"):
+        true_step_probabilities(SAMPLE, stray)

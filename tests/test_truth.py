@@ -89,19 +89,12 @@ def test_with_the_true_behaviour_probabilities_the_interval_covers(evaluated, po
     from pipeline import estimators, store
     from pipeline.episodes import load_steps
     from pipeline.evaluate import target_probabilities
+    from pipeline.simulate import true_step_probabilities
 
     config = evaluated.config
     with store.warehouse(config.warehouse_path, read_only=True) as con:
         steps = load_steps(con)
-    true_b = pl.read_parquet(SAMPLE_LAKE / "truth" / "steps.parquet").select(
-        "premise_id",
-        pl.col("hour_start").dt.convert_time_zone("UTC").alias("step_start_utc"),
-        pl.col("probability").alias("b"),
-    )
-    steps = steps.with_columns(pl.col("step_start_utc").dt.convert_time_zone("UTC")).join(
-        true_b, on=["premise_id", "step_start_utc"], how="left"
-    )
-    assert steps["b"].null_count() == 0
+    steps = steps.with_columns(pl.Series("b", true_step_probabilities(SAMPLE_LAKE, steps)))
     rule = next(r for r in config.candidates if r.name == policy_name)
     table = rule.table(config.state, config.actions, config.target_epsilon)
     frame = steps.select("episode_id", "t", "reward", "b").with_columns(

@@ -8,7 +8,13 @@ The decision process and the episode return are defined in
 """
 
 from pipeline.simulate.engine import comfort_penalty, episode_return
-from pipeline.simulate.lake import generate_lake, main_simulate, manifest, write_manifest
+from pipeline.simulate.lake import (
+    generate_lake,
+    main_simulate,
+    manifest,
+    true_step_probabilities,
+    write_manifest,
+)
 from pipeline.simulate.params import SimParams, SimulationError
 from pipeline.simulate.rollout import simulate_policy
 
@@ -21,5 +27,6 @@ __all__ = [
     "main_simulate",
     "manifest",
     "simulate_policy",
+    "true_step_probabilities",
     "write_manifest",
 ]

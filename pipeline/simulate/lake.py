@@ -33,7 +33,7 @@ from pipeline.simulate.engine import (
     run_grid,
     step_frame,
 )
-from pipeline.simulate.params import SimParams
+from pipeline.simulate.params import SimParams, SimulationError
 from pipeline.simulate.rollout import CANDIDATES, true_values
 from pipeline.simulate.world import World, build_world
 
@@ -339,6 +339,26 @@ def _write_truth(world: World, episodes: pl.DataFrame, steps: pl.DataFrame, fold
     ).write_parquet(folder / "premise_parameters.parquet", compression="zstd")
     episodes.write_parquet(folder / "episodes.parquet", compression="zstd")
     steps.write_parquet(folder / "steps.parquet", compression="zstd")
+
+
+def true_step_probabilities(root: str | Path, steps: pl.DataFrame) -> np.ndarray:
+    """The residents' true probability of each logged action, from ``truth/steps.parquet``.
+
+    ``steps`` are the pipeline's decision steps (premise_id, step_start_utc), in any
+    order; the result follows that order, shape (n_steps,). Raises SimulationError
+    when a step has no simulated counterpart (e.g. episodes the simulator never made).
+    """
+    truth = pl.read_parquet(Path(root) / "truth" / "steps.parquet").select(
+        "premise_id",
+        pl.col("hour_start").dt.convert_time_zone("UTC").alias("step_start_utc"),
+        pl.col("probability"),
+    )
+    joined = steps.select("premise_id", pl.col("step_start_utc").dt.convert_time_zone("UTC")).join(
+        truth, on=["premise_id", "step_start_utc"], how="left", maintain_order="left"
+    )
+    if joined["probability"].null_count():
+        raise SimulationError(f"{joined['probability'].null_count()} steps have no simulated counterpart")
+    return joined["probability"].to_numpy()
 
 
 def manifest(root: str | Path) -> dict[str, str]:
