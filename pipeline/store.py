@@ -15,7 +15,15 @@ from typing import Any
 import duckdb
 import polars as pl
 
-SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
+
+def _sql_dir() -> Path:
+    # An installed wheel carries the SQL files as pipeline/sql/; a checkout keeps them at the top.
+    here = Path(__file__).resolve().parent
+    installed = here / "sql"
+    return installed if installed.is_dir() else here.parent / "sql"
+
+
+SQL_DIR = _sql_dir()
 
 
 class StoreError(RuntimeError):
