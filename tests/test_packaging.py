@@ -51,7 +51,7 @@ def _checkout_packages() -> set[str]:
 
 
 def test_wheel_holds_every_package_and_sql_file(wheel):
-    """Every package of the checkout and every sql/*.sql file is inside the wheel (the SQL as pipeline/sql/)."""
+    """Every package and module of the checkout, and each sql/*.sql as pipeline/sql/, is in the wheel."""
     names = set(zipfile.ZipFile(wheel).namelist())
     for package in _checkout_packages():
         assert f"{package}/__init__.py" in names, package
