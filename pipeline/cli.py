@@ -191,8 +191,8 @@ def main(argv: list[str] | None = None) -> int:
         overrides = overrides_from(args)
         config = config_module.load(args.config, overrides)
         if args.stage == "ingest":
-            files = ingestion.results_frame(ingestion.ingest(config, progress=_progress))
-            summary = stages.IngestSummary(files, int((files["status"] == "refused").sum()))
+            run = Run(config)
+            summary = stages.ingest(config, run, progress=_progress)
             print_ingest(summary)
             return EXIT_REFUSED if summary.refused else EXIT_OK
         if args.stage == "run":
@@ -206,15 +206,14 @@ def main(argv: list[str] | None = None) -> int:
             print_summary(result)
             return EXIT_REFUSED if result.ingest.refused else EXIT_OK
         run = Run(config)
+        result = stages.STAGE_FUNCTIONS[args.stage](config, run)
         if args.stage == "episodes":
-            counts = stages.episodes(config, run)
-            print(counts)
+            print(result.counts)
         elif args.stage == "learn":
-            learned = stages.learn(config, run)
-            print(f"{learned.describe()}; behaviour policy rows: {learned.rows}")
+            print(f"{result.describe()}; behaviour policy rows: {result.rows}")
         elif args.stage == "evaluate":
-            print(_table(stages.evaluate(config, run).savings))
-        stages.finish(config, run)
+            print(_table(result.savings))
+        stages.finish(config, run, {args.stage: result})
         return EXIT_OK
     except (ConfigError, stages.StageError, IngestError, StoreError) as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)

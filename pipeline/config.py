@@ -115,6 +115,20 @@ class Config:
         """Root of the Parquet ledger."""
         return self.out / "ledger"
 
+    def stage_settings(self, stage: str) -> dict[str, Any]:
+        """Settings that shape ``stage``'s output, as JSON values."""
+        names = {
+            "ingest": ("columns", "cool_band_c", "heat_band_c"),
+            "episodes": (
+                "recovery_hours", "min_episode_hours", "max_episode_hours", "step_hours", "actions",
+                "comfort_penalty_usd_per_degree_hour", "decision_points", "comfort_penalty_basis",
+                "schedule_away_hours", "schedule_max_load_ratio", "setback_hold_hours", "presence_sources",
+                "state",
+            ),
+            "learn": ("behavior_model", "behavior_types", "behavior_prior_strength", "behavior_floor", "seed"),
+        }.get(stage, ())
+        return json.loads(json.dumps({n: dataclasses.asdict(self)[n] for n in names}, default=str))
+
     def to_json(self) -> str:
         """The configuration as JSON, recorded in the run table."""
         return json.dumps(dataclasses.asdict(self), default=str, sort_keys=True)

@@ -109,3 +109,15 @@ def connect_ledger(ledger: Path) -> duckdb.DuckDBPyConnection:
     execute(con, "set variable ledger_root = $root", {"root": str(Path(ledger).resolve())})
     run_sql(con, "views")
     return con
+
+
+@contextmanager
+def transaction(con: duckdb.DuckDBPyConnection) -> Iterator[duckdb.DuckDBPyConnection]:
+    """Everything written inside commits together, or is rolled back if anything raises."""
+    execute(con, "begin transaction")
+    try:
+        yield con
+    except BaseException:
+        execute(con, "rollback")
+        raise
+    execute(con, "commit")
