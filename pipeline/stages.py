@@ -24,7 +24,7 @@ import polars as pl
 from pipeline import evaluate as evaluation
 from pipeline import ingest as ingestion
 from pipeline import lineage, store
-from pipeline.behavior import BehaviorPolicy, fit_behavior
+from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
 from pipeline.config import Config
 from pipeline.episodes import EpisodeCounts, build, episode_summary, load_episodes, load_steps, steps_for
 from pipeline.ledger import Run
@@ -164,20 +164,43 @@ def _steps(config: Config) -> pl.DataFrame:
     return steps
 
 
+def _other_choice(config: Config) -> Config:
+    """The configuration with the other choice of decision points (for the horizon report)."""
+    other = "fixed" if config.decision_points == "anchored" else "anchored"
+    return dataclasses.replace(config, decision_points=other)
+
+
+def _store_behavior(con, model: BehaviorModel, prefix: str) -> None:
+    for name, frame in model.to_tables().items():
+        store.replace_table(con, f"{prefix}_{name}", frame)
+
+
+def _load_behavior(con, prefix: str, config: Config) -> BehaviorModel:
+    tables = {name: store.frame(con, f"select * from {prefix}_{name}") for name in BEHAVIOR_TABLES}
+    return load_behavior(tables, config.actions, config.state)
+
+
 def learn(config: Config, run: Run) -> BehaviorSummary:
-    """Estimate the behaviour policy; keep it in the warehouse and write it to the ledger."""
+    """Estimate the behaviour policy; keep it in the warehouse and write it to the ledger.
+
+    The same model (its chosen size, no second search) is also fitted on the steps of the
+    other choice of decision points, for the evaluate stage's horizon report.
+    """
     _checked(config, "learn")
     steps = _steps(config)
     model = fit_behavior(steps, config)
-    table = model.table()
+    other = _other_choice(config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        other_steps = steps_for(con, other)
+    other_model = model.clone().fit(other_steps)
     with store.warehouse(config.warehouse_path) as con, store.transaction(con):
-        con.register("behavior_frame", table.to_arrow())
-        store.frame(con, "create or replace table behavior_policy as select * from behavior_frame")
-        con.unregister("behavior_frame")
+        _store_behavior(con, model, "behavior")
+        _store_behavior(con, other_model, f"behavior_{other.decision_points}")
         lineage.record(con, "learn", config.stage_settings("learn"), _upstream("learn"), run.run_id)
-    tables = run.write("behavior_policy", table)
+    tables: dict[str, int] = {}
+    for name, frame in model.to_tables().items():
+        tables |= run.write(f"behavior_{name}", frame)
     membership = model.membership()
-    tables |= run.write("behavior_type", membership)
     per_type: tuple[int, ...] = ()
     if model.n_types is not None:
         top = membership.sort("share", descending=True).unique(["premise_id", *model.split_], keep="first")
@@ -185,7 +208,12 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
         found = dict(zip(counts["habit_type"].to_list(), counts["len"].to_list(), strict=True))
         per_type = tuple(found.get(z, 0) for z in range(1, model.n_types + 1))
     return BehaviorSummary(
-        config.behavior_model, model.n_types, model.prior_strength, table.height, per_type, tables
+        config.behavior_model,
+        model.n_types,
+        model.prior_strength,
+        tables["behavior_policy"],
+        per_type,
+        tables,
     )
 
 
@@ -193,21 +221,21 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     """Evaluate the behaviour policy and every candidate; write savings, policy and diagnostics."""
     _checked(config, "evaluate")
     steps = _steps(config)
+    other = _other_choice(config)
     with store.warehouse(config.warehouse_path, read_only=True) as con:
-        behavior = BehaviorPolicy.from_table(
-            store.frame(con, "select * from behavior_policy"), config.actions, config.state
-        )
+        behavior = _load_behavior(con, "behavior", config)
+        fitted = {
+            config.decision_points: behavior,
+            other.decision_points: _load_behavior(con, f"behavior_{other.decision_points}", config),
+        }
         days = store.frame(
             con,
             "select premise_id, p.cohort, count(distinct h.local_date) as days_observed"
             " from hourly h join premise p using (premise_id) group by all",
         )
-        by_choice = {
-            choice: steps_for(con, dataclasses.replace(config, decision_points=choice))
-            for choice in ("fixed", "anchored")
-        }
+        by_choice = {config.decision_points: steps, other.decision_points: steps_for(con, other)}
     result = evaluation.evaluate_candidates(steps, behavior, days, config)
-    horizon = evaluation.horizon_report(by_choice, config, {config.decision_points: behavior})
+    horizon = evaluation.horizon_report(by_choice, config, fitted)
     tables = run.write("horizon", horizon)
     tables |= run.write("state_value", evaluation.state_values(steps))
     tables |= run.write("savings", result.savings)

@@ -82,6 +82,16 @@ def frame(con: duckdb.DuckDBPyConnection, text: str, params: dict[str, Any] | No
     return con.sql(text, params=params_for(text, params or {}) or None).pl()
 
 
+def replace_table(con: duckdb.DuckDBPyConnection, name: str, frame: pl.DataFrame) -> int:
+    """Replace warehouse table ``name`` with ``frame``; return its row count."""
+    con.register("_frame", frame.to_arrow())
+    try:
+        execute(con, f"create or replace table {name} as select * from _frame")
+    finally:
+        con.unregister("_frame")
+    return frame.height
+
+
 def _has_code(statement: str) -> bool:
     return any(line.strip() and not line.strip().startswith("--") for line in statement.splitlines())
 
