@@ -431,10 +431,6 @@ def _select_columns(
     return selected
 
 
-def _quoted(identifier: str) -> str:
-    return '"' + identifier.replace('"', '""') + '"'
-
-
 _RAW_JSON = "json_merge_patch(to_json(s), '{\"source_row\": null}')::varchar"
 """The landing record as JSON of its own columns, for quarantine."""
 
@@ -448,9 +444,9 @@ def _load(
     config: Config,
 ) -> tuple[FileResult, list[str]]:
     columns = ", ".join(
-        f"cast(t.{_quoted(src)} as varchar) as {_quoted(canon)}"
+        f"cast(t.{store.quote_identifier(src)} as varchar) as {store.quote_identifier(canon)}"
         if src
-        else f"cast(null as varchar) as {canon}"
+        else f"cast(null as varchar) as {store.quote_identifier(canon)}"
         for canon, src in selected.items()
     )
     store.execute(

@@ -7,6 +7,7 @@ loaded by name; values always go in as bound parameters.
 from __future__ import annotations
 
 import datetime as dt
+import re
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -78,9 +79,22 @@ def _has_code(statement: str) -> bool:
     return any(line.strip() and not line.strip().startswith("--") for line in statement.splitlines())
 
 
+_PARAMETER = re.compile(r"\$(\w+)")
+
+
 def params_for(statement: str, params: dict[str, Any]) -> dict[str, Any]:
+    """The entries of ``params`` whose ``$name`` the statement uses (whole names: ``$f`` is not ``$folder``)."""
     # DuckDB refuses named parameters a statement does not use.
-    return {k: v for k, v in params.items() if f"${k}" in statement}
+    used = set(_PARAMETER.findall(statement))
+    return {k: v for k, v in params.items() if k in used}
+
+
+def quote_identifier(name: str) -> str:
+    """``name`` as a double-quoted SQL identifier (embedded quotes doubled), safe to splice into SQL.
+
+    The one way a name that is not a value (a column of a landing file, a table) enters SQL text.
+    """
+    return '"' + name.replace('"', '""') + '"'
 
 
 def write_ledger(ledger: Path, table: str, frame: pl.DataFrame, run_id: str, run_date: dt.date) -> Path:
