@@ -83,7 +83,7 @@ _PARAMETER = re.compile(r"\$(\w+)")
 
 
 def params_for(statement: str, params: dict[str, Any]) -> dict[str, Any]:
-    """The entries of ``params`` whose ``$name`` the statement uses (whole names: ``$f`` is not ``$folder``)."""
+    """The entries of ``params`` whose ``$name`` the statement uses (``$f`` is not ``$folder``)."""
     # DuckDB refuses named parameters a statement does not use.
     used = set(_PARAMETER.findall(statement))
     return {k: v for k, v in params.items() if k in used}

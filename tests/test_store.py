@@ -17,9 +17,11 @@ def test_params_for_matches_whole_parameter_names_only():
 
 
 def test_params_for_statement_runs_in_duckdb_with_a_prefix_named_parameter():
-    """A statement using ``$folder`` only runs: DuckDB refuses the unused ``$f`` the old prefix match passed."""
+    """A statement using ``$folder`` runs: DuckDB refuses an unused ``$f``, which a prefix match passed."""
     con = duckdb.connect()
-    rows = store.execute(con, "select $folder", store.params_for("select $folder", {"f": 1, "folder": "meter"}))
+    rows = store.execute(
+        con, "select $folder", store.params_for("select $folder", {"f": 1, "folder": "meter"})
+    )
     assert rows == [("meter",)]
 
 
