@@ -13,6 +13,7 @@ from __future__ import annotations
 import csv
 import gzip
 import hashlib
+import tempfile
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, replace
@@ -128,7 +129,7 @@ Progress = Callable[[int, int, FileResult], None]
 _ROW = "__row"
 """Name of the record-number column of a staged landing file."""
 _CSV_OPTIONS = (
-    "header = true, delim = ',', quote = '\"', escape = '\"', auto_detect = false, null_padding = true,"
+    "delim = ',', quote = '\"', escape = '\"', auto_detect = false, null_padding = true,"
     " store_rejects = true, rejects_table = 'landing_rejects', rejects_scan = 'landing_reject_scans'"
 )
 """A fixed dialect: sniffing guesses wrong on damaged files; records that do not parse are kept as rejects."""
@@ -362,19 +363,28 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
         header = _csv_header(path)
         if not header:
             raise FileRefused(f"{path.name}: empty file, no header line")
-        # Insertion order is preserved, so rowid is the record's position among parsed records.
-        store.execute(
-            con,
-            f"create or replace temp table landing_parsed as select * from read_csv($path, columns = $cols,"
-            f" {_CSV_OPTIONS})",
-            {"path": str(path), "cols": dict.fromkeys(header, "VARCHAR")},
-        )
-        store.execute(
-            con,
-            f"create or replace temp table landing_raw as select rowid + 1 as {_ROW}, * from landing_parsed",
-        )
+        columns = dict.fromkeys(header, "VARCHAR")
+        try:
+            _parse_csv(con, str(path), columns, header=True)
+            # A reject over several lines is a stray quote swallowing the records after it.
+            swallowed = store.execute(
+                con,
+                "select count(*) from landing_rejects"
+                " where contains(trim(csv_line, chr(13) || chr(10)), chr(10))",
+            )[0][0]
+        except duckdb.Error:
+            # The reader gives up on some quote damage (quoted new lines with padding) outright.
+            swallowed = 1
+        if swallowed:
+            _stage_by_lines(con, path, columns)
+        else:
+            # Insertion order is preserved, so rowid is the record's position among parsed records.
+            store.execute(
+                con,
+                f"create or replace temp table landing_raw as select rowid + 1 as {_ROW}, * from landing_parsed",
+            )
+            _number_rejects(con)
         store.execute(con, "drop table landing_parsed")
-        _number_rejects(con)
     store.execute(
         con,
         f"create or replace temp view landing_src as select coalesce(j.shift, 0) + r.{_ROW} as source_row,"
@@ -384,6 +394,87 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
     present = {row[0] for row in store.execute(con, "describe landing_src")} - {"source_row"}
     rejects = store.execute(con, "select count(*) from landing_rejects_lines")[0][0]
     return present, rejects
+
+
+def _parse_csv(con: duckdb.DuckDBPyConnection, path: str, columns: dict[str, str], header: bool) -> None:
+    """Parse a CSV into ``landing_parsed``; records that do not parse go to ``landing_rejects``."""
+    store.execute(con, "drop table if exists landing_rejects")
+    store.execute(con, "drop table if exists landing_reject_scans")
+    store.execute(
+        con,
+        f"create or replace temp table landing_parsed as select * from read_csv($path, columns = $cols,"
+        f" header = $header, {_CSV_OPTIONS})",
+        {"path": path, "cols": columns, "header": header},
+    )
+
+
+def _stage_by_lines(con: duckdb.DuckDBPyConnection, path: Path, columns: dict[str, str]) -> None:
+    """Stage a CSV damaged by stray quotes one physical line per record.
+
+    A line with an odd number of double quotes opens a quoted field it never closes; parsed as
+    CSV it would swallow every line after it. Such lines are rejected alone, the others are
+    written to a scratch file and parsed; records keep their line number among the data lines
+    (header and blank lines not counted), which is their record number in a file without damage.
+    """
+    store.execute(
+        con,
+        "create or replace temp table landing_line_text as select line from read_csv($path,"
+        " columns = {'line': 'VARCHAR'}, header = true, delim = chr(0), quote = '', escape = '',"
+        " auto_detect = false, strict_mode = false)",
+        {"path": str(path)},
+    )
+    store.execute(
+        con,
+        "create or replace temp table landing_lines as"
+        " select row_number() over (order by rowid) as source_row, line,"
+        "   (length(line) - length(replace(line, '\"', ''))) % 2 = 0 as balanced"
+        " from landing_line_text where line is not null",
+    )
+    store.execute(
+        con,
+        "create or replace temp table landing_good_lines as"
+        " select row_number() over (order by source_row) as k, source_row, line from landing_lines where balanced",
+    )
+    with tempfile.TemporaryDirectory() as scratch:
+        good = str(Path(scratch) / "lines.csv")
+        store.execute(
+            con,
+            "copy (select line from landing_good_lines order by k) to $path"
+            " (header false, quote '', escape '', delimiter chr(0))",
+            {"path": good},
+        )
+        _parse_csv(con, good, columns, header=False)
+    if store.execute(
+        con,
+        "select count(*) from landing_rejects where contains(trim(csv_line, chr(13) || chr(10)), chr(10))",
+    )[0][0]:
+        raise FileRefused(f"{path.name}: quotes that cannot be matched line by line")
+    # The scratch file holds one record per line, so reject line k is good line k, and the
+    # parsed records are the good lines that were not rejected, in order.
+    store.execute(
+        con,
+        "create or replace temp table landing_scratch_rejects as select distinct line as k from landing_rejects",
+    )
+    store.execute(
+        con,
+        f"create or replace temp table landing_raw as"
+        f" with kept as ("
+        f"   select source_row, row_number() over (order by k) as i"
+        f"   from landing_good_lines anti join landing_scratch_rejects using (k)"
+        f" ), parsed as (select rowid + 1 as i, * from landing_parsed)"
+        f" select kept.source_row as {_ROW}, parsed.* exclude (i) from parsed join kept using (i)",
+    )
+    store.execute(
+        con,
+        "create or replace temp table landing_rejects_lines as"
+        " select source_row, line from landing_lines where not balanced"
+        " union all select source_row, line from landing_good_lines semi join landing_scratch_rejects using (k)",
+    )
+    store.execute(
+        con, "create or replace temp table landing_reject_shifts (good_before bigint, shift bigint)"
+    )
+    for table in ("landing_line_text", "landing_lines", "landing_good_lines", "landing_scratch_rejects"):
+        store.execute(con, f"drop table {table}")
 
 
 def _number_rejects(con: duckdb.DuckDBPyConnection) -> None:

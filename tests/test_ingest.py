@@ -304,6 +304,45 @@ def test_malformed_rows_keep_their_row_numbers_around_good_ones(tmp_path):
     _check_accounting(con)
 
 
+@pytest.mark.parametrize("gzipped", [False, True], ids=["csv", "csv.gz"])
+def test_a_stray_quote_quarantines_its_own_line_only_and_the_rows_after_it_load(tmp_path, gzipped):
+    """An unclosed quote is one malformed_row with its text and line number; the later rows still load."""
+    thermostat = (
+        "premise_id,changed_at,mode,cool_setpoint_c,heat_setpoint_c,occupied\n"
+        "P1,2026-06-01T12:00:00Z,cool,24.0,19.0,0\n"
+        'P1,2026-06-01T13:00:00Z,cool,"24.0,19.0,0,23.0\n'
+        "P1,2026-06-01T14:00:00Z,cool,25.0,19.0,0\n"
+        'P1,2026-06-01T15:00:00Z,cool,"25.0",19.0,0,surplus\n'
+        'P1,2026-06-01T16:00:00Z,cool,"26.0",19.0,1\n'
+        "P1,2026-06-01T17:00:00Z,cool,45,19.0,1\n"
+    )
+    name = "thermostat/t.csv.gz" if gzipped else "thermostat/t.csv"
+    path = tmp_path / "landing" / name
+    path.parent.mkdir(parents=True)
+    path.write_bytes(gzip.compress(thermostat.encode()) if gzipped else thermostat.encode())
+    _, results, con = _ingest(tmp_path, {})
+    assert _reasons(con, f"landing/{name}") == {
+        2: "malformed_row",
+        4: "malformed_row",
+        6: "setpoint_out_of_range",
+    }
+    raw = con.execute("select raw from quarantine where row_number = 2").fetchall()[0][0]
+    assert raw == 'P1,2026-06-01T13:00:00Z,cool,"24.0,19.0,0,23.0'
+    assert con.execute("select source_row, cool_setpoint_c from thermostat_event order by 1").fetchall() == [
+        (1, 24.0),
+        (3, 25.0),
+        (5, 26.0),
+    ]
+    row = results.filter(pl.col("folder") == "thermostat").row(0, named=True)
+    assert (row["rows_read"], row["rows_loaded"], row["rows_quarantined"], row["rows_duplicate"]) == (
+        6,
+        3,
+        3,
+        0,
+    )
+    _check_accounting(con)
+
+
 # --- readers and the column mapping ---------------------------------------------------------
 
 
