@@ -11,6 +11,7 @@ a changed file replaces its old rows in one transaction.
 from __future__ import annotations
 
 import csv
+import difflib
 import gzip
 import hashlib
 import tempfile
@@ -28,6 +29,14 @@ from pipeline.config import Config
 
 class IngestError(RuntimeError):
     """The landing folder itself is unusable (not a single bad file or row)."""
+
+
+class LakeNotFound(IngestError):
+    """The lake folder, or the landing/ folder inside it, does not exist."""
+
+
+class NoMeterFiles(IngestError):
+    """Neither the lake nor the warehouse has a single meter file: there is nothing to evaluate."""
 
 
 class FileRefused(IngestError):
@@ -153,14 +162,20 @@ def ingest(config: Config, progress: Progress | None = None) -> list[FileResult]
     lake may be pruned after loading, the warehouse is the record). Finally ``coverage`` is
     rebuilt.
     """
-    landing = Path(config.lake) / "landing"
+    lake = Path(config.lake)
+    landing = lake / "landing"
+    if not lake.is_dir():
+        raise LakeNotFound(f"lake folder {lake} does not exist: check --lake")
     if not landing.is_dir():
-        raise IngestError(f"{landing} is not a folder: --lake must hold landing/")
+        raise LakeNotFound(f"{landing} is not a folder: --lake must hold landing/")
     work = [(folder, path) for folder in FOLDERS for path in landing_files(config.lake, folder.name)]
     by_name = {_relative(path, config): (folder, path) for folder, path in work}
-    results: dict[str, FileResult] = {}
+    unknown = _unknown_folders(landing)
+    results: dict[str, FileResult] = {r.source_file: r for r in unknown}
     with store.warehouse(config.warehouse_path) as con:
         store.run_sql(con, "schema")
+        if not any(folder.name == "meter" for folder, _ in work):
+            _require_loaded_meter(con, landing, unknown)
         released: list[str] = []
         for done, (folder, path) in enumerate(work, 1):
             result, freed = ingest_file(con, folder, path, config, set(by_name))
@@ -177,6 +192,31 @@ def ingest(config: Config, progress: Progress | None = None) -> list[FileResult]
         missing = _mark_missing(con, set(by_name))
         store.build_table(con, "coverage")
     return list(results.values()) + missing
+
+
+def _unknown_folders(landing: Path) -> list[FileResult]:
+    """A refused result for each sub-folder of landing/ that is not a known folder, with the nearest name."""
+    known = [folder.name for folder in FOLDERS]
+    results = []
+    for path in sorted(p for p in landing.iterdir() if p.is_dir() and p.name not in known):
+        near = difflib.get_close_matches(path.name, known, n=1)
+        hint = (
+            f"did you mean {near[0]}/?" if near else "known folders are " + ", ".join(f"{k}/" for k in known)
+        )
+        name = f"landing/{path.name}"
+        results.append(
+            FileResult(name, path.name, "refused", 0, 0, 0, 0, f"{name}: unknown folder, not read; {hint}")
+        )
+    return results
+
+
+def _require_loaded_meter(con: duckdb.DuckDBPyConnection, landing: Path, unknown: list[FileResult]) -> None:
+    """Raise NoMeterFiles unless meter files were loaded by an earlier run (the lake may be pruned)."""
+    if store.execute(con, "select count(*) from ingest_log where folder = 'meter'")[0][0]:
+        return
+    lookalike = [r.source_file for r in unknown if difflib.get_close_matches(r.folder, ["meter"], n=1)]
+    hint = f"; {lookalike[0]} looks like it: rename it meter/" if lookalike else ""
+    raise NoMeterFiles(f"no meter files (CSV, CSV.gz or Parquet) in {landing / 'meter'}{hint}")
 
 
 def _relative(path: Path, config: Config) -> str:

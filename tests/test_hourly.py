@@ -48,7 +48,8 @@ def _meter(hours=range(24), kwh: float = 1.0) -> str:
 
 
 def _warehouse(tmp_path, files: dict[str, str], **overrides) -> tuple[Config, duckdb.DuckDBPyConnection]:
-    config = lake_config(write_landing(tmp_path, {"premises/p.csv": PREMISES, **files}), **overrides)
+    files = {"premises/p.csv": PREMISES, "meter/m.csv": _meter(), **files}
+    config = lake_config(write_landing(tmp_path, files), **overrides)
     ingest.ingest(config)
     con = duckdb.connect(str(config.warehouse_path))
     store.execute(con, "set TimeZone = 'UTC'")

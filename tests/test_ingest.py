@@ -37,11 +37,26 @@ PREMISES = """
 
 def _ingest(tmp_path, files):
     config = lake_config(
-        write_landing(tmp_path, {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES, **files})
+        write_landing(
+            tmp_path,
+            {
+                "tariffs/t.csv": TARIFF,
+                "premises/p.csv": PREMISES,
+                **_meter_unless(files),
+                **files,
+            },
+        )
     )
     results = ingest.results_frame(ingest.ingest(config))
     con = duckdb.connect(str(config.warehouse_path), read_only=True)
     return config, results, con
+
+
+def _meter_unless(files):
+    # Ingest refuses a lake without meter files; tests of other folders get one good reading.
+    return (
+        {} if any(name.startswith("meter/") for name in files) else {"meter/m.csv": METER_HEAD + GOOD_METER}
+    )
 
 
 def _reasons(con, source_file):
@@ -720,3 +735,61 @@ def test_hourly_reads_in_a_half_hour_offset_zone_load_and_keep_their_kwh(tmp_pat
     assert [h[2] for h in hours] == [30] + [60] * 23 + [30]
     assert hours[1][1] == pytest.approx((kwh[0] + kwh[1]) / 2)
     assert coverage == [(2,)]
+
+
+# --- the landing folder itself ------------------------------------------------------------
+
+
+def test_an_unknown_folder_is_refused_with_the_nearest_known_name_and_exits_1(tmp_path, capsys):
+    """landing/meters next to landing/meter is reported as refused, suggesting meter/, and ingest exits 1."""
+    root = write_landing(
+        tmp_path,
+        {
+            "tariffs/t.csv": TARIFF,
+            "premises/p.csv": PREMISES,
+            "meter/m.csv": METER_HEAD + GOOD_METER,
+            "meters/late.csv": METER_HEAD + GOOD_METER,
+        },
+    )
+    results = ingest.results_frame(ingest.ingest(lake_config(root)))
+    refused = results.filter(pl.col("status") == "refused").row(0, named=True)
+    assert refused["source_file"] == "landing/meters"
+    assert refused["message"] == "landing/meters: unknown folder, not read; did you mean meter/?"
+    code = cli.main(["ingest", "--lake", str(root), "--out", str(tmp_path / "out")])
+    assert code == cli.EXIT_REFUSED
+    assert (
+        "refused: landing/meters: unknown folder, not read; did you mean meter/?" in capsys.readouterr().out
+    )
+
+
+def test_a_lake_without_meter_files_is_one_line_and_exit_2(tmp_path, capsys):
+    """Meter files only in landing/meters: exit 2 and one line naming landing/meter and the fix."""
+    root = write_landing(
+        tmp_path,
+        {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES, "meters/m.csv": METER_HEAD + GOOD_METER},
+    )
+    with pytest.raises(ingest.NoMeterFiles):
+        ingest.ingest(lake_config(root))
+    code = cli.main(["ingest", "--lake", str(root), "--out", str(tmp_path / "out")])
+    err = capsys.readouterr().err
+    assert code == cli.EXIT_USAGE
+    assert err.count("\n") == 1 and "Traceback" not in err
+    assert str(root / "landing" / "meter") in err and "landing/meters looks like it: rename it meter/" in err
+
+
+def test_a_lake_pruned_of_meter_files_after_loading_them_still_ingests(tmp_path):
+    """Meter files already loaded by an earlier run count: a lake pruned of them is not an error."""
+    config, _, con = _ingest(tmp_path, {})
+    con.close()
+    (tmp_path / "landing/meter/m.csv").unlink()
+    results = ingest.results_frame(ingest.ingest(config))
+    assert results.filter(pl.col("folder") == "meter")["status"].to_list() == ["missing"]
+
+
+def test_a_missing_lake_folder_is_one_line_and_exit_2(tmp_path, capsys):
+    """--lake naming a folder that does not exist gives exit 2 and one line naming it."""
+    missing = tmp_path / "no-such-lake"
+    code = cli.main(["ingest", "--lake", str(missing), "--out", str(tmp_path / "out")])
+    err = capsys.readouterr().err
+    assert code == cli.EXIT_USAGE
+    assert err == f"thermal-ledger: lake folder {missing} does not exist: check --lake\n"
