@@ -407,11 +407,7 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
         try:
             _parse_csv(con, str(path), columns, header=True)
             # A reject over several lines is a stray quote swallowing the records after it.
-            swallowed = store.execute(
-                con,
-                "select count(*) from landing_rejects"
-                " where contains(trim(csv_line, chr(13) || chr(10)), chr(10))",
-            )[0][0]
+            swallowed = store.execute(con, _MULTI_LINE_REJECTS)[0][0]
         except duckdb.Error:
             # The reader gives up on some quote damage (quoted new lines with padding) outright.
             swallowed = 1
@@ -421,7 +417,8 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
             # Insertion order is preserved, so rowid is the record's position among parsed records.
             store.execute(
                 con,
-                f"create or replace temp table landing_raw as select rowid + 1 as {_ROW}, * from landing_parsed",
+                f"create or replace temp table landing_raw as select rowid + 1 as {_ROW}, *"
+                " from landing_parsed",
             )
             _number_rejects(con)
         store.execute(con, "drop table landing_parsed")
@@ -434,6 +431,12 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
     present = {row[0] for row in store.execute(con, "describe landing_src")} - {"source_row"}
     rejects = store.execute(con, "select count(*) from landing_rejects_lines")[0][0]
     return present, rejects
+
+
+_MULTI_LINE_REJECTS = (
+    "select count(*) from landing_rejects where contains(trim(csv_line, chr(13) || chr(10)), chr(10))"
+)
+"""Rejected records spanning several lines: a quote that swallowed the lines after it."""
 
 
 def _parse_csv(con: duckdb.DuckDBPyConnection, path: str, columns: dict[str, str], header: bool) -> None:
@@ -456,25 +459,9 @@ def _stage_by_lines(con: duckdb.DuckDBPyConnection, path: Path, columns: dict[st
     written to a scratch file and parsed; records keep their line number among the data lines
     (header and blank lines not counted), which is their record number in a file without damage.
     """
-    store.execute(
-        con,
-        "create or replace temp table landing_line_text as select line from read_csv($path,"
-        " columns = {'line': 'VARCHAR'}, header = true, delim = chr(0), quote = '', escape = '',"
-        " auto_detect = false, strict_mode = false)",
-        {"path": str(path)},
-    )
-    store.execute(
-        con,
-        "create or replace temp table landing_lines as"
-        " select row_number() over (order by rowid) as source_row, line,"
-        "   (length(line) - length(replace(line, '\"', ''))) % 2 = 0 as balanced"
-        " from landing_line_text where line is not null",
-    )
-    store.execute(
-        con,
-        "create or replace temp table landing_good_lines as"
-        " select row_number() over (order by source_row) as k, source_row, line from landing_lines where balanced",
-    )
+    store.build_table(con, "landing_line_text", {"path": str(path)}, temp=True)
+    store.build_table(con, "landing_lines", temp=True)
+    store.build_table(con, "landing_good_lines", temp=True)
     with tempfile.TemporaryDirectory() as scratch:
         good = str(Path(scratch) / "lines.csv")
         store.execute(
@@ -484,66 +471,26 @@ def _stage_by_lines(con: duckdb.DuckDBPyConnection, path: Path, columns: dict[st
             {"path": good},
         )
         _parse_csv(con, good, columns, header=False)
-    if store.execute(
-        con,
-        "select count(*) from landing_rejects where contains(trim(csv_line, chr(13) || chr(10)), chr(10))",
-    )[0][0]:
+    if store.execute(con, _MULTI_LINE_REJECTS)[0][0]:
         raise FileRefused(f"{path.name}: quotes that cannot be matched line by line")
-    # The scratch file holds one record per line, so reject line k is good line k, and the
-    # parsed records are the good lines that were not rejected, in order.
-    store.execute(
-        con,
-        "create or replace temp table landing_scratch_rejects as select distinct line as k from landing_rejects",
-    )
-    store.execute(
-        con,
-        f"create or replace temp table landing_raw as"
-        f" with kept as ("
-        f"   select source_row, row_number() over (order by k) as i"
-        f"   from landing_good_lines anti join landing_scratch_rejects using (k)"
-        f" ), parsed as (select rowid + 1 as i, * from landing_parsed)"
-        f" select kept.source_row as {_ROW}, parsed.* exclude (i) from parsed join kept using (i)",
-    )
-    store.execute(
-        con,
-        "create or replace temp table landing_rejects_lines as"
-        " select source_row, line from landing_lines where not balanced"
-        " union all select source_row, line from landing_good_lines semi join landing_scratch_rejects using (k)",
-    )
+    store.build_table(con, "landing_line_records", temp=True)
+    store.build_table(con, "landing_line_rejects", temp=True)
+    for built, final in (
+        ("landing_line_records", "landing_raw"),
+        ("landing_line_rejects", "landing_rejects_lines"),
+    ):
+        store.execute(con, f"drop table if exists {final}")
+        store.execute(con, f"alter table {built} rename to {final}")
     store.execute(
         con, "create or replace temp table landing_reject_shifts (good_before bigint, shift bigint)"
     )
-    for table in ("landing_line_text", "landing_lines", "landing_good_lines", "landing_scratch_rejects"):
+    for table in ("landing_line_text", "landing_lines", "landing_good_lines"):
         store.execute(con, f"drop table {table}")
 
 
 def _number_rejects(con: duckdb.DuckDBPyConnection) -> None:
-    # A rejected record of n lines starting at data line k holds rows k .. k+n-1; parsed
-    # records after it are shifted by the lines of all rejects before them.
-    store.execute(
-        con,
-        "create or replace temp table landing_reject_records as"
-        " with first_error as ("
-        "   select line - 1 as first_row,"
-        "     string_split(replace(trim(any_value(csv_line), chr(13) || chr(10)),"
-        "       chr(13) || chr(10), chr(10)), chr(10)) as lines"
-        "   from landing_rejects group by line"
-        " )"
-        " select first_row, lines, len(lines) as span,"
-        "   sum(len(lines)) over (order by first_row rows unbounded preceding) as shift"
-        " from first_error",
-    )
-    store.execute(
-        con,
-        "create or replace temp table landing_reject_shifts as"
-        " select first_row - 1 - (shift - span) as good_before, shift from landing_reject_records",
-    )
-    store.execute(
-        con,
-        "create or replace temp table landing_rejects_lines as"
-        " select first_row + i - 1 as source_row, lines[i] as line"
-        " from (select *, unnest(range(1, span + 1)) as i from landing_reject_records)",
-    )
+    for table in ("landing_reject_records", "landing_reject_shifts", "landing_rejects_lines"):
+        store.build_table(con, table, temp=True)
 
 
 def _select_columns(

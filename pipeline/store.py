@@ -58,11 +58,16 @@ def run_sql(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | 
         execute(con, statement, params_for(statement, params or {}))
 
 
-def build_table(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None) -> int:
-    """Replace table ``name`` with the result of ``sql/<name>.sql``; return its row count."""
+def build_table(
+    con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None, temp: bool = False
+) -> int:
+    """Replace table ``name`` (temporary if ``temp``) by ``sql/<name>.sql``; return its row count."""
     query = sql_text(name)
-    execute(con, f"create or replace table {name} as {query}", params_for(query, params or {}))
-    return con.execute(f"select count(*) from {name}").fetchall()[0][0]
+    kind = "temp table" if temp else "table"
+    execute(
+        con, f"create or replace {kind} {quote_identifier(name)} as {query}", params_for(query, params or {})
+    )
+    return con.execute(f"select count(*) from {quote_identifier(name)}").fetchall()[0][0]
 
 
 def query(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None) -> pl.DataFrame:
