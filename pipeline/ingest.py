@@ -136,12 +136,7 @@ Progress = Callable[[int, int, FileResult], None]
 """Called after each file with (files done, files in total, its result)."""
 
 _ROW = "__row"
-"""Name of the record-number column of a staged landing file."""
-_CSV_OPTIONS = (
-    "delim = ',', quote = '\"', escape = '\"', auto_detect = false, null_padding = true,"
-    " store_rejects = true, rejects_table = 'landing_rejects', rejects_scan = 'landing_reject_scans'"
-)
-"""A fixed dialect: sniffing guesses wrong on damaged files; records that do not parse are kept as rejects."""
+"""Name of the record-number column of a staged landing file (as in sql/landing_*.sql)."""
 
 
 def landing_files(lake: Path, folder: str) -> list[Path]:
@@ -241,11 +236,7 @@ def _mark_missing(con: duckdb.DuckDBPyConnection, present: set[str]) -> list[Fil
         " where not list_contains($present, source_file)",
         {"present": sorted(present)},
     )
-    rows = store.execute(
-        con,
-        "select source_file, folder, rows_read, rows_loaded, rows_quarantined, rows_duplicate"
-        " from ingest_log where missing_since is not null order by source_file",
-    )
+    rows = store.query(con, "missing_files").rows()
     return [
         FileResult(f, folder, "missing", *counts, message=f"{f}: no longer in the lake; its rows are kept")
         for f, folder, *counts in rows
@@ -299,28 +290,21 @@ def ingest_file(
 
     store.execute(con, "begin transaction")
     try:
-        # Files to check again: those holding conflicts with this file's old rows and, when old
-        # rows go, those whose exact duplicates may have been copies of them (else they'd be lost).
-        released = [
-            row[0]
-            for row in store.execute(
-                con,
-                "select distinct source_file from ("
-                " select q.source_file from quarantine q semi join"
-                " (select record_key from quarantine where source_file = $f) mine using (record_key)"
-                " union all select source_file from ingest_log"
-                " where $replacing and folder = $folder and rows_duplicate > 0"
-                ") where source_file <> $f and list_contains($releasable, source_file) order by 1",
-                {
-                    "f": name,
-                    "folder": folder.name,
-                    "replacing": bool(seen),
-                    "releasable": sorted(releasable or ()),
-                },
-            )
-        ]
+        # Files to check again against the new rows (sql/released_files.sql says which and why).
+        released = store.query(
+            con,
+            "released_files",
+            {
+                "f": name,
+                "folder": folder.name,
+                "replacing": bool(seen),
+                "releasable": sorted(releasable or ()),
+            },
+        )["source_file"].to_list()
         for gone in [name, *released]:
-            store.execute(con, f"delete from {folder.table} where source_file = $f", {"f": gone})
+            store.execute(
+                con, f"delete from {store.quote_identifier(folder.table)} where source_file = $f", {"f": gone}
+            )
             store.execute(con, "delete from quarantine where source_file = $f", {"f": gone})
             store.execute(con, "delete from ingest_log where source_file = $f", {"f": gone})
         if failure is not None:
@@ -387,18 +371,9 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
     store.execute(con, "drop table if exists landing_rejects")
     store.execute(con, "drop table if exists landing_reject_scans")
     if path.name.lower().endswith(".parquet"):
-        store.execute(
-            con,
-            f"create or replace temp table landing_raw as select file_row_number + 1 as {_ROW},"
-            " * exclude (file_row_number) from read_parquet($path, file_row_number = true)",
-            {"path": str(path)},
-        )
-        store.execute(
-            con, "create or replace temp table landing_rejects_lines (source_row bigint, line varchar)"
-        )
-        store.execute(
-            con, "create or replace temp table landing_reject_shifts (good_before bigint, shift bigint)"
-        )
+        store.build_table(con, "landing_parquet", {"path": str(path)}, temp=True)
+        _rename(con, "landing_parquet", "landing_raw")
+        _no_rejects(con)
     else:
         header = _csv_header(path)
         if not header:
@@ -414,20 +389,11 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
         if swallowed:
             _stage_by_lines(con, path, columns)
         else:
-            # Insertion order is preserved, so rowid is the record's position among parsed records.
-            store.execute(
-                con,
-                f"create or replace temp table landing_raw as select rowid + 1 as {_ROW}, *"
-                " from landing_parsed",
-            )
+            store.build_table(con, "landing_csv", temp=True)
+            _rename(con, "landing_csv", "landing_raw")
             _number_rejects(con)
         store.execute(con, "drop table landing_parsed")
-    store.execute(
-        con,
-        f"create or replace temp view landing_src as select coalesce(j.shift, 0) + r.{_ROW} as source_row,"
-        f" r.* exclude ({_ROW}) from landing_raw r"
-        f" asof left join landing_reject_shifts j on r.{_ROW} > j.good_before",
-    )
+    store.build_view(con, "landing_src", temp=True)
     present = {row[0] for row in store.execute(con, "describe landing_src")} - {"source_row"}
     rejects = store.execute(con, "select count(*) from landing_rejects_lines")[0][0]
     return present, rejects
@@ -443,12 +409,7 @@ def _parse_csv(con: duckdb.DuckDBPyConnection, path: str, columns: dict[str, str
     """Parse a CSV into ``landing_parsed``; records that do not parse go to ``landing_rejects``."""
     store.execute(con, "drop table if exists landing_rejects")
     store.execute(con, "drop table if exists landing_reject_scans")
-    store.execute(
-        con,
-        f"create or replace temp table landing_parsed as select * from read_csv($path, columns = $cols,"
-        f" header = $header, {_CSV_OPTIONS})",
-        {"path": path, "cols": columns, "header": header},
-    )
+    store.build_table(con, "landing_parsed", {"path": path, "cols": columns, "header": header}, temp=True)
 
 
 def _stage_by_lines(con: duckdb.DuckDBPyConnection, path: Path, columns: dict[str, str]) -> None:
@@ -475,17 +436,31 @@ def _stage_by_lines(con: duckdb.DuckDBPyConnection, path: Path, columns: dict[st
         raise FileRefused(f"{path.name}: quotes that cannot be matched line by line")
     store.build_table(con, "landing_line_records", temp=True)
     store.build_table(con, "landing_line_rejects", temp=True)
-    for built, final in (
-        ("landing_line_records", "landing_raw"),
-        ("landing_line_rejects", "landing_rejects_lines"),
-    ):
-        store.execute(con, f"drop table if exists {final}")
-        store.execute(con, f"alter table {built} rename to {final}")
+    _rename(con, "landing_line_records", "landing_raw")
+    _rename(con, "landing_line_rejects", "landing_rejects_lines")
+    _no_shifts(con)
+    for table in ("landing_line_text", "landing_lines", "landing_good_lines"):
+        store.execute(con, f"drop table {store.quote_identifier(table)}")
+
+
+def _rename(con: duckdb.DuckDBPyConnection, built: str, final: str) -> None:
+    """Make the staging table ``built`` the one later steps read, under the name ``final``."""
+    store.execute(con, f"drop table if exists {store.quote_identifier(final)}")
+    store.execute(
+        con, f"alter table {store.quote_identifier(built)} rename to {store.quote_identifier(final)}"
+    )
+
+
+def _no_shifts(con: duckdb.DuckDBPyConnection) -> None:
+    # Records are already numbered by their own row: no reject shifts those after it.
     store.execute(
         con, "create or replace temp table landing_reject_shifts (good_before bigint, shift bigint)"
     )
-    for table in ("landing_line_text", "landing_lines", "landing_good_lines"):
-        store.execute(con, f"drop table {table}")
+
+
+def _no_rejects(con: duckdb.DuckDBPyConnection) -> None:
+    store.execute(con, "create or replace temp table landing_rejects_lines (source_row bigint, line varchar)")
+    _no_shifts(con)
 
 
 def _number_rejects(con: duckdb.DuckDBPyConnection) -> None:
@@ -544,11 +519,18 @@ def _load(
 
     moved_from = _move_conflicting_loaded_rows(con, folder) if folder.key else []
 
-    target_columns = [r[1] for r in store.execute(con, f"pragma table_info('{folder.table}')")]
-    value_columns = ", ".join(c for c in target_columns if c != "source_file")
+    target_columns = [
+        r[0]
+        for r in store.execute(
+            con,
+            "select name from pragma_table_info($t) order by cid",
+            {"t": folder.table},
+        )
+    ]
+    value_columns = ", ".join(store.quote_identifier(c) for c in target_columns if c != "source_file")
     store.execute(
         con,
-        f"insert into {folder.table} ({value_columns}, source_file)"
+        f"insert into {store.quote_identifier(folder.table)} ({value_columns}, source_file)"
         f" select {value_columns}, $f from checked where reason is null order by source_row",
         {"f": name},
     )
@@ -577,10 +559,10 @@ def _load(
 
 def _move_conflicting_loaded_rows(con: duckdb.DuckDBPyConnection, folder: Folder) -> list[str]:
     """Rows loaded from other files that conflict with this file's rows go to quarantine too."""
-    key = ", ".join(folder.key)
+    key = ", ".join(store.quote_identifier(k) for k in folder.key)
     store.execute(
         con,
-        f"create or replace temp table moved as select t.* from {folder.table} t"
+        f"create or replace temp table moved as select t.* from {store.quote_identifier(folder.table)} t"
         f" semi join (select {key} from checked where loaded_conflict) c using ({key})",
     )
     if not store.execute(con, "select count(*) from moved")[0][0]:
@@ -594,18 +576,19 @@ def _move_conflicting_loaded_rows(con: duckdb.DuckDBPyConnection, folder: Folder
     )
     store.execute(
         con,
-        f"delete from {folder.table} t using moved m where "
-        + " and ".join(f"t.{k} = m.{k}" for k in folder.key),
+        f"delete from {store.quote_identifier(folder.table)} t using moved m where "
+        + " and ".join(f"t.{store.quote_identifier(k)} = m.{store.quote_identifier(k)}" for k in folder.key),
     )
     return [row[0] for row in store.execute(con, "select distinct source_file from moved")]
 
 
 def _refresh_log(con: duckdb.DuckDBPyConnection, folder: Folder, files: list[str]) -> None:
     """Recount loaded and quarantined rows (by reason, as JSON) of ``files`` from the tables."""
+    table = store.quote_identifier(folder.table)
     store.execute(
         con,
         f"update ingest_log l set"
-        f"  rows_loaded = (select count(*) from {folder.table} t where t.source_file = l.source_file),"
+        f"  rows_loaded = (select count(*) from {table} t where t.source_file = l.source_file),"
         f"  rows_quarantined = (select count(*) from quarantine q where q.source_file = l.source_file),"
         f"  quarantined_by_reason = coalesce((select json_group_object(reason, n)::varchar from"
         f"    (select reason, count(*) as n from quarantine q where q.source_file = l.source_file"

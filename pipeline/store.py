@@ -70,6 +70,17 @@ def build_table(
     return con.execute(f"select count(*) from {quote_identifier(name)}").fetchall()[0][0]
 
 
+def build_view(
+    con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None, temp: bool = False
+) -> None:
+    """Replace view ``name`` (temporary if ``temp``) by ``sql/<name>.sql``: read where used, never copied."""
+    query = sql_text(name)
+    kind = "temp view" if temp else "view"
+    execute(
+        con, f"create or replace {kind} {quote_identifier(name)} as {query}", params_for(query, params or {})
+    )
+
+
 def query(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None) -> pl.DataFrame:
     """Result of ``sql/<name>.sql`` as a polars frame."""
     return frame(con, sql_text(name), params)
