@@ -262,12 +262,7 @@ def ingest_file(
     started = time.perf_counter()
     name = _relative(path, config)
     content_hash = _content_hash(path)
-    seen = store.execute(
-        con,
-        "select content_hash, status, rows_read, rows_loaded, rows_quarantined, rows_duplicate, message"
-        " from ingest_log where source_file = $f",
-        {"f": name},
-    )
+    seen = store.query(con, "logged_file", {"f": name}).rows()
     if seen and seen[0][0] == content_hash:
         store.execute(con, "update ingest_log set missing_since = null where source_file = $f", {"f": name})
         _, status, *counts, message = seen[0]
@@ -546,11 +541,7 @@ def _load(
         {"f": name},
     )
     _quarantine_rejects(con, name)
-    read, loaded, dup = store.execute(
-        con,
-        "select count(*), count(*) filter (reason is null), count(*) filter (reason = 'exact_duplicate')"
-        " from checked",
-    )[0]
+    read, loaded, dup = store.query(con, "file_counts").row(0)
     read += rejects
     quarantined = read - loaded - dup
     status = "loaded" if quarantined == 0 else "loaded_with_quarantine"
