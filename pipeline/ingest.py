@@ -230,12 +230,7 @@ def _content_hash(path: Path) -> str:
 
 
 def _mark_missing(con: duckdb.DuckDBPyConnection, present: set[str]) -> list[FileResult]:
-    store.execute(
-        con,
-        "update ingest_log set missing_since = coalesce(missing_since, now())"
-        " where not list_contains($present, source_file)",
-        {"present": sorted(present)},
-    )
+    store.run_sql(con, "mark_missing", {"present": sorted(present)})
     rows = store.query(con, "missing_files").rows()
     return [
         FileResult(f, folder, "missing", *counts, message=f"{f}: no longer in the lake; its rows are kept")
@@ -300,8 +295,7 @@ def ingest_file(
             store.execute(
                 con, f"delete from {store.quote_identifier(folder.table)} where source_file = $f", {"f": gone}
             )
-            store.execute(con, "delete from quarantine where source_file = $f", {"f": gone})
-            store.execute(con, "delete from ingest_log where source_file = $f", {"f": gone})
+            store.run_sql(con, "forget_file", {"f": gone})
         if failure is not None:
             result = _refuse_unreadable(con, folder, path, name, failure)
         else:
@@ -313,11 +307,9 @@ def ingest_file(
         if seen:
             result = replace(result, message=result.message or "replaced the rows of an earlier version")
         result = replace(result, seconds=time.perf_counter() - started)
-        store.execute(
+        store.run_sql(
             con,
-            "insert into ingest_log (source_file, folder, content_hash, rows_read, rows_loaded,"
-            " rows_quarantined, rows_duplicate, status, message, seconds, ingested_at)"
-            " values ($f, $folder, $h, $read, $loaded, $quar, $dup, $status, $msg, $secs, now())",
+            "log_file",
             {
                 "f": name,
                 "folder": folder.name,
@@ -596,12 +588,7 @@ def _refresh_log(con: duckdb.DuckDBPyConnection, folder: Folder, files: list[str
 
 
 def _quarantine_rejects(con: duckdb.DuckDBPyConnection, name: str) -> None:
-    store.execute(
-        con,
-        "insert into quarantine (source_file, row_number, reason, raw)"
-        " select $f, source_row, 'malformed_row', line from landing_rejects_lines",
-        {"f": name},
-    )
+    store.run_sql(con, "quarantine_rejects", {"f": name})
 
 
 def _refuse_all_rows(
@@ -637,12 +624,7 @@ def _refuse_unreadable(
     frame = frame.filter(pl.col("line").str.strip_chars() != "")
     con.register("unreadable_lines", frame.to_arrow())
     try:
-        store.execute(
-            con,
-            "insert into quarantine (source_file, row_number, reason, raw)"
-            " select $f, source_row, 'unreadable_file', line from unreadable_lines",
-            {"f": name},
-        )
+        store.run_sql(con, "quarantine_unreadable", {"f": name})
     finally:
         con.unregister("unreadable_lines")
     return FileResult(name, folder.name, "refused", frame.height, 0, frame.height, 0, message)
