@@ -273,6 +273,17 @@ REASON_CASES = [
         "rate_plan_id,months,day_type,start_hour,end_hour,price_per_kwh\nX,1-12,weekday,0,24,25\n",
         "price_out_of_range",
     ),
+    (
+        "tariffs/u.csv",
+        "rate_plan_id,months,day_type,start_hour,end_hour,price_per_kwh\nX,1-12,weekday,0,24,0.1\n"
+        "X,7-7,weekday,8,9,0.3\n",
+        "tariff_overlap",
+    ),
+    (
+        "tariffs/u.csv",
+        "rate_plan_id,months,day_type,start_hour,end_hour,price_per_kwh\nX,1-12,weekday,0,23,0.1\n",
+        "tariff_gap",
+    ),
 ]
 
 
