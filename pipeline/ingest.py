@@ -11,8 +11,10 @@ a changed file replaces its old rows in one transaction.
 from __future__ import annotations
 
 import csv
+import difflib
 import gzip
 import hashlib
+import tempfile
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, replace
@@ -27,6 +29,14 @@ from pipeline.config import Config
 
 class IngestError(RuntimeError):
     """The landing folder itself is unusable (not a single bad file or row)."""
+
+
+class LakeNotFound(IngestError):
+    """The lake folder, or the landing/ folder inside it, does not exist."""
+
+
+class NoMeterFiles(IngestError):
+    """Neither the lake nor the warehouse has a single meter file: there is nothing to evaluate."""
 
 
 class FileRefused(IngestError):
@@ -126,12 +136,7 @@ Progress = Callable[[int, int, FileResult], None]
 """Called after each file with (files done, files in total, its result)."""
 
 _ROW = "__row"
-"""Name of the record-number column of a staged landing file."""
-_CSV_OPTIONS = (
-    "header = true, delim = ',', quote = '\"', escape = '\"', auto_detect = false, null_padding = true,"
-    " store_rejects = true, rejects_table = 'landing_rejects', rejects_scan = 'landing_reject_scans'"
-)
-"""A fixed dialect: sniffing guesses wrong on damaged files; records that do not parse are kept as rejects."""
+"""Name of the record-number column of a staged landing file (as in sql/landing_*.sql)."""
 
 
 def landing_files(lake: Path, folder: str) -> list[Path]:
@@ -152,14 +157,20 @@ def ingest(config: Config, progress: Progress | None = None) -> list[FileResult]
     lake may be pruned after loading, the warehouse is the record). Finally ``coverage`` is
     rebuilt.
     """
-    landing = Path(config.lake) / "landing"
+    lake = Path(config.lake)
+    landing = lake / "landing"
+    if not lake.is_dir():
+        raise LakeNotFound(f"lake folder {lake} does not exist: check --lake")
     if not landing.is_dir():
-        raise IngestError(f"{landing} is not a folder: --lake must hold landing/")
+        raise LakeNotFound(f"{landing} is not a folder: --lake must hold landing/")
     work = [(folder, path) for folder in FOLDERS for path in landing_files(config.lake, folder.name)]
     by_name = {_relative(path, config): (folder, path) for folder, path in work}
-    results: dict[str, FileResult] = {}
+    unknown = _unknown_folders(landing)
+    results: dict[str, FileResult] = {r.source_file: r for r in unknown}
     with store.warehouse(config.warehouse_path) as con:
         store.run_sql(con, "schema")
+        if not any(folder.name == "meter" for folder, _ in work):
+            _require_loaded_meter(con, landing, unknown)
         released: list[str] = []
         for done, (folder, path) in enumerate(work, 1):
             result, freed = ingest_file(con, folder, path, config, set(by_name))
@@ -178,6 +189,31 @@ def ingest(config: Config, progress: Progress | None = None) -> list[FileResult]
     return list(results.values()) + missing
 
 
+def _unknown_folders(landing: Path) -> list[FileResult]:
+    """A refused result for each sub-folder of landing/ that is not a known folder, with the nearest name."""
+    known = [folder.name for folder in FOLDERS]
+    results = []
+    for path in sorted(p for p in landing.iterdir() if p.is_dir() and p.name not in known):
+        near = difflib.get_close_matches(path.name, known, n=1)
+        hint = (
+            f"did you mean {near[0]}/?" if near else "known folders are " + ", ".join(f"{k}/" for k in known)
+        )
+        name = f"landing/{path.name}"
+        results.append(
+            FileResult(name, path.name, "refused", 0, 0, 0, 0, f"{name}: unknown folder, not read; {hint}")
+        )
+    return results
+
+
+def _require_loaded_meter(con: duckdb.DuckDBPyConnection, landing: Path, unknown: list[FileResult]) -> None:
+    """Raise NoMeterFiles unless meter files were loaded by an earlier run (the lake may be pruned)."""
+    if store.execute(con, "select count(*) from ingest_log where folder = 'meter'")[0][0]:
+        return
+    lookalike = [r.source_file for r in unknown if difflib.get_close_matches(r.folder, ["meter"], n=1)]
+    hint = f"; {lookalike[0]} looks like it: rename it meter/" if lookalike else ""
+    raise NoMeterFiles(f"no meter files (CSV, CSV.gz or Parquet) in {landing / 'meter'}{hint}")
+
+
 def _relative(path: Path, config: Config) -> str:
     try:
         return str(path.resolve().relative_to(Path(config.lake).resolve()))
@@ -194,17 +230,8 @@ def _content_hash(path: Path) -> str:
 
 
 def _mark_missing(con: duckdb.DuckDBPyConnection, present: set[str]) -> list[FileResult]:
-    store.execute(
-        con,
-        "update ingest_log set missing_since = coalesce(missing_since, now())"
-        " where not list_contains($present, source_file)",
-        {"present": sorted(present)},
-    )
-    rows = store.execute(
-        con,
-        "select source_file, folder, rows_read, rows_loaded, rows_quarantined, rows_duplicate"
-        " from ingest_log where missing_since is not null order by source_file",
-    )
+    store.run_sql(con, "mark_missing", {"present": sorted(present)})
+    rows = store.query(con, "missing_files").rows()
     return [
         FileResult(f, folder, "missing", *counts, message=f"{f}: no longer in the lake; its rows are kept")
         for f, folder, *counts in rows
@@ -230,12 +257,7 @@ def ingest_file(
     started = time.perf_counter()
     name = _relative(path, config)
     content_hash = _content_hash(path)
-    seen = store.execute(
-        con,
-        "select content_hash, status, rows_read, rows_loaded, rows_quarantined, rows_duplicate, message"
-        " from ingest_log where source_file = $f",
-        {"f": name},
-    )
+    seen = store.query(con, "logged_file", {"f": name}).rows()
     if seen and seen[0][0] == content_hash:
         store.execute(con, "update ingest_log set missing_since = null where source_file = $f", {"f": name})
         _, status, *counts, message = seen[0]
@@ -258,30 +280,22 @@ def ingest_file(
 
     store.execute(con, "begin transaction")
     try:
-        # Files to check again: those holding conflicts with this file's old rows and, when old
-        # rows go, those whose exact duplicates may have been copies of them (else they'd be lost).
-        released = [
-            row[0]
-            for row in store.execute(
-                con,
-                "select distinct source_file from ("
-                " select q.source_file from quarantine q semi join"
-                " (select record_key from quarantine where source_file = $f) mine using (record_key)"
-                " union all select source_file from ingest_log"
-                " where $replacing and folder = $folder and rows_duplicate > 0"
-                ") where source_file <> $f and list_contains($releasable, source_file) order by 1",
-                {
-                    "f": name,
-                    "folder": folder.name,
-                    "replacing": bool(seen),
-                    "releasable": sorted(releasable or ()),
-                },
-            )
-        ]
+        # Files to check again against the new rows (sql/released_files.sql says which and why).
+        released = store.query(
+            con,
+            "released_files",
+            {
+                "f": name,
+                "folder": folder.name,
+                "replacing": bool(seen),
+                "releasable": sorted(releasable or ()),
+            },
+        )["source_file"].to_list()
         for gone in [name, *released]:
-            store.execute(con, f"delete from {folder.table} where source_file = $f", {"f": gone})
-            store.execute(con, "delete from quarantine where source_file = $f", {"f": gone})
-            store.execute(con, "delete from ingest_log where source_file = $f", {"f": gone})
+            store.execute(
+                con, f"delete from {store.quote_identifier(folder.table)} where source_file = $f", {"f": gone}
+            )
+            store.run_sql(con, "forget_file", {"f": gone})
         if failure is not None:
             result = _refuse_unreadable(con, folder, path, name, failure)
         else:
@@ -293,11 +307,9 @@ def ingest_file(
         if seen:
             result = replace(result, message=result.message or "replaced the rows of an earlier version")
         result = replace(result, seconds=time.perf_counter() - started)
-        store.execute(
+        store.run_sql(
             con,
-            "insert into ingest_log (source_file, folder, content_hash, rows_read, rows_loaded,"
-            " rows_quarantined, rows_duplicate, status, message, seconds, ingested_at)"
-            " values ($f, $folder, $h, $read, $loaded, $quar, $dup, $status, $msg, $secs, now())",
+            "log_file",
             {
                 "f": name,
                 "folder": folder.name,
@@ -346,73 +358,101 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
     store.execute(con, "drop table if exists landing_rejects")
     store.execute(con, "drop table if exists landing_reject_scans")
     if path.name.lower().endswith(".parquet"):
-        store.execute(
-            con,
-            f"create or replace temp table landing_raw as select file_row_number + 1 as {_ROW},"
-            " * exclude (file_row_number) from read_parquet($path, file_row_number = true)",
-            {"path": str(path)},
-        )
-        store.execute(
-            con, "create or replace temp table landing_rejects_lines (source_row bigint, line varchar)"
-        )
-        store.execute(
-            con, "create or replace temp table landing_reject_shifts (good_before bigint, shift bigint)"
-        )
+        store.build_table(con, "landing_parquet", {"path": str(path)}, temp=True)
+        _rename(con, "landing_parquet", "landing_raw")
+        _no_rejects(con)
     else:
         header = _csv_header(path)
         if not header:
             raise FileRefused(f"{path.name}: empty file, no header line")
-        # Insertion order is preserved, so rowid is the record's position among parsed records.
-        store.execute(
-            con,
-            f"create or replace temp table landing_parsed as select * from read_csv($path, columns = $cols,"
-            f" {_CSV_OPTIONS})",
-            {"path": str(path), "cols": dict.fromkeys(header, "VARCHAR")},
-        )
-        store.execute(
-            con,
-            f"create or replace temp table landing_raw as select rowid + 1 as {_ROW}, * from landing_parsed",
-        )
+        columns = dict.fromkeys(header, "VARCHAR")
+        try:
+            _parse_csv(con, str(path), columns, header=True)
+            # A reject over several lines is a stray quote swallowing the records after it.
+            swallowed = store.execute(con, _MULTI_LINE_REJECTS)[0][0]
+        except duckdb.Error:
+            # The reader gives up on some quote damage (quoted new lines with padding) outright.
+            swallowed = 1
+        if swallowed:
+            _stage_by_lines(con, path, columns)
+        else:
+            store.build_table(con, "landing_csv", temp=True)
+            _rename(con, "landing_csv", "landing_raw")
+            _number_rejects(con)
         store.execute(con, "drop table landing_parsed")
-        _number_rejects(con)
-    store.execute(
-        con,
-        f"create or replace temp view landing_src as select coalesce(j.shift, 0) + r.{_ROW} as source_row,"
-        f" r.* exclude ({_ROW}) from landing_raw r"
-        f" asof left join landing_reject_shifts j on r.{_ROW} > j.good_before",
-    )
+    store.build_view(con, "landing_src", temp=True)
     present = {row[0] for row in store.execute(con, "describe landing_src")} - {"source_row"}
     rejects = store.execute(con, "select count(*) from landing_rejects_lines")[0][0]
     return present, rejects
 
 
+_MULTI_LINE_REJECTS = (
+    "select count(*) from landing_rejects where contains(trim(csv_line, chr(13) || chr(10)), chr(10))"
+)
+"""Rejected records spanning several lines: a quote that swallowed the lines after it."""
+
+
+def _parse_csv(con: duckdb.DuckDBPyConnection, path: str, columns: dict[str, str], header: bool) -> None:
+    """Parse a CSV into ``landing_parsed``; records that do not parse go to ``landing_rejects``."""
+    store.execute(con, "drop table if exists landing_rejects")
+    store.execute(con, "drop table if exists landing_reject_scans")
+    store.build_table(con, "landing_parsed", {"path": path, "cols": columns, "header": header}, temp=True)
+
+
+def _stage_by_lines(con: duckdb.DuckDBPyConnection, path: Path, columns: dict[str, str]) -> None:
+    """Stage a CSV damaged by stray quotes one physical line per record.
+
+    A line with an odd number of double quotes opens a quoted field it never closes; parsed as
+    CSV it would swallow every line after it. Such lines are rejected alone, the others are
+    written to a scratch file and parsed; records keep their line number among the data lines
+    (header and blank lines not counted), which is their record number in a file without damage.
+    """
+    store.build_table(con, "landing_line_text", {"path": str(path)}, temp=True)
+    store.build_table(con, "landing_lines", temp=True)
+    store.build_table(con, "landing_good_lines", temp=True)
+    with tempfile.TemporaryDirectory() as scratch:
+        good = str(Path(scratch) / "lines.csv")
+        store.execute(
+            con,
+            "copy (select line from landing_good_lines order by k) to $path"
+            " (header false, quote '', escape '', delimiter chr(0))",
+            {"path": good},
+        )
+        _parse_csv(con, good, columns, header=False)
+    if store.execute(con, _MULTI_LINE_REJECTS)[0][0]:
+        raise FileRefused(f"{path.name}: quotes that cannot be matched line by line")
+    store.build_table(con, "landing_line_records", temp=True)
+    store.build_table(con, "landing_line_rejects", temp=True)
+    _rename(con, "landing_line_records", "landing_raw")
+    _rename(con, "landing_line_rejects", "landing_rejects_lines")
+    _no_shifts(con)
+    for table in ("landing_line_text", "landing_lines", "landing_good_lines"):
+        store.execute(con, f"drop table {store.quote_identifier(table)}")
+
+
+def _rename(con: duckdb.DuckDBPyConnection, built: str, final: str) -> None:
+    """Make the staging table ``built`` the one later steps read, under the name ``final``."""
+    store.execute(con, f"drop table if exists {store.quote_identifier(final)}")
+    store.execute(
+        con, f"alter table {store.quote_identifier(built)} rename to {store.quote_identifier(final)}"
+    )
+
+
+def _no_shifts(con: duckdb.DuckDBPyConnection) -> None:
+    # Records are already numbered by their own row: no reject shifts those after it.
+    store.execute(
+        con, "create or replace temp table landing_reject_shifts (good_before bigint, shift bigint)"
+    )
+
+
+def _no_rejects(con: duckdb.DuckDBPyConnection) -> None:
+    store.execute(con, "create or replace temp table landing_rejects_lines (source_row bigint, line varchar)")
+    _no_shifts(con)
+
+
 def _number_rejects(con: duckdb.DuckDBPyConnection) -> None:
-    # A rejected record of n lines starting at data line k holds rows k .. k+n-1; parsed
-    # records after it are shifted by the lines of all rejects before them.
-    store.execute(
-        con,
-        "create or replace temp table landing_reject_records as"
-        " with first_error as ("
-        "   select line - 1 as first_row,"
-        "     string_split(replace(trim(any_value(csv_line), chr(13) || chr(10)),"
-        "       chr(13) || chr(10), chr(10)), chr(10)) as lines"
-        "   from landing_rejects group by line"
-        " )"
-        " select first_row, lines, len(lines) as span,"
-        "   sum(len(lines)) over (order by first_row rows unbounded preceding) as shift"
-        " from first_error",
-    )
-    store.execute(
-        con,
-        "create or replace temp table landing_reject_shifts as"
-        " select first_row - 1 - (shift - span) as good_before, shift from landing_reject_records",
-    )
-    store.execute(
-        con,
-        "create or replace temp table landing_rejects_lines as"
-        " select first_row + i - 1 as source_row, lines[i] as line"
-        " from (select *, unnest(range(1, span + 1)) as i from landing_reject_records)",
-    )
+    for table in ("landing_reject_records", "landing_reject_shifts", "landing_rejects_lines"):
+        store.build_table(con, table, temp=True)
 
 
 def _select_columns(
@@ -431,10 +471,6 @@ def _select_columns(
     return selected
 
 
-def _quoted(identifier: str) -> str:
-    return '"' + identifier.replace('"', '""') + '"'
-
-
 _RAW_JSON = "json_merge_patch(to_json(s), '{\"source_row\": null}')::varchar"
 """The landing record as JSON of its own columns, for quarantine."""
 
@@ -448,9 +484,9 @@ def _load(
     config: Config,
 ) -> tuple[FileResult, list[str]]:
     columns = ", ".join(
-        f"cast(t.{_quoted(src)} as varchar) as {_quoted(canon)}"
+        f"cast(t.{store.quote_identifier(src)} as varchar) as {store.quote_identifier(canon)}"
         if src
-        else f"cast(null as varchar) as {canon}"
+        else f"cast(null as varchar) as {store.quote_identifier(canon)}"
         for canon, src in selected.items()
     )
     store.execute(
@@ -470,11 +506,18 @@ def _load(
 
     moved_from = _move_conflicting_loaded_rows(con, folder) if folder.key else []
 
-    target_columns = [r[1] for r in store.execute(con, f"pragma table_info('{folder.table}')")]
-    value_columns = ", ".join(c for c in target_columns if c != "source_file")
+    target_columns = [
+        r[0]
+        for r in store.execute(
+            con,
+            "select name from pragma_table_info($t) order by cid",
+            {"t": folder.table},
+        )
+    ]
+    value_columns = ", ".join(store.quote_identifier(c) for c in target_columns if c != "source_file")
     store.execute(
         con,
-        f"insert into {folder.table} ({value_columns}, source_file)"
+        f"insert into {store.quote_identifier(folder.table)} ({value_columns}, source_file)"
         f" select {value_columns}, $f from checked where reason is null order by source_row",
         {"f": name},
     )
@@ -490,11 +533,7 @@ def _load(
         {"f": name},
     )
     _quarantine_rejects(con, name)
-    read, loaded, dup = store.execute(
-        con,
-        "select count(*), count(*) filter (reason is null), count(*) filter (reason = 'exact_duplicate')"
-        " from checked",
-    )[0]
+    read, loaded, dup = store.query(con, "file_counts").row(0)
     read += rejects
     quarantined = read - loaded - dup
     status = "loaded" if quarantined == 0 else "loaded_with_quarantine"
@@ -503,10 +542,10 @@ def _load(
 
 def _move_conflicting_loaded_rows(con: duckdb.DuckDBPyConnection, folder: Folder) -> list[str]:
     """Rows loaded from other files that conflict with this file's rows go to quarantine too."""
-    key = ", ".join(folder.key)
+    key = ", ".join(store.quote_identifier(k) for k in folder.key)
     store.execute(
         con,
-        f"create or replace temp table moved as select t.* from {folder.table} t"
+        f"create or replace temp table moved as select t.* from {store.quote_identifier(folder.table)} t"
         f" semi join (select {key} from checked where loaded_conflict) c using ({key})",
     )
     if not store.execute(con, "select count(*) from moved")[0][0]:
@@ -520,18 +559,19 @@ def _move_conflicting_loaded_rows(con: duckdb.DuckDBPyConnection, folder: Folder
     )
     store.execute(
         con,
-        f"delete from {folder.table} t using moved m where "
-        + " and ".join(f"t.{k} = m.{k}" for k in folder.key),
+        f"delete from {store.quote_identifier(folder.table)} t using moved m where "
+        + " and ".join(f"t.{store.quote_identifier(k)} = m.{store.quote_identifier(k)}" for k in folder.key),
     )
     return [row[0] for row in store.execute(con, "select distinct source_file from moved")]
 
 
 def _refresh_log(con: duckdb.DuckDBPyConnection, folder: Folder, files: list[str]) -> None:
     """Recount loaded and quarantined rows (by reason, as JSON) of ``files`` from the tables."""
+    table = store.quote_identifier(folder.table)
     store.execute(
         con,
         f"update ingest_log l set"
-        f"  rows_loaded = (select count(*) from {folder.table} t where t.source_file = l.source_file),"
+        f"  rows_loaded = (select count(*) from {table} t where t.source_file = l.source_file),"
         f"  rows_quarantined = (select count(*) from quarantine q where q.source_file = l.source_file),"
         f"  quarantined_by_reason = coalesce((select json_group_object(reason, n)::varchar from"
         f"    (select reason, count(*) as n from quarantine q where q.source_file = l.source_file"
@@ -548,12 +588,7 @@ def _refresh_log(con: duckdb.DuckDBPyConnection, folder: Folder, files: list[str
 
 
 def _quarantine_rejects(con: duckdb.DuckDBPyConnection, name: str) -> None:
-    store.execute(
-        con,
-        "insert into quarantine (source_file, row_number, reason, raw)"
-        " select $f, source_row, 'malformed_row', line from landing_rejects_lines",
-        {"f": name},
-    )
+    store.run_sql(con, "quarantine_rejects", {"f": name})
 
 
 def _refuse_all_rows(
@@ -589,12 +624,7 @@ def _refuse_unreadable(
     frame = frame.filter(pl.col("line").str.strip_chars() != "")
     con.register("unreadable_lines", frame.to_arrow())
     try:
-        store.execute(
-            con,
-            "insert into quarantine (source_file, row_number, reason, raw)"
-            " select $f, source_row, 'unreadable_file', line from unreadable_lines",
-            {"f": name},
-        )
+        store.run_sql(con, "quarantine_unreadable", {"f": name})
     finally:
         con.unregister("unreadable_lines")
     return FileResult(name, folder.name, "refused", frame.height, 0, frame.height, 0, message)

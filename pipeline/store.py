@@ -7,6 +7,7 @@ loaded by name; values always go in as bound parameters.
 from __future__ import annotations
 
 import datetime as dt
+import re
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -65,11 +66,27 @@ def run_sql(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | 
         execute(con, statement, params_for(statement, params or {}))
 
 
-def build_table(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None) -> int:
-    """Replace table ``name`` with the result of ``sql/<name>.sql``; return its row count."""
+def build_table(
+    con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None, temp: bool = False
+) -> int:
+    """Replace table ``name`` (temporary if ``temp``) by ``sql/<name>.sql``; return its row count."""
     query = sql_text(name)
-    execute(con, f"create or replace table {name} as {query}", params_for(query, params or {}))
-    return con.execute(f"select count(*) from {name}").fetchall()[0][0]
+    kind = "temp table" if temp else "table"
+    execute(
+        con, f"create or replace {kind} {quote_identifier(name)} as {query}", params_for(query, params or {})
+    )
+    return con.execute(f"select count(*) from {quote_identifier(name)}").fetchall()[0][0]
+
+
+def build_view(
+    con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None, temp: bool = False
+) -> None:
+    """Replace view ``name`` (temporary if ``temp``) by ``sql/<name>.sql``: read where used, never copied."""
+    query = sql_text(name)
+    kind = "temp view" if temp else "view"
+    execute(
+        con, f"create or replace {kind} {quote_identifier(name)} as {query}", params_for(query, params or {})
+    )
 
 
 def query(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any] | None = None) -> pl.DataFrame:
@@ -96,9 +113,22 @@ def _has_code(statement: str) -> bool:
     return any(line.strip() and not line.strip().startswith("--") for line in statement.splitlines())
 
 
+_PARAMETER = re.compile(r"\$(\w+)")
+
+
 def params_for(statement: str, params: dict[str, Any]) -> dict[str, Any]:
+    """The entries of ``params`` whose ``$name`` the statement uses (``$f`` is not ``$folder``)."""
     # DuckDB refuses named parameters a statement does not use.
-    return {k: v for k, v in params.items() if f"${k}" in statement}
+    used = set(_PARAMETER.findall(statement))
+    return {k: v for k, v in params.items() if k in used}
+
+
+def quote_identifier(name: str) -> str:
+    """``name`` as a double-quoted SQL identifier (embedded quotes doubled), safe to splice into SQL.
+
+    The one way a name that is not a value (a column of a landing file, a table) enters SQL text.
+    """
+    return '"' + name.replace('"', '""') + '"'
 
 
 def write_ledger(ledger: Path, table: str, frame: pl.DataFrame, run_id: str, run_date: dt.date) -> Path:

@@ -37,11 +37,26 @@ PREMISES = """
 
 def _ingest(tmp_path, files):
     config = lake_config(
-        write_landing(tmp_path, {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES, **files})
+        write_landing(
+            tmp_path,
+            {
+                "tariffs/t.csv": TARIFF,
+                "premises/p.csv": PREMISES,
+                **_meter_unless(files),
+                **files,
+            },
+        )
     )
     results = ingest.results_frame(ingest.ingest(config))
     con = duckdb.connect(str(config.warehouse_path), read_only=True)
     return config, results, con
+
+
+def _meter_unless(files):
+    # Ingest refuses a lake without meter files; tests of other folders get one good reading.
+    return (
+        {} if any(name.startswith("meter/") for name in files) else {"meter/m.csv": METER_HEAD + GOOD_METER}
+    )
 
 
 def _reasons(con, source_file):
@@ -258,6 +273,17 @@ REASON_CASES = [
         "rate_plan_id,months,day_type,start_hour,end_hour,price_per_kwh\nX,1-12,weekday,0,24,25\n",
         "price_out_of_range",
     ),
+    (
+        "tariffs/u.csv",
+        "rate_plan_id,months,day_type,start_hour,end_hour,price_per_kwh\nX,1-12,weekday,0,24,0.1\n"
+        "X,7-7,weekday,8,9,0.3\n",
+        "tariff_overlap",
+    ),
+    (
+        "tariffs/u.csv",
+        "rate_plan_id,months,day_type,start_hour,end_hour,price_per_kwh\nX,1-12,weekday,0,23,0.1\n",
+        "tariff_gap",
+    ),
 ]
 
 
@@ -301,6 +327,45 @@ def test_malformed_rows_keep_their_row_numbers_around_good_ones(tmp_path):
     assert _reasons(con, "landing/meter/m.csv") == {2: "malformed_row", 4: "kwh_out_of_range"}
     raw = con.execute("select raw from quarantine where row_number = 2").fetchall()[0][0]
     assert raw.endswith("surplus")
+    _check_accounting(con)
+
+
+@pytest.mark.parametrize("gzipped", [False, True], ids=["csv", "csv.gz"])
+def test_a_stray_quote_quarantines_its_own_line_only_and_the_rows_after_it_load(tmp_path, gzipped):
+    """An unclosed quote is one malformed_row with its text and line number; the later rows still load."""
+    thermostat = (
+        "premise_id,changed_at,mode,cool_setpoint_c,heat_setpoint_c,occupied\n"
+        "P1,2026-06-01T12:00:00Z,cool,24.0,19.0,0\n"
+        'P1,2026-06-01T13:00:00Z,cool,"24.0,19.0,0,23.0\n'
+        "P1,2026-06-01T14:00:00Z,cool,25.0,19.0,0\n"
+        'P1,2026-06-01T15:00:00Z,cool,"25.0",19.0,0,surplus\n'
+        'P1,2026-06-01T16:00:00Z,cool,"26.0",19.0,1\n'
+        "P1,2026-06-01T17:00:00Z,cool,45,19.0,1\n"
+    )
+    name = "thermostat/t.csv.gz" if gzipped else "thermostat/t.csv"
+    path = tmp_path / "landing" / name
+    path.parent.mkdir(parents=True)
+    path.write_bytes(gzip.compress(thermostat.encode()) if gzipped else thermostat.encode())
+    _, results, con = _ingest(tmp_path, {})
+    assert _reasons(con, f"landing/{name}") == {
+        2: "malformed_row",
+        4: "malformed_row",
+        6: "setpoint_out_of_range",
+    }
+    raw = con.execute("select raw from quarantine where row_number = 2").fetchall()[0][0]
+    assert raw == 'P1,2026-06-01T13:00:00Z,cool,"24.0,19.0,0,23.0'
+    assert con.execute("select source_row, cool_setpoint_c from thermostat_event order by 1").fetchall() == [
+        (1, 24.0),
+        (3, 25.0),
+        (5, 26.0),
+    ]
+    row = results.filter(pl.col("folder") == "thermostat").row(0, named=True)
+    assert (row["rows_read"], row["rows_loaded"], row["rows_quarantined"], row["rows_duplicate"]) == (
+        6,
+        3,
+        3,
+        0,
+    )
     _check_accounting(con)
 
 
@@ -681,3 +746,61 @@ def test_hourly_reads_in_a_half_hour_offset_zone_load_and_keep_their_kwh(tmp_pat
     assert [h[2] for h in hours] == [30] + [60] * 23 + [30]
     assert hours[1][1] == pytest.approx((kwh[0] + kwh[1]) / 2)
     assert coverage == [(2,)]
+
+
+# --- the landing folder itself ------------------------------------------------------------
+
+
+def test_an_unknown_folder_is_refused_with_the_nearest_known_name_and_exits_1(tmp_path, capsys):
+    """landing/meters next to landing/meter is reported as refused, suggesting meter/, and ingest exits 1."""
+    root = write_landing(
+        tmp_path,
+        {
+            "tariffs/t.csv": TARIFF,
+            "premises/p.csv": PREMISES,
+            "meter/m.csv": METER_HEAD + GOOD_METER,
+            "meters/late.csv": METER_HEAD + GOOD_METER,
+        },
+    )
+    results = ingest.results_frame(ingest.ingest(lake_config(root)))
+    refused = results.filter(pl.col("status") == "refused").row(0, named=True)
+    assert refused["source_file"] == "landing/meters"
+    assert refused["message"] == "landing/meters: unknown folder, not read; did you mean meter/?"
+    code = cli.main(["ingest", "--lake", str(root), "--out", str(tmp_path / "out")])
+    assert code == cli.EXIT_REFUSED
+    assert (
+        "refused: landing/meters: unknown folder, not read; did you mean meter/?" in capsys.readouterr().out
+    )
+
+
+def test_a_lake_without_meter_files_is_one_line_and_exit_2(tmp_path, capsys):
+    """Meter files only in landing/meters: exit 2 and one line naming landing/meter and the fix."""
+    root = write_landing(
+        tmp_path,
+        {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES, "meters/m.csv": METER_HEAD + GOOD_METER},
+    )
+    with pytest.raises(ingest.NoMeterFiles):
+        ingest.ingest(lake_config(root))
+    code = cli.main(["ingest", "--lake", str(root), "--out", str(tmp_path / "out")])
+    err = capsys.readouterr().err
+    assert code == cli.EXIT_USAGE
+    assert err.count("\n") == 1 and "Traceback" not in err
+    assert str(root / "landing" / "meter") in err and "landing/meters looks like it: rename it meter/" in err
+
+
+def test_a_lake_pruned_of_meter_files_after_loading_them_still_ingests(tmp_path):
+    """Meter files already loaded by an earlier run count: a lake pruned of them is not an error."""
+    config, _, con = _ingest(tmp_path, {})
+    con.close()
+    (tmp_path / "landing/meter/m.csv").unlink()
+    results = ingest.results_frame(ingest.ingest(config))
+    assert results.filter(pl.col("folder") == "meter")["status"].to_list() == ["missing"]
+
+
+def test_a_missing_lake_folder_is_one_line_and_exit_2(tmp_path, capsys):
+    """--lake naming a folder that does not exist gives exit 2 and one line naming it."""
+    missing = tmp_path / "no-such-lake"
+    code = cli.main(["ingest", "--lake", str(missing), "--out", str(tmp_path / "out")])
+    err = capsys.readouterr().err
+    assert code == cli.EXIT_USAGE
+    assert err == f"thermal-ledger: lake folder {missing} does not exist: check --lake\n"
