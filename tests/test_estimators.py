@@ -33,6 +33,7 @@ from pipeline.estimators import (
     weighted_is,
     weighted_per_decision_is,
 )
+from pipeline.estimators.bootstrap import _paired_values
 
 OFF_POLICY = (ordinary_is, weighted_is, per_decision_is, weighted_per_decision_is, doubly_robust)
 
@@ -249,9 +250,9 @@ def test_bootstrap_replicates_equal_estimators_on_resampled_frames():
     multiplicity = np.random.default_rng(1).poisson(1.0, size=(4, 30)).astype(float)
     episode_rows = steps.with_row_index("row").group_by("episode_id", maintain_order=True).agg("row")["row"]
     for estimator in (ordinary_is, weighted_is, weighted_per_decision_is, doubly_robust):
-        s, terms = est._TERMS[estimator.__name__](steps, 1.0)
-        base = est._TERMS["on_policy_value"](steps, 1.0)[1]
-        values = est._paired_values(s, terms, base, multiplicity)
+        s, terms = est.REGISTRY[estimator.__name__].terms(steps, 1.0)
+        base = est.REGISTRY["on_policy_value"].terms(steps, 1.0)[1]
+        values = _paired_values(s, terms, base, multiplicity)
         for b, counts in enumerate(multiplicity):
             parts = []
             for i, k in enumerate(counts.astype(int)):
