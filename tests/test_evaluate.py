@@ -318,3 +318,11 @@ def test_sample_lake_ledger_tables_have_their_grain_and_consistent_annual_figure
     savings = pl.read_parquet(config.ledger_path / "savings" / "*" / "*.parquet", hive_partitioning=False)
     _assert_savings_rules(savings, config)
     assert savings.filter((pl.col("scope") == "premise") & (pl.col("status") == "ok")).height >= 30
+
+
+def test_an_estimator_outside_the_registry_is_refused_by_name():
+    """evaluate_policy accepts only registered off-policy estimators and names the valid ones."""
+    steps = _logged_steps(Config())
+    b = np.full(steps.height, 0.2)
+    with pytest.raises(estimators.EstimatorInputError, match="not an off-policy estimator; use one of"):
+        evaluate_policy(steps, b, b, DAYS, Config(estimators=("diagnostics",)))
