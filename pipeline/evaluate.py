@@ -29,7 +29,7 @@ import polars as pl
 from pipeline import estimators
 from pipeline.behavior import BehaviorPolicy, fit_behavior
 from pipeline.config import Config
-from pipeline.estimators.registry import off_policy
+from pipeline.estimators.registry import off_policy_estimator
 from pipeline.policies import action_index
 from pipeline.qmodel import FittedQ
 
@@ -135,7 +135,7 @@ def evaluate_policy(
         "cohort",
         (-(pl.col("kwh") + pl.col("recovery_kwh"))).alias("neg_kwh"),
     ).with_columns(pl.Series("pi", pi), pl.Series("b", b))
-    chosen = [off_policy(name) for name in config.estimators]
+    chosen = [off_policy_estimator(name) for name in config.estimators]
     names = [e.name for e in chosen if not e.needs_q_model or table is not None]
     usd_base, kwh_base = base, base.with_columns(pl.col("neg_kwh").alias("reward"))
     if any(e.needs_q_model and e.name in names for e in chosen):

@@ -64,7 +64,7 @@ OFF_POLICY_NAMES: tuple[str, ...] = tuple(name for name, e in REGISTRY.items() i
 """Names valid in the ``estimators`` and ``recommended_estimator`` settings."""
 
 
-def off_policy(name: str) -> Estimator:
+def off_policy_estimator(name: str) -> Estimator:
     """The registered off-policy estimator called ``name``; EstimatorInputError naming the choices if none."""
     entry = REGISTRY.get(name)
     if entry is None or not entry.off_policy:
