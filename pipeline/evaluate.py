@@ -12,7 +12,10 @@ residents never took) says so instead of giving a number.
 Per-premise savings are also shrunk toward their cohort's (empirical Bayes: the
 weight on the premise's own estimate is tau^2 / (tau^2 + se^2), with tau^2 the
 between-premise variance left after the sampling variance), and the shrinkage
-is reported.
+is reported beside the premise's own figure, in columns of its own.
+
+Every annual figure is its row's per-episode figure times the row's
+``episodes_per_year``, so the two can never disagree in sign.
 """
 
 from __future__ import annotations
@@ -26,6 +29,7 @@ import polars as pl
 from pipeline import estimators
 from pipeline.behavior import BehaviorPolicy, fit_behavior
 from pipeline.config import Config
+from pipeline.estimators.registry import off_policy_estimator
 from pipeline.policies import action_index
 from pipeline.qmodel import FittedQ
 
@@ -131,9 +135,10 @@ def evaluate_policy(
         "cohort",
         (-(pl.col("kwh") + pl.col("recovery_kwh"))).alias("neg_kwh"),
     ).with_columns(pl.Series("pi", pi), pl.Series("b", b))
-    names = [e for e in config.estimators if e != "doubly_robust" or table is not None]
+    chosen = [off_policy_estimator(name) for name in config.estimators]
+    names = [e.name for e in chosen if not e.needs_q_model or table is not None]
     usd_base, kwh_base = base, base.with_columns(pl.col("neg_kwh").alias("reward"))
-    if "doubly_robust" in names:
+    if any(e.needs_q_model and e.name in names for e in chosen):
         usd_base = pl.concat([base, _model_columns(steps, table, "reward", config)], how="horizontal")
         neg_kwh = steps.with_columns((-(pl.col("kwh") + pl.col("recovery_kwh"))).alias("neg_kwh"))
         kwh_base = pl.concat([kwh_base, _model_columns(neg_kwh, table, "neg_kwh", config)], how="horizontal")
@@ -156,7 +161,7 @@ def evaluate_policy(
         scope_days = _scoped(days, column).group_by("group").agg(pl.col("days_observed").sum())
         diag = estimators.diagnostics(usd_frame)
         for name in names:
-            fn = getattr(estimators, name)
+            fn = estimators.REGISTRY[name].function
             point = fn(usd_frame)
             if refit is not None and name == "weighted_is":
                 labels, replicates = estimators.refit_weighted_is_replicates(usd_frame, *refit)
@@ -167,7 +172,7 @@ def evaluate_policy(
                 point_savings = np.array([by_label[g] for g in labels])
             else:
                 labels, point_savings, replicates = estimators.bootstrap_replicates(
-                    usd_frame, fn, savings=True, n_replicates=config.bootstrap_replicates, seed=config.seed
+                    usd_frame, name, savings=True, n_replicates=config.bootstrap_replicates, seed=config.seed
                 )
             interval = _interval_and_bootstrap_bound(labels, point_savings, replicates, config)
             joined = (
@@ -207,8 +212,28 @@ def _interval_and_bootstrap_bound(
     )
 
 
+# Each per-episode figure and the annual figure made from it (times episodes_per_year).
+_ANNUAL = {
+    "savings_usd_per_episode": "savings_usd_annual",
+    "savings_kwh_per_episode": "savings_kwh_annual",
+    "shrunk_savings_usd_per_episode": "shrunk_savings_usd_annual",
+    "shrunk_savings_kwh_per_episode": "shrunk_savings_kwh_annual",
+}
+# A premise's own figure and its cohort-shrunk counterpart.
+_SHRUNK = {
+    "savings_usd_per_episode": "shrunk_savings_usd_per_episode",
+    "savings_kwh_per_episode": "shrunk_savings_kwh_per_episode",
+}
+
+
 def _finish_savings(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config) -> pl.DataFrame:
-    """Savings, status, recommendation, shrinkage toward the cohort and annual figures."""
+    """Savings, status, recommendation, shrinkage toward the cohort and annual figures.
+
+    ``episodes_per_year`` is the scope's episodes per observed premise-day times
+    ``cooling_days_per_year``, and every annual figure is the per-episode figure
+    beside it times that. A row with insufficient evidence hides its own figures,
+    per episode and annual alike; a premise keeps its cohort-shrunk ones.
+    """
     supported = (
         (pl.col("ess") >= config.min_ess)
         & (pl.col("n_unsupported_steps") == 0)
@@ -223,7 +248,6 @@ def _finish_savings(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Co
         (pl.col("estimator") == config.recommended_estimator).alias("recommended"),
     )
     rows = _shrink_to_cohort(rows, premise_cohort, config)
-    per_year = pl.col("n_episodes") / pl.col("days_observed") * config.cooling_days_per_year
     thin = pl.col("status") == STATUS_THIN
     hidden = [
         "savings_usd_per_episode",
@@ -232,21 +256,23 @@ def _finish_savings(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Co
         "lower_bound_bootstrap_usd",
         "savings_kwh_per_episode",
     ]
+    # Outside premise scope the shrunk figure is the row's own figure, so it is hidden with it.
+    hidden_shrunk = thin & (pl.col("scope") != "premise")
+    per_year = pl.col("n_episodes") / pl.col("days_observed") * config.cooling_days_per_year
     return rows.with_columns(
-        (pl.col("savings_shrunk_usd_per_episode") * per_year).alias("savings_usd_annual"),
-        (pl.col("savings_kwh_per_episode") * per_year).alias("savings_kwh_annual"),
-    ).with_columns(
         *(pl.when(thin).then(None).otherwise(pl.col(c)).alias(c) for c in hidden),
-        pl.when(thin & (pl.col("scope") != "premise"))
-        .then(None)
-        .otherwise(pl.col("savings_usd_annual"))
-        .alias("savings_usd_annual"),
-        pl.when(thin).then(None).otherwise(pl.col("savings_kwh_annual")).alias("savings_kwh_annual"),
-    )
+        *(pl.when(hidden_shrunk).then(None).otherwise(pl.col(c)).alias(c) for c in _SHRUNK.values()),
+        per_year.alias("episodes_per_year"),
+    ).with_columns((pl.col(c) * pl.col("episodes_per_year")).alias(annual) for c, annual in _ANNUAL.items())
 
 
 def _shrink_to_cohort(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config) -> pl.DataFrame:
-    """Empirical-Bayes shrinkage of each premise's savings toward its cohort's (same estimator)."""
+    """Empirical-Bayes shrinkage of each premise's savings toward its cohort's (same estimator).
+
+    The weight comes from the USD estimate and its interval; the kWh estimate is mixed
+    with the cohort's in the same proportion, so both shrunk figures lean on the cohort
+    equally (``shrinkage``).
+    """
     z = NormalDist().inv_cdf(0.5 + config.confidence / 2)
     keys = ["cohort", "estimator"]
     savings = pl.col("savings_usd_per_episode")
@@ -264,7 +290,7 @@ def _shrink_to_cohort(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: 
         .agg((savings.var() - pl.col("se2").mean()).clip(lower_bound=0.0).alias("tau2"))
     )
     cohort_savings = rows.filter(pl.col("scope") == "cohort").select(
-        pl.col("key").alias("cohort"), "estimator", savings.alias("cohort_savings")
+        pl.col("key").alias("cohort"), "estimator", *(pl.col(c).alias(f"cohort_{c}") for c in _SHRUNK)
     )
     weight = (
         pl.when(pl.col("usable"))
@@ -273,21 +299,25 @@ def _shrink_to_cohort(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: 
         .fill_null(0.0)
         .fill_nan(0.0)
     )
+    own = pl.col("own_weight")
     shrunk = (
         premises.join(spread, on=keys, how="left")
         .join(cohort_savings, on=keys, how="left")
         .with_columns(weight.alias("own_weight"))
         .with_columns(
-            pl.when(pl.col("own_weight") > 0)
-            .then(pl.col("own_weight") * savings + (1 - pl.col("own_weight")) * pl.col("cohort_savings"))
-            .otherwise(pl.col("cohort_savings"))
-            .alias("savings_shrunk_usd_per_episode"),
-            (1 - pl.col("own_weight")).alias("shrinkage"),
+            *(
+                pl.when(own > 0)
+                .then(own * pl.col(c) + (1 - own) * pl.col(f"cohort_{c}"))
+                .otherwise(pl.col(f"cohort_{c}"))
+                .alias(target)
+                for c, target in _SHRUNK.items()
+            ),
+            (1 - own).alias("shrinkage"),
         )
-        .drop("se2", "usable", "tau2", "cohort_savings", "own_weight", "cohort")
+        .drop("se2", "usable", "tau2", "own_weight", "cohort", *(f"cohort_{c}" for c in _SHRUNK))
     )
     others = rows.filter(pl.col("scope") != "premise").with_columns(
-        savings.alias("savings_shrunk_usd_per_episode"), pl.lit(0.0).alias("shrinkage")
+        *(pl.col(c).alias(target) for c, target in _SHRUNK.items()), pl.lit(0.0).alias("shrinkage")
     )
     return pl.concat([shrunk, others], how="diagonal_relaxed")
 
@@ -308,13 +338,19 @@ COLUMNS = [
     "ci_high",
     "lower_bound_usd",
     "lower_bound_bootstrap_usd",
-    "savings_shrunk_usd_per_episode",
+    "shrunk_savings_usd_per_episode",
     "shrinkage",
     "ess",
     "max_weight_share",
     "support_ok",
+    "savings_kwh_per_episode",
+    "shrunk_savings_kwh_per_episode",
+    "days_observed",
+    "episodes_per_year",
     "savings_usd_annual",
     "savings_kwh_annual",
+    "shrunk_savings_usd_annual",
+    "shrunk_savings_kwh_annual",
 ]
 
 

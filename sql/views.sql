@@ -35,8 +35,8 @@ create or replace view latest_run as
     select run_id from run order by finished_at desc limit 1;
 create or replace view savings_latest as
     select s.* from savings s semi join latest_run using (run_id);
--- The recommended estimate per premise; 'insufficient_evidence' rows carry no savings figure
--- (the cohort-shrunk figure stays, with its shrinkage).
+-- The recommended estimate per premise; 'insufficient_evidence' rows carry no savings figure of
+-- their own, per episode or annual (the cohort-shrunk figures stay, with their shrinkage).
 create or replace view savings_by_premise as
     select
         key as premise_id,
@@ -50,12 +50,15 @@ create or replace view savings_by_premise as
         round(ci_high, 3) as ci_high,
         round(lower_bound_usd, 3) as lower_bound_usd,
         round(lower_bound_bootstrap_usd, 3) as lower_bound_bootstrap_usd,
-        round(savings_shrunk_usd_per_episode, 3) as savings_shrunk_usd_per_episode,
+        round(shrunk_savings_usd_per_episode, 3) as shrunk_savings_usd_per_episode,
         round(shrinkage, 2) as shrinkage,
         round(ess, 1) as ess,
         support_ok,
+        round(episodes_per_year, 1) as episodes_per_year,
         round(savings_usd_annual, 2) as savings_usd_annual,
-        round(savings_kwh_annual, 1) as savings_kwh_annual
+        round(savings_kwh_annual, 1) as savings_kwh_annual,
+        round(shrunk_savings_usd_annual, 2) as shrunk_savings_usd_annual,
+        round(shrunk_savings_kwh_annual, 1) as shrunk_savings_kwh_annual
     from savings_latest
     where scope = 'premise' and recommended
     order by premise_id, policy_name, mode

@@ -33,6 +33,7 @@ from pipeline.estimators import (
     weighted_is,
     weighted_per_decision_is,
 )
+from pipeline.estimators.bootstrap import _paired_values
 
 OFF_POLICY = (ordinary_is, weighted_is, per_decision_is, weighted_per_decision_is, doubly_robust)
 
@@ -249,9 +250,9 @@ def test_bootstrap_replicates_equal_estimators_on_resampled_frames():
     multiplicity = np.random.default_rng(1).poisson(1.0, size=(4, 30)).astype(float)
     episode_rows = steps.with_row_index("row").group_by("episode_id", maintain_order=True).agg("row")["row"]
     for estimator in (ordinary_is, weighted_is, weighted_per_decision_is, doubly_robust):
-        s, terms = est._TERMS[estimator.__name__](steps, 1.0)
-        base = est._TERMS["on_policy_value"](steps, 1.0)[1]
-        values = est._paired_values(s, terms, base, multiplicity)
+        s, terms = est.REGISTRY[estimator.__name__].terms(steps, 1.0)
+        base = est.REGISTRY["on_policy_value"].terms(steps, 1.0)[1]
+        values = _paired_values(s, terms, base, multiplicity)
         for b, counts in enumerate(multiplicity):
             parts = []
             for i, k in enumerate(counts.astype(int)):
@@ -844,3 +845,56 @@ def test_refit_replicates_equal_the_plain_bootstrap_when_the_behaviour_model_doe
                 sel
             ].sum()
             np.testing.assert_allclose(replicates[r, g], expected)
+
+
+# ---------------------------------------------------------------- the registry
+
+
+def test_registry_names_every_published_estimator_with_its_public_function():
+    """REGISTRY holds the names published in DESIGN.md ("Estimator interface") and each maps to the
+    function importable from pipeline.estimators under that name."""
+    published = {
+        "ordinary_is",
+        "weighted_is",
+        "per_decision_is",
+        "weighted_per_decision_is",
+        "doubly_robust",
+        "first_visit_mc",
+        "every_visit_mc",
+    }
+    assert set(est.REGISTRY) == published | {"on_policy_value"}
+    for name, entry in est.REGISTRY.items():
+        assert entry.name == name and entry.function is getattr(est, name)
+    assert est.OFF_POLICY_NAMES == (
+        "ordinary_is",
+        "weighted_is",
+        "per_decision_is",
+        "weighted_per_decision_is",
+        "doubly_robust",
+    )
+    assert [n for n, e in est.REGISTRY.items() if e.needs_q_model] == ["doubly_robust"]
+
+
+def test_default_settings_name_registered_off_policy_estimators():
+    """The default estimators and recommended_estimator settings are in OFF_POLICY_NAMES."""
+    from pipeline.config import Config
+
+    config = Config()
+    assert set(config.estimators) <= set(est.OFF_POLICY_NAMES)
+    assert config.recommended_estimator in est.OFF_POLICY_NAMES
+
+
+@pytest.mark.parametrize("name", sorted(est.REGISTRY))
+def test_bootstrap_takes_a_registered_estimator_by_name_or_function_alike(name):
+    """A bootstrappable entry gives the same replicates by name and by function; the others are refused."""
+    steps = random_steps(3, n_episodes=20).with_columns(q_hat=pl.lit(-0.5), v_hat=pl.lit(-0.4))
+    entry = est.REGISTRY[name]
+    if not entry.bootstrappable:
+        with pytest.raises(EstimatorInputError, match="cannot be bootstrapped"):
+            est.bootstrap_replicates(steps, name)
+        return
+    _, by_name, replicates_by_name = est.bootstrap_replicates(steps, name, n_replicates=5)
+    _, by_function, replicates_by_function = est.bootstrap_replicates(steps, entry.function, n_replicates=5)
+    assert_array_equal(by_name, by_function)
+    assert_array_equal(replicates_by_name, replicates_by_function)
+    assert_allclose(by_name, entry.function(steps)["estimate"].to_numpy())

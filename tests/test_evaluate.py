@@ -1,4 +1,4 @@
-"""Evaluation wiring: target probabilities, scopes and savings arithmetic."""
+"""Evaluation wiring: target probabilities, scopes, savings arithmetic and the ledger tables' grain."""
 
 from __future__ import annotations
 
@@ -7,8 +7,18 @@ import polars as pl
 import pytest
 
 from pipeline import estimators
+from pipeline.behavior import BehaviorPolicy
 from pipeline.config import Config
-from pipeline.evaluate import evaluate_policy, target_probabilities
+from pipeline.estimators import OFF_POLICY_NAMES
+from pipeline.evaluate import (
+    _finish_savings,
+    _shrink_to_cohort,
+    evaluate_candidates,
+    evaluate_policy,
+    horizon_report,
+    state_values,
+    target_probabilities,
+)
 from pipeline.policies import SetbackRule
 
 # Three tiny episodes; weights rho = prod pi / b are 4, 0.5 and 1, returns -3, -4 and -2.
@@ -70,13 +80,13 @@ def test_target_equal_to_behaviour_gives_zero_savings_at_every_scope():
 
 
 def test_premise_savings_shrink_toward_cohort_by_the_empirical_bayes_weight():
-    """Weight on a premise's own estimate is tau^2 / (tau^2 + se^2) (method of moments, e.g. Efron 2010)."""
+    """Weight on a premise's own estimate is tau^2 / (tau^2 + se^2) (method of moments, e.g. Efron 2010);
+    its kWh estimate is mixed with the cohort's in the same proportion."""
     from statistics import NormalDist
-
-    from pipeline.evaluate import _shrink_to_cohort
 
     z = NormalDist().inv_cdf(0.975)
     own = [1.0, -1.0, 3.0, -3.0]
+    own_kwh = [2.0, -2.0, 6.0, -6.0]
     se = 1.0
     rows = pl.DataFrame(
         {
@@ -84,6 +94,7 @@ def test_premise_savings_shrink_toward_cohort_by_the_empirical_bayes_weight():
             "key": ["A", "B", "C", "D", "c"],
             "estimator": "weighted_is",
             "savings_usd_per_episode": [*own, 0.5],
+            "savings_kwh_per_episode": [*own_kwh, 4.0],
             "ci_low": [s - z * se for s in own] + [0.0],
             "ci_high": [s + z * se for s in own] + [1.0],
         }
@@ -94,18 +105,83 @@ def test_premise_savings_shrink_toward_cohort_by_the_empirical_bayes_weight():
     weight = tau2 / (tau2 + se**2)
     np.testing.assert_allclose(out["shrinkage"].to_numpy(), 1 - weight)
     np.testing.assert_allclose(
-        out["savings_shrunk_usd_per_episode"].to_numpy(), [weight * s + (1 - weight) * 0.5 for s in own]
+        out["shrunk_savings_usd_per_episode"].to_numpy(), [weight * s + (1 - weight) * 0.5 for s in own]
+    )
+    np.testing.assert_allclose(
+        out["shrunk_savings_kwh_per_episode"].to_numpy(), [weight * k + (1 - weight) * 4.0 for k in own_kwh]
     )
 
 
-@pytest.mark.parametrize("n_types", [None, 2])
-def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_estimate(n_types):
-    """With the re-fitting bootstrap on (either model), weighted IS rows carry finite, ordered intervals."""
-    from pipeline.behavior import BehaviorPolicy
-    from pipeline.evaluate import evaluate_candidates
+def _estimated_rows() -> pl.DataFrame:
+    """Estimator output for four premises of cohort 'c', the cohort and the portfolio, before savings.
 
-    rng = np.random.default_rng(11)
-    config = Config(bootstrap_replicates=40, bootstrap_refit_behavior=True, estimators=("weighted_is",))
+    Premise savings are 1, -1, 3, -3 USD per episode with standard error 1, so
+    tau^2 = var - se^2 = 20/3 - 1 = 17/3 and each premise keeps 17/20 of its own
+    estimate; the cohort saves 8. Premise D (ess 5) and the portfolio (ess 4)
+    have too little evidence. Every row has 20 episodes per 40 observed days.
+    """
+    from statistics import NormalDist
+
+    z = NormalDist().inv_cdf(0.975)
+    own = [1.0, -1.0, 3.0, -3.0, 8.0, 8.0]
+    return pl.DataFrame(
+        {
+            "scope": ["premise"] * 4 + ["cohort", "portfolio"],
+            "key": ["A", "B", "C", "D", "c", "portfolio"],
+            "estimator": "weighted_is",
+            "value_behavior_usd": -10.0,
+            "value_policy_usd": [-10.0 + s for s in own],
+            "kwh_behavior": 5.0,
+            "kwh_policy": [5.0 - 2 * s for s in own],
+            "ci_low": [s - z for s in own],
+            "ci_high": [s + z for s in own],
+            "lower_bound_bootstrap_usd": [s - 2 for s in own],
+            "ess": [30.0, 30.0, 30.0, 5.0, 60.0, 4.0],
+            "max_weight_share": 0.1,
+            "n_unsupported_steps": 0,
+            "n_episodes": 20,
+            "days_observed": 40,
+        }
+    )
+
+
+def test_annual_figures_come_from_the_per_episode_figure_beside_them():
+    """Annual USD and kWh are the row's own per-episode figures times 20 / 40 x 122 = 61 episodes a year,
+    so a premise that loses money per episode cannot show an annual gain; shrunk figures have their own."""
+    premise_cohort = pl.DataFrame({"premise_id": ["A", "B", "C", "D"], "cohort": "c"})
+    out = _finish_savings(_estimated_rows(), premise_cohort, Config()).sort("key")
+    b = out.filter(pl.col("key") == "B").row(0, named=True)
+    # B loses 1 USD per episode; its cohort pulls the shrunk figure to 0.85 * -1 + 0.15 * 8 = 0.35.
+    shown = out.filter(pl.col("savings_usd_annual").is_not_null())
+    assert (shown["savings_usd_per_episode"].sign() == shown["savings_usd_annual"].sign()).all()
+    assert b["savings_usd_annual"] == pytest.approx(-61.0)
+    assert b["savings_kwh_annual"] == pytest.approx(-2.0 * 61)
+    assert b["episodes_per_year"] == pytest.approx(61.0)
+    assert b["shrunk_savings_usd_per_episode"] == pytest.approx(0.35)
+    assert b["shrunk_savings_usd_annual"] == pytest.approx(0.35 * 61)
+    assert b["shrunk_savings_kwh_annual"] == pytest.approx((0.85 * -2 + 0.15 * 16) * 61)
+
+
+def test_rows_with_insufficient_evidence_show_neither_annual_figure_of_their_own():
+    """A thin row hides its per-episode and both annual figures; a thin premise keeps both shrunk annual
+    figures, and a thin portfolio row, whose 'shrunk' figure would be its own, keeps none."""
+    premise_cohort = pl.DataFrame({"premise_id": ["A", "B", "C", "D"], "cohort": "c"})
+    out = _finish_savings(_estimated_rows(), premise_cohort, Config())
+    thin = out.filter(pl.col("status") == "insufficient_evidence").sort("key")
+    assert thin["key"].to_list() == ["D", "portfolio"]
+    own = ["savings_usd_per_episode", "savings_usd_annual", "savings_kwh_annual", "ci_low", "ci_high"]
+    assert thin.select(pl.col(own).is_null().all()).row(0) == (True,) * len(own)
+    d, portfolio = thin.row(0, named=True), thin.row(1, named=True)
+    # D: 0.85 * -3 + 0.15 * 8 = -1.35 USD and 0.85 * -6 + 0.15 * 16 = -2.7 kWh per episode.
+    assert d["shrunk_savings_usd_annual"] == pytest.approx(-1.35 * 61)
+    assert d["shrunk_savings_kwh_annual"] == pytest.approx(-2.7 * 61)
+    shrunk = ["shrunk_savings_usd_per_episode", "shrunk_savings_usd_annual", "shrunk_savings_kwh_annual"]
+    assert all(portfolio[c] is None for c in shrunk)
+
+
+def _logged_steps(config: Config, seed: int = 11) -> pl.DataFrame:
+    """Sixty three-step cooling episodes of premises A and B (cohort c) with random actions and costs."""
+    rng = np.random.default_rng(seed)
     n_episodes, horizon = 60, 3
     keys = config.state.encode(
         np.full(n_episodes * horizon, 9),
@@ -128,9 +204,125 @@ def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_
             "mode": "cool",
         }
     )
+    return steps
+
+
+DAYS = pl.DataFrame({"premise_id": ["A", "B"], "cohort": ["c", "c"], "days_observed": [30, 30]})
+
+
+@pytest.mark.parametrize("n_types", [None, 2])
+def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_estimate(n_types):
+    """With the re-fitting bootstrap on (either model), weighted IS rows carry finite, ordered intervals."""
+    config = Config(bootstrap_replicates=40, bootstrap_refit_behavior=True, estimators=("weighted_is",))
+    steps = _logged_steps(config)
     behavior = BehaviorPolicy(actions=config.actions, n_types=n_types, space=config.state).fit(steps)
-    days = pl.DataFrame({"premise_id": ["A", "B"], "cohort": ["c", "c"], "days_observed": [30, 30]})
-    savings = evaluate_candidates(steps, behavior, days, config).savings.filter(pl.col("status") == "ok")
+    savings = evaluate_candidates(steps, behavior, DAYS, config).savings.filter(pl.col("status") == "ok")
     assert savings.height > 0
     inside = (pl.col("ci_low") <= pl.col("ci_high")) & pl.col("ci_low").is_finite()
     assert savings.select(inside.all()).item()
+
+
+# ---------------------------------------------------------------- grain of the ledger tables
+
+SCOPES = {"premise", "cohort", "portfolio"}
+MODES = {"cool", "heat"}
+# Key columns and allowed codes of each ledger table evaluate writes (DESIGN.md, "Ledger contracts").
+GRAIN = {
+    "savings": (
+        ("policy_name", "mode", "scope", "key", "estimator"),
+        {
+            "scope": SCOPES,
+            "mode": MODES,
+            "status": {"ok", "insufficient_evidence"},
+            "estimator": set(OFF_POLICY_NAMES),
+        },
+    ),
+    "policy": (
+        ("policy_name", "mode", "scope", "key", "state_key", "action"),
+        {"scope": SCOPES, "mode": MODES},
+    ),
+    "diagnostics": (("policy_name", "mode", "scope", "key"), {"scope": SCOPES, "mode": MODES}),
+    "horizon": (("decision_points", "mode", "policy_name"), {"decision_points": {"fixed", "anchored"}}),
+    "state_value": (
+        ("mode", "scope", "key", "method", "state_key"),
+        {"scope": SCOPES, "mode": MODES, "method": {"first_visit", "every_visit"}},
+    ),
+}
+
+
+def _assert_grain(table: str, frame: pl.DataFrame) -> None:
+    keys, codes = GRAIN[table]
+    assert frame.height > 0, table
+    nulls = frame.select(pl.col(keys).null_count()).row(0, named=True)
+    assert not any(nulls.values()), (table, nulls)
+    assert not frame.select(keys).is_duplicated().any(), f"{table}: duplicate {keys}"
+    for column, allowed in codes.items():
+        found = set(frame[column].unique().to_list())
+        assert found <= allowed, (table, column, found - allowed)
+
+
+def _assert_savings_rules(savings: pl.DataFrame, config: Config) -> None:
+    """Annual figures agree with the per-episode ones, and one estimator is recommended per row key."""
+    for per_episode, annual in (
+        ("savings_usd_per_episode", "savings_usd_annual"),
+        ("savings_kwh_per_episode", "savings_kwh_annual"),
+        ("shrunk_savings_usd_per_episode", "shrunk_savings_usd_annual"),
+        ("shrunk_savings_kwh_per_episode", "shrunk_savings_kwh_annual"),
+    ):
+        both = savings.filter(pl.col(per_episode).is_not_null() | pl.col(annual).is_not_null())
+        assert both.select(pl.col(per_episode).is_null() | pl.col(annual).is_null()).to_series().sum() == 0
+        np.testing.assert_allclose(
+            both[annual].to_numpy(), both[per_episode].to_numpy() * both["episodes_per_year"].to_numpy()
+        )
+        assert (both[annual].sign() == both[per_episode].sign()).all(), annual
+    per_year = savings["n_episodes"] / savings["days_observed"] * config.cooling_days_per_year
+    np.testing.assert_allclose(savings["episodes_per_year"].to_numpy(), per_year.to_numpy())
+    thin = savings.filter(pl.col("status") == "insufficient_evidence")
+    assert thin.select(pl.col("savings_usd_annual", "savings_kwh_annual").is_null().all()).row(0) == (
+        True,
+        True,
+    )
+    recommended = savings.group_by("policy_name", "mode", "scope", "key").agg(pl.col("recommended").sum())
+    assert (recommended["recommended"] == 1).all()
+
+
+def test_every_ledger_table_of_an_inline_evaluation_has_its_grain():
+    """savings, policy, diagnostics, horizon and state_value: keys unique and not null, codes allowed."""
+    config = Config(bootstrap_replicates=20, estimators=("weighted_is", "doubly_robust"))
+    steps = _logged_steps(config)
+    behavior = BehaviorPolicy(actions=config.actions, n_types=None, space=config.state).fit(steps)
+    result = evaluate_candidates(steps, behavior, DAYS, config)
+    by_choice = {"fixed": steps, "anchored": steps}
+    tables = {
+        "savings": result.savings,
+        "policy": result.policy,
+        "diagnostics": result.diagnostics,
+        "horizon": horizon_report(by_choice, config, {"fixed": behavior, "anchored": behavior}),
+        "state_value": state_values(steps),
+    }
+    for table, frame in tables.items():
+        _assert_grain(table, frame)
+    _assert_savings_rules(result.savings, config)
+    assert result.savings.height == 3 * 4 * 2  # candidates x (2 premises, cohort, portfolio) x estimators
+    totals = result.policy.group_by("policy_name", "mode", "state_key").agg(pl.col("probability").sum())
+    np.testing.assert_allclose(totals["probability"].to_numpy(), 1.0)
+
+
+def test_sample_lake_ledger_tables_have_their_grain_and_consistent_annual_figures(sample_lake_run):
+    """On the sample lake's ledger, every evaluated table keeps its grain and every annual figure is its
+    per-episode figure times the row's episodes per year (same sign in every row)."""
+    config = sample_lake_run.config
+    for table in GRAIN:
+        frame = pl.read_parquet(config.ledger_path / table / "*" / "*.parquet", hive_partitioning=False)
+        _assert_grain(table, frame)
+    savings = pl.read_parquet(config.ledger_path / "savings" / "*" / "*.parquet", hive_partitioning=False)
+    _assert_savings_rules(savings, config)
+    assert savings.filter((pl.col("scope") == "premise") & (pl.col("status") == "ok")).height >= 30
+
+
+def test_an_estimator_outside_the_registry_is_refused_by_name():
+    """evaluate_policy accepts only registered off-policy estimators and names the valid ones."""
+    steps = _logged_steps(Config())
+    b = np.full(steps.height, 0.2)
+    with pytest.raises(estimators.EstimatorInputError, match="not an off-policy estimator; use one of"):
+        evaluate_policy(steps, b, b, DAYS, Config(estimators=("diagnostics",)))

@@ -13,20 +13,12 @@ from types import SimpleNamespace
 import polars as pl
 import pytest
 
-from pipeline import config as config_module
-from pipeline import stages
-
 SAMPLE_LAKE = Path(__file__).resolve().parent.parent / "sample_lake"
 
 
 @pytest.fixture(scope="module")
-def evaluated(tmp_path_factory):
-    out = tmp_path_factory.mktemp("truth_out")
-    # Only homes with presence sensing: their episodes are exactly the simulator's.
-    config = config_module.load(
-        overrides={"lake": str(SAMPLE_LAKE), "out": str(out), "presence_sources": ["occupancy_flag"]}
-    )
-    summary = stages.run_all(config)
+def evaluated(sample_lake_run):
+    config, summary = sample_lake_run.config, sample_lake_run.summary
     values = pl.read_parquet(SAMPLE_LAKE / "truth" / "policy_values.parquet").filter(
         pl.col("epsilon") == config.target_epsilon
     )

@@ -1,0 +1,336 @@
+"""Importance-sampling estimators of a target policy's value, and the on-policy value beside them.
+
+The importance-sampling estimators share one form. For group ``g``, with
+episode multiplicities ``u_i`` (1 for the point estimate, Poisson(1) draws for
+a bootstrap replicate),
+
+    estimate_g = sum_k (sum_{i in g} u_i A_ik) / (sum_{i in g} u_i C_ik)
+
+where the cells ``k`` are a single cell for the trajectory-wise and per-decision
+estimators and the decision index ``t`` for weighted per-decision IS. Writing
+each estimator as its ``A`` and ``C`` entries lets ``bootstrap_interval``
+resample any of them, and the behaviour value beside it, in one vectorised pass.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+import polars as pl
+
+from pipeline.estimators._steps import (
+    _STEP_COLUMNS,
+    EstimatorInputError,
+    _episode_sum,
+    _keyed_sums,
+    _prepare,
+    _previous_weights,
+    _returns,
+    _Steps,
+    _weight_summary,
+    _weighted_steps,
+)
+
+_MODEL_COLUMNS = ("q_hat", "v_hat")
+
+
+@dataclass(frozen=True)
+class _Terms:
+    """An estimator as a sum over cells of ratios of episode sums (see the module docstring)."""
+
+    episode: np.ndarray
+    """(m,) episode code of each entry."""
+    cell: np.ndarray
+    """(m,) cell of each entry, 0 .. n_cells - 1."""
+    numerator: np.ndarray
+    """(m,) entries of A."""
+    denominator: np.ndarray
+    """(m,) entries of C."""
+    n_cells: int
+    weights: np.ndarray
+    """(n_episodes,) trajectory weights reported as ``ess`` and ``max_weight_share``."""
+    carry: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+    """(episode, cell, value) denominator entries that also count in every later cell."""
+
+
+TermsBuilder = Callable[[pl.DataFrame, float], tuple[_Steps, _Terms]]
+"""Builds an estimator's numerator and denominator entries from steps and a discount."""
+
+
+# ---------------------------------------------------------------- estimator terms
+
+
+def _scalar_terms(numerator: np.ndarray, denominator: np.ndarray, weights: np.ndarray) -> _Terms:
+    """One entry per episode in a single cell: sum_i u_i a_i / sum_i u_i c_i."""
+    n = numerator.size
+    return _Terms(np.arange(n), np.zeros(n, dtype=np.int64), numerator, denominator, 1, weights)
+
+
+def _on_policy_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
+    s = _prepare(steps, _STEP_COLUMNS, gamma)
+    ones = np.ones(s.n_episodes)
+    return s, _scalar_terms(_returns(s), ones, ones)
+
+
+def _ordinary_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
+    s, w = _weighted_steps(steps, gamma)
+    rho = w[s.ends]
+    return s, _scalar_terms(rho * _returns(s), np.ones(s.n_episodes), rho)
+
+
+def _weighted_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
+    s, w = _weighted_steps(steps, gamma)
+    rho = w[s.ends]
+    return s, _scalar_terms(rho * _returns(s), rho, rho)
+
+
+def _per_decision_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
+    s, w = _weighted_steps(steps, gamma)
+    # Same expression as the doubly robust term with a zero model, so the two agree bit for bit.
+    per_episode = _episode_sum(s.discount * (w * s.reward), s)
+    return s, _scalar_terms(per_episode, np.ones(s.n_episodes), w[s.ends])
+
+
+def _weighted_per_decision_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
+    s, w = _weighted_steps(steps, gamma)
+    n_cells = int(s.lengths.max())
+    t = np.arange(w.size) - s.starts[s.episode]
+    # An ended episode keeps its final weight in later denominators (it sits in an absorbing
+    # state with reward 0); dropping it would estimate E[r_t | still running] instead.
+    ended = s.lengths < n_cells
+    carry = (np.flatnonzero(ended), s.lengths[ended], w[s.ends][ended])
+    terms = _Terms(s.episode, t, s.discount * (w * s.reward), w, n_cells, w[s.ends], carry)
+    return s, terms
+
+
+def _doubly_robust_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
+    s, w = _weighted_steps(steps, gamma, _MODEL_COLUMNS)
+    q_hat = steps["q_hat"].to_numpy().astype(np.float64)
+    v_hat = steps["v_hat"].to_numpy().astype(np.float64)
+    for name, values in (("q_hat", q_hat), ("v_hat", v_hat)):
+        if not np.isfinite(values).all():
+            raise EstimatorInputError(f"column {name!r} has non-finite values; refit the Q model")
+    step_terms = s.discount * (w * (s.reward - q_hat) + _previous_weights(w, s) * v_hat)
+    return s, _scalar_terms(_episode_sum(step_terms, s), np.ones(s.n_episodes), w[s.ends])
+
+
+def _entry_keys(terms: _Terms, s: _Steps) -> tuple[np.ndarray, np.ndarray]:
+    """(group, cell) key of each entry and of each carried entry."""
+    key = s.group[terms.episode] * terms.n_cells + terms.cell
+    carry_key = np.empty(0, dtype=np.int64)
+    if terms.carry is not None:
+        carry_key = s.group[terms.carry[0]] * terms.n_cells + terms.carry[1]
+    return key, carry_key
+
+
+def _in_key_order(terms: _Terms, s: _Steps) -> _Terms:
+    """The same terms with entries sorted by (group, cell), so sums are contiguous segments."""
+    key, carry_key = _entry_keys(terms, s)
+    order = np.argsort(key, kind="stable")
+    carry = terms.carry
+    if carry is not None:
+        carry_order = np.argsort(carry_key, kind="stable")
+        carry = tuple(part[carry_order] for part in carry)
+    return _Terms(
+        terms.episode[order],
+        terms.cell[order],
+        terms.numerator[order],
+        terms.denominator[order],
+        terms.n_cells,
+        terms.weights,
+        carry,
+    )
+
+
+def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> np.ndarray:
+    """Estimates for each row of episode ``multiplicity`` (B, n_episodes), shape (B, n_groups).
+
+    ``None`` means every episode once (the point estimate, B = 1). A group whose
+    denominator is zero in some cell, i.e. no episode with non-zero weight, gets NaN.
+    """
+    key, carry_key = _entry_keys(terms, s)
+    if (key[1:] < key[:-1]).any() or (carry_key[1:] < carry_key[:-1]).any():
+        terms = _in_key_order(terms, s)
+        key, carry_key = _entry_keys(terms, s)
+    u = np.ones((1, s.n_episodes)) if multiplicity is None else multiplicity
+    rows, n_cells, n_groups = u.shape[0], terms.n_cells, s.n_groups
+    n_keys = n_groups * n_cells
+    u_entries = u[:, terms.episode]
+    numerator = _keyed_sums(key, u_entries * terms.numerator, n_keys).reshape(rows, n_groups, n_cells)
+    denominator = _keyed_sums(key, u_entries * terms.denominator, n_keys).reshape(rows, n_groups, n_cells)
+    if terms.carry is not None:
+        episode, _, value = terms.carry
+        carried = _keyed_sums(carry_key, u[:, episode] * value, n_keys)
+        denominator += np.cumsum(carried.reshape(rows, n_groups, n_cells), axis=2)
+    positive = denominator > 0.0
+    ratio = np.divide(numerator, denominator, out=np.zeros_like(numerator), where=positive)
+    return np.where(positive.all(axis=2), ratio.sum(axis=2), np.nan)
+
+
+def _estimate_frame(s: _Steps, terms: _Terms) -> pl.DataFrame:
+    _, ess, share = _weight_summary(terms.weights, s.group, s.n_groups)
+    return pl.DataFrame(
+        {
+            "group": s.labels,
+            "estimate": _evaluate(terms, s)[0],
+            "n_episodes": np.bincount(s.group, minlength=s.n_groups).astype(np.int64),
+            "ess": ess,
+            "max_weight_share": share,
+        }
+    )
+
+
+def on_policy_value(steps: pl.DataFrame, gamma: float = 1.0) -> pl.DataFrame:
+    """Average discounted episode return per group: the Monte Carlo value of the logging policy.
+
+    Parameters
+    ----------
+    steps : polars.DataFrame
+        Decision steps, shape (n_steps, ...), sorted by (episode_id, t), with
+        ``episode_id``, ``t``, ``reward`` (USD) and optionally ``group``;
+        ``pi`` and ``b`` are not used.
+    gamma : float, default 1.0
+        Discount per decision step, in (0, 1]; 1 is undiscounted.
+
+    Returns
+    -------
+    polars.DataFrame
+        One row per group, sorted by group: ``group``, ``estimate`` (USD per
+        episode), ``n_episodes``, ``ess`` (= n_episodes, every weight is 1) and
+        ``max_weight_share`` (= 1 / n_episodes).
+    """
+    return _estimate_frame(*_on_policy_terms(steps, gamma))
+
+
+def ordinary_is(steps: pl.DataFrame, gamma: float = 1.0) -> pl.DataFrame:
+    """Ordinary (trajectory-wise) importance sampling: mean over episodes of rho_i G_i.
+
+    rho_i = prod_t pi_t / b_t and G_i = sum_t gamma^t r_t. Unbiased when ``b``
+    is the true logging probability; its variance grows with the spread of rho
+    and can be infinite (Sutton and Barto 2018, section 5.5).
+
+    Parameters
+    ----------
+    steps : polars.DataFrame
+        Decision steps, shape (n_steps, ...), sorted by (episode_id, t), with
+        ``episode_id``, ``t``, ``reward`` (USD), ``pi``, ``b`` and optionally
+        ``group``.
+    gamma : float, default 1.0
+        Discount per decision step, in (0, 1]; 1 is undiscounted.
+
+    Returns
+    -------
+    polars.DataFrame
+        One row per group, sorted by group: ``group``, ``estimate`` (expected
+        discounted return of the target policy, USD per episode),
+        ``n_episodes``, ``ess`` (Kish effective sample size of the rho_i) and
+        ``max_weight_share`` (largest rho_i over their sum; NaN if all are 0).
+    """
+    return _estimate_frame(*_ordinary_is_terms(steps, gamma))
+
+
+def weighted_is(steps: pl.DataFrame, gamma: float = 1.0) -> pl.DataFrame:
+    """Weighted (self-normalised) importance sampling: sum_i rho_i G_i / sum_i rho_i.
+
+    Biased in small samples but consistent, never outside the range of the
+    observed returns, and usually of much lower variance than ordinary IS
+    (Sutton and Barto 2018, section 5.5).
+
+    Parameters
+    ----------
+    steps : polars.DataFrame
+        Decision steps, shape (n_steps, ...), sorted by (episode_id, t), with
+        ``episode_id``, ``t``, ``reward`` (USD), ``pi``, ``b`` and optionally
+        ``group``.
+    gamma : float, default 1.0
+        Discount per decision step, in (0, 1]; 1 is undiscounted.
+
+    Returns
+    -------
+    polars.DataFrame
+        As ``ordinary_is``; ``estimate`` is NaN for a group in which no
+        episode has a non-zero weight.
+    """
+    return _estimate_frame(*_weighted_is_terms(steps, gamma))
+
+
+def per_decision_is(steps: pl.DataFrame, gamma: float = 1.0) -> pl.DataFrame:
+    """Per-decision importance sampling (Precup, Sutton and Singh 2000).
+
+    estimate = (1/n) sum_i sum_t gamma^t rho_{i,0:t} r_{i,t}, with
+    rho_{i,0:t} = prod_{k<=t} pi_k / b_k: each reward is weighted only by the
+    decisions before it. Unbiased, and of lower variance than ordinary IS.
+
+    Parameters
+    ----------
+    steps : polars.DataFrame
+        Decision steps, shape (n_steps, ...), sorted by (episode_id, t), with
+        ``episode_id``, ``t``, ``reward`` (USD), ``pi``, ``b`` and optionally
+        ``group``.
+    gamma : float, default 1.0
+        Discount per decision step, in (0, 1]; 1 is undiscounted.
+
+    Returns
+    -------
+    polars.DataFrame
+        As ``ordinary_is``; ``ess`` and ``max_weight_share`` describe the
+        full-trajectory weights rho_{i,0:T-1}, the most dispersed ones used.
+    """
+    return _estimate_frame(*_per_decision_is_terms(steps, gamma))
+
+
+def weighted_per_decision_is(steps: pl.DataFrame, gamma: float = 1.0) -> pl.DataFrame:
+    """Weighted per-decision importance sampling.
+
+    estimate = sum_t gamma^t (sum_i rho_{i,0:t} r_{i,t}) / (sum_i rho_{i,0:t'}),
+    with t' = min(t, T_i - 1): an episode that ended before t keeps its final
+    weight in the denominator, as if it sat in an absorbing state with reward 0.
+    That keeps the estimator consistent when episode lengths differ.
+
+    Parameters
+    ----------
+    steps : polars.DataFrame
+        Decision steps, shape (n_steps, ...), sorted by (episode_id, t), with
+        ``episode_id``, ``t``, ``reward`` (USD), ``pi``, ``b`` and optionally
+        ``group``.
+    gamma : float, default 1.0
+        Discount per decision step, in (0, 1]; 1 is undiscounted.
+
+    Returns
+    -------
+    polars.DataFrame
+        As ``per_decision_is``; ``estimate`` is NaN for a group in which no
+        episode has a non-zero weight.
+    """
+    return _estimate_frame(*_weighted_per_decision_is_terms(steps, gamma))
+
+
+def doubly_robust(steps: pl.DataFrame, gamma: float = 1.0) -> pl.DataFrame:
+    """Step-wise doubly robust estimator (Jiang and Li 2016).
+
+    estimate = (1/n) sum_i sum_t gamma^t (rho_{i,0:t} (r_{i,t} - q_hat_{i,t})
+    + rho_{i,0:t-1} v_hat_{i,t}), with rho_{i,0:-1} = 1. The model terms form a
+    control variate of mean zero as long as v_hat(s) = sum_a pi(a|s) q_hat(s, a),
+    so the estimate stays unbiased however wrong q_hat is, and its variance falls
+    as q_hat improves; a v_hat not matched to q_hat biases it. With
+    q_hat = v_hat = 0 it equals ``per_decision_is`` exactly.
+
+    Parameters
+    ----------
+    steps : polars.DataFrame
+        Decision steps, shape (n_steps, ...), sorted by (episode_id, t), with
+        ``episode_id``, ``t``, ``reward`` (USD), ``pi``, ``b``, ``q_hat`` (model
+        value of the logged state and action under the target, USD), ``v_hat``
+        (model value of the state under the target, sum_a pi(a|s) q(s, a), USD)
+        and optionally ``group``.
+    gamma : float, default 1.0
+        Discount per decision step, in (0, 1]; 1 is undiscounted.
+
+    Returns
+    -------
+    polars.DataFrame
+        As ``per_decision_is``.
+    """
+    return _estimate_frame(*_doubly_robust_terms(steps, gamma))
