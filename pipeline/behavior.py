@@ -961,27 +961,3 @@ def load_behavior(
     if missing:
         raise BehaviorInputError(f"behaviour tables {missing} are missing: run the learn stage again")
     return BehaviorModel.from_table(tables["policy"], actions, space, tables["type"])
-
-
-class BehaviorPolicy:
-    """The former single class, kept so existing callers work: builds the model its arguments describe.
-
-    ``n_types=None`` gives ``CohortCounts``, a number of types ``HabitTypes``;
-    ``BehaviorPolicy.from_table`` is ``BehaviorModel.from_table``. New code names
-    the class, or uses ``fit_behavior`` and ``load_behavior``.
-    """
-
-    from_table = BehaviorModel.from_table
-
-    def __new__(
-        cls,
-        prior_strength: float = 5.0,
-        floor: float = 0.01,
-        actions: tuple[int, ...] = DEFAULT_ACTIONS,
-        n_types: int | None = None,
-        space: StateSpace | None = None,
-        seed: int = 0,
-    ) -> BehaviorModel:
-        if n_types is None:
-            return CohortCounts(prior_strength, floor, actions)
-        return HabitTypes(prior_strength, floor, actions, n_types=n_types, space=space, seed=seed)

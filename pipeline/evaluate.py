@@ -27,7 +27,7 @@ import numpy as np
 import polars as pl
 
 from pipeline import estimators
-from pipeline.behavior import BehaviorPolicy, fit_behavior
+from pipeline.behavior import BehaviorModel
 from pipeline.config import Config
 from pipeline.estimators.registry import off_policy_estimator
 from pipeline.policies import action_index
@@ -71,7 +71,7 @@ def _model_columns(steps: pl.DataFrame, table: np.ndarray, reward: str, config: 
 
 
 def behavior_replicates(
-    steps: pl.DataFrame, behavior: BehaviorPolicy, config: Config
+    steps: pl.DataFrame, behavior: BehaviorModel, config: Config
 ) -> tuple[np.ndarray, np.ndarray]:
     """Poisson episode multiplicities and the behaviour model re-fitted on each resample.
 
@@ -355,7 +355,7 @@ COLUMNS = [
 
 
 def evaluate_candidates(
-    steps: pl.DataFrame, behavior: BehaviorPolicy, days: pl.DataFrame, config: Config
+    steps: pl.DataFrame, behavior: BehaviorModel, days: pl.DataFrame, config: Config
 ) -> Evaluation:
     """Evaluate every configured candidate rule, per mode (cooling and heating never mix)."""
     visits = steps.group_by("mode", "state_key").agg(pl.len().alias("visits"))
@@ -455,7 +455,7 @@ def state_values(steps: pl.DataFrame) -> pl.DataFrame:
 
 
 def horizon_report(
-    steps_by_choice: dict[str, pl.DataFrame], config: Config, fitted: dict[str, BehaviorPolicy] | None = None
+    steps_by_choice: dict[str, pl.DataFrame], config: Config, fitted: dict[str, BehaviorModel]
 ) -> pl.DataFrame:
     """Weight spread of each candidate under each decision-point choice (the curse of horizon).
 
@@ -463,8 +463,8 @@ def horizon_report(
     ----------
     steps_by_choice : dict of str to polars.DataFrame
         Decision steps built with each choice of decision points ('fixed', 'anchored').
-    fitted : dict of str to BehaviorPolicy, optional
-        Behaviour models already fitted for some choices (the run's own); the others are fitted here.
+    fitted : dict of str to BehaviorModel
+        The behaviour model fitted (by the learn stage) on each choice's steps.
 
     Returns
     -------
@@ -474,7 +474,7 @@ def horizon_report(
     """
     rows = []
     for choice, steps in steps_by_choice.items():
-        behavior = (fitted or {}).get(choice) or fit_behavior(steps, config)
+        behavior = fitted[choice]
         for mode in sorted(steps["mode"].unique()):
             in_mode = steps.filter(pl.col("mode") == mode)
             b = behavior.probabilities(in_mode)

@@ -6,7 +6,7 @@ import numpy as np
 import polars as pl
 import pytest
 
-from pipeline.behavior import BehaviorInputError, BehaviorPolicy, CohortCounts, HabitTypes
+from pipeline.behavior import BehaviorInputError, BehaviorModel, CohortCounts, HabitTypes
 
 STEPS = pl.DataFrame(
     {
@@ -298,7 +298,7 @@ def test_a_habit_type_table_alone_rebuilds_its_table():
     from polars.testing import assert_frame_equal
 
     fitted = HabitTypes(5.0, 0.02, (-1, 0, 1), n_types=2).fit(_two_modes())
-    assert_frame_equal(BehaviorPolicy.from_table(fitted.table(), (-1, 0, 1)).table(), fitted.table())
+    assert_frame_equal(BehaviorModel.from_table(fitted.table(), (-1, 0, 1)).table(), fitted.table())
 
 
 def test_a_reloaded_model_pickles():
@@ -372,13 +372,6 @@ def test_the_registry_names_each_model_and_fit_behavior_uses_it():
     assert type(fit_behavior(steps, replace(config, behavior_model="counts"))) is CohortCounts
     with pytest.raises(BehaviorInputError, match="must be one of types, counts"):
         fit_behavior(steps, replace(config, behavior_model="mixture"))
-
-
-def test_the_former_constructor_builds_the_model_its_arguments_describe():
-    """BehaviorPolicy(n_types=None) is the counts model and BehaviorPolicy(n_types=3) the types model."""
-    assert type(BehaviorPolicy()) is CohortCounts
-    typed = BehaviorPolicy(2.0, 0.0, (-1, 0, 1), n_types=3, seed=4)
-    assert type(typed) is HabitTypes and (typed.n_types, typed.seed, typed.prior_strength) == (3, 4, 2.0)
 
 
 def test_stored_tables_that_cannot_rebuild_a_model_are_refused():

@@ -7,7 +7,7 @@ import polars as pl
 import pytest
 
 from pipeline import estimators
-from pipeline.behavior import BehaviorPolicy
+from pipeline.behavior import CohortCounts, HabitTypes
 from pipeline.config import Config
 from pipeline.estimators import OFF_POLICY_NAMES
 from pipeline.evaluate import (
@@ -210,12 +210,17 @@ def _logged_steps(config: Config, seed: int = 11) -> pl.DataFrame:
 DAYS = pl.DataFrame({"premise_id": ["A", "B"], "cohort": ["c", "c"], "days_observed": [30, 30]})
 
 
-@pytest.mark.parametrize("n_types", [None, 2])
-def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_estimate(n_types):
+@pytest.mark.parametrize("model", ["counts", "types"])
+def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_estimate(model):
     """With the re-fitting bootstrap on (either model), weighted IS rows carry finite, ordered intervals."""
     config = Config(bootstrap_replicates=40, bootstrap_refit_behavior=True, estimators=("weighted_is",))
     steps = _logged_steps(config)
-    behavior = BehaviorPolicy(actions=config.actions, n_types=n_types, space=config.state).fit(steps)
+    unfitted = (
+        CohortCounts(actions=config.actions)
+        if model == "counts"
+        else HabitTypes(actions=config.actions, n_types=2, space=config.state)
+    )
+    behavior = unfitted.fit(steps)
     savings = evaluate_candidates(steps, behavior, DAYS, config).savings.filter(pl.col("status") == "ok")
     assert savings.height > 0
     inside = (pl.col("ci_low") <= pl.col("ci_high")) & pl.col("ci_low").is_finite()
@@ -290,7 +295,7 @@ def test_every_ledger_table_of_an_inline_evaluation_has_its_grain():
     """savings, policy, diagnostics, horizon and state_value: keys unique and not null, codes allowed."""
     config = Config(bootstrap_replicates=20, estimators=("weighted_is", "doubly_robust"))
     steps = _logged_steps(config)
-    behavior = BehaviorPolicy(actions=config.actions, n_types=None, space=config.state).fit(steps)
+    behavior = CohortCounts(actions=config.actions).fit(steps)
     result = evaluate_candidates(steps, behavior, DAYS, config)
     by_choice = {"fixed": steps, "anchored": steps}
     tables = {

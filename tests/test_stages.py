@@ -15,6 +15,7 @@ from pipeline.cli import EXIT_USAGE, main
 from pipeline.ledger import Run
 from pipeline.simulate import generate_lake
 from tests.conftest import lake_config
+from tests.grain import assert_grain
 
 FAST = {"bootstrap_replicates": 20, "behavior_types": 2, "behavior_prior_strength": 5.0}
 
@@ -125,3 +126,46 @@ def test_the_run_record_counts_every_table_the_stages_wrote(built):
     assert recorded["savings"] == summary.evaluation.savings.height
     assert recorded["step"] == summary.episodes.steps
     assert {"episode_summary", "behavior_policy", "behavior_type", "horizon", "policy"} <= recorded.keys()
+
+
+@pytest.mark.parametrize(
+    ("table", "keys"),
+    [
+        ("episode_summary", ["run_id", "episode_id"]),
+        ("state_lookup", ["run_id", "state_key"]),
+        ("behavior_policy", ["run_id", "scope", "key", "mode", "state_key", "action"]),
+        ("behavior_type", ["run_id", "mode", "premise_id", "habit_type"]),
+        ("run", ["run_id"]),
+    ],
+)
+def test_ledger_tables_of_the_episode_and_learn_stages_hold_their_grain(built, table, keys):
+    """Each ledger table the episodes and learn stages write has unique, non-null keys across runs."""
+    _, config = built
+    assert_grain(store.connect_ledger(config.ledger_path), table, keys)
+
+
+@pytest.mark.parametrize(
+    ("table", "keys"),
+    [
+        ("behavior_policy", ["scope", "key", "mode", "state_key", "action"]),
+        ("behavior_type", ["mode", "premise_id", "habit_type"]),
+        ("behavior_fixed_policy", ["scope", "key", "mode", "state_key", "action"]),
+        ("stage_build", ["stage"]),
+    ],
+)
+def test_warehouse_tables_of_the_learn_stage_hold_their_grain(built, table, keys):
+    """The warehouse's behaviour model (both decision-point choices) and build records have their grain."""
+    _, config = built
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        assert_grain(con, table, keys)
+
+
+def test_behaviour_probabilities_in_the_warehouse_sum_to_one_per_state(built):
+    """Every stored behaviour row set is a distribution over the action set, for every scope and state."""
+    _, config = built
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        worst = con.execute(
+            "select max(abs(total - 1)) from (select sum(probability) as total from behavior_policy"
+            " group by scope, key, mode, state_key)"
+        ).fetchall()[0][0]
+    assert worst < 1e-9
