@@ -148,14 +148,15 @@ def landing_files(lake: Path, folder: str) -> list[Path]:
     return sorted(p for p in base.rglob("*") if p.is_file() and p.name.lower().endswith(suffixes))
 
 
-def ingest(config: Config, progress: Progress | None = None) -> list[FileResult]:
+def ingest(config: Config, progress: Progress | None = None, reread: bool = False) -> list[FileResult]:
     """Ingest every landing file of ``config.lake`` into the warehouse; return one result per file.
 
     Unchanged files are skipped; a changed file replaces its earlier rows in one transaction,
     and files whose rows were quarantined as conflicts with its old rows are loaded again after
     it. Files that left the lake are reported with status ``missing``; their rows stay (the
     lake may be pruned after loading, the warehouse is the record). Finally ``coverage`` is
-    rebuilt.
+    rebuilt. ``reread`` reads every file again as if changed (settings that shape the checks,
+    such as the safety bands or the column mapping, differ from the last load's).
     """
     lake = Path(config.lake)
     landing = lake / "landing"
@@ -173,7 +174,7 @@ def ingest(config: Config, progress: Progress | None = None) -> list[FileResult]
             _require_loaded_meter(con, landing, unknown)
         released: list[str] = []
         for done, (folder, path) in enumerate(work, 1):
-            result, freed = ingest_file(con, folder, path, config, set(by_name))
+            result, freed = ingest_file(con, folder, path, config, set(by_name), reread)
             results[result.source_file] = result
             released += freed
             if progress is not None:
@@ -244,6 +245,7 @@ def ingest_file(
     path: Path,
     config: Config,
     releasable: set[str] | None = None,
+    reread: bool = False,
 ) -> tuple[FileResult, list[str]]:
     """Ingest one file; return its result and the other files released to be loaded again.
 
@@ -258,7 +260,7 @@ def ingest_file(
     name = _relative(path, config)
     content_hash = _content_hash(path)
     seen = store.query(con, "logged_file", {"f": name}).rows()
-    if seen and seen[0][0] == content_hash:
+    if seen and seen[0][0] == content_hash and not reread:
         store.execute(con, "update ingest_log set missing_since = null where source_file = $f", {"f": name})
         _, status, *counts, message = seen[0]
         if status == "refused":

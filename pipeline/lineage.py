@@ -80,6 +80,14 @@ def record(
     return build_id
 
 
+def changed(con: duckdb.DuckDBPyConnection, stage: str, settings: dict[str, Any]) -> list[str]:
+    """Settings whose values differ from those ``stage``'s current build was made with (none if unbuilt)."""
+    build = builds(con).get(stage)
+    if build is None:
+        return []
+    return sorted(k for k, v in settings.items() if build.settings.get(k, object()) != _normal(v))
+
+
 def _shown(value: Any) -> str:
     return json.dumps(_normal(value))
 

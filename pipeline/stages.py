@@ -132,8 +132,16 @@ def _checked(config: Config, stage: str) -> None:
 
 
 def ingest(config: Config, run: Run, progress: ingestion.Progress | None = None) -> IngestSummary:
-    """Load the landing files into the warehouse and record the settings they were checked with."""
-    results = ingestion.results_frame(ingestion.ingest(config, progress=progress))
+    """Load the landing files into the warehouse and record the settings they were checked with.
+
+    When a setting that shapes the checks changed since the last load, every file is read
+    again, so no row stays loaded (or quarantined) under the old rules.
+    """
+    reread = False
+    if config.warehouse_path.exists():
+        with store.warehouse(config.warehouse_path) as con:
+            reread = bool(lineage.changed(con, "ingest", config.stage_settings("ingest")))
+    results = ingestion.results_frame(ingestion.ingest(config, progress=progress, reread=reread))
     with store.warehouse(config.warehouse_path) as con, store.transaction(con):
         lineage.record(con, "ingest", config.stage_settings("ingest"), (), run.run_id)
     return IngestSummary(results, int((results["status"] == "refused").sum()))

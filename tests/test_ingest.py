@@ -804,3 +804,20 @@ def test_a_missing_lake_folder_is_one_line_and_exit_2(tmp_path, capsys):
     err = capsys.readouterr().err
     assert code == cli.EXIT_USAGE
     assert err == f"thermal-ledger: lake folder {missing} does not exist: check --lake\n"
+
+
+def test_a_changed_safety_band_reads_unchanged_files_again(tmp_path):
+    """A premise loaded under the default band is quarantined when the band changes, though its file did not."""
+    from pipeline import stages
+    from pipeline.ledger import Run
+
+    config, _, con = _ingest(tmp_path, {})
+    con.close()
+    stages.ingest(config, Run(config))
+    narrow = lake_config(tmp_path, cool_band_c=[25.0, 30.0])
+    summary = stages.ingest(narrow, Run(narrow))
+    assert "unchanged" not in summary.files["status"].to_list()
+    with store.warehouse(config.warehouse_path, read_only=True) as again:
+        assert again.execute("select count(*) from premise").fetchall()[0][0] == 0
+        reasons = again.execute("select reason from quarantine where source_file like '%p.csv'").fetchall()
+    assert reasons == [("setpoint_out_of_range",)]
