@@ -6,6 +6,9 @@ every step can be run and tested without Prefect.
 
 from __future__ import annotations
 
+import logging
+from collections.abc import Iterator
+from contextlib import contextmanager
 from typing import Any
 
 from prefect import flow, task
@@ -15,6 +18,28 @@ from pipeline import config as config_module
 from pipeline import stages
 from pipeline.config import Config
 from pipeline.ledger import Run
+
+
+@contextmanager
+def quiet_tracebacks(errors: tuple[type[BaseException], ...]) -> Iterator[None]:
+    """Prefect logs every failed task and flow with its traceback; for ``errors`` keep only the message.
+
+    These are the user's mistakes (settings, files, order of stages), answered in one line by the caller.
+    """
+
+    def strip(record: logging.LogRecord) -> bool:
+        if record.exc_info and isinstance(record.exc_info[1], errors):
+            record.exc_info, record.exc_text = None, None
+        return True
+
+    loggers = [logging.getLogger(name) for name in ("prefect.flow_runs", "prefect.task_runs")]
+    for logger in loggers:
+        logger.addFilter(strip)
+    try:
+        yield
+    finally:
+        for logger in loggers:
+            logger.removeFilter(strip)
 
 
 @task(name="ingest", cache_policy=NO_CACHE)
