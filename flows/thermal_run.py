@@ -22,9 +22,10 @@ from pipeline.ledger import Run
 
 @contextmanager
 def quiet_tracebacks(errors: tuple[type[BaseException], ...]) -> Iterator[None]:
-    """Prefect logs every failed task and flow with its traceback; for ``errors`` keep only the message.
+    """Print failed tasks and flows caused by ``errors`` without their traceback, on the terminal only.
 
-    These are the user's mistakes (settings, files, order of stages), answered in one line by the caller.
+    These are the user's mistakes (settings, files, order of stages), answered in one line by the
+    caller; Prefect's API log handler still receives the whole record, so the UI keeps the detail.
     """
 
     def strip(record: logging.LogRecord) -> bool:
@@ -32,14 +33,16 @@ def quiet_tracebacks(errors: tuple[type[BaseException], ...]) -> Iterator[None]:
             record.exc_info, record.exc_text = None, None
         return True
 
-    loggers = [logging.getLogger(name) for name in ("prefect.flow_runs", "prefect.task_runs")]
-    for logger in loggers:
-        logger.addFilter(strip)
+    # Prefect 3 puts its console handler on the root logger (older releases on "prefect").
+    handlers = logging.getLogger().handlers + logging.getLogger("prefect").handlers
+    consoles = [h for h in handlers if isinstance(h, logging.StreamHandler)]
+    for handler in consoles:
+        handler.addFilter(strip)
     try:
         yield
     finally:
-        for logger in loggers:
-            logger.removeFilter(strip)
+        for handler in consoles:
+            handler.removeFilter(strip)
 
 
 @task(name="ingest", cache_policy=NO_CACHE)
