@@ -336,7 +336,7 @@ def settings_markdown() -> str:
     for row in config_module.settings_reference():
         cells = (
             f"`{row.key}`",
-            f"`{row.default}`",
+            f"`{row.default}`" if row.default else "",
             row.unit,
             row.allowed,
             ", ".join(row.stages),

@@ -176,7 +176,7 @@ class Config:
     cool_band_c: tuple[Number, Number] = _setting((22.0, 30.0), stages=("ingest",), unit="°C")
     """Safety band for cooling setpoints, °C, low then high (common practice, from memory)."""
     heat_band_c: tuple[Number, Number] = _setting((13.0, 23.0), stages=("ingest",), unit="°C")
-    """Safety band for heating setpoints, °C, 13 °C guards against frozen pipes (common practice)."""
+    """Safety band for heating setpoints, °C, low then high (13 °C guards frozen pipes: common practice)."""
     min_episode_hours: Count = _setting(3, stages=("episodes",), unit="h")
     """Shortest away episode kept, in fully-away hours."""
     max_episode_hours: Count = _setting(14, stages=("episodes",), unit="h")
@@ -342,19 +342,23 @@ def _did_you_mean(word: Any, choices) -> str:
     return f" (did you mean {close[0]!r}?)" if close else ""
 
 
-def _show(value: Any) -> str:
-    """A value as the user would write it in TOML."""
+def _show(value: Any, quote: Callable[[str], str] = repr) -> str:
+    """A value as the user would write it in TOML (strings in single quotes unless ``quote`` says)."""
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, str | Path):
-        return repr(str(value))
+        return quote(str(value))
     if isinstance(value, list | tuple):
-        return "[" + ", ".join(_show(v) for v in value) + "]"
+        return "[" + ", ".join(_show(v, quote) for v in value) + "]"
     if isinstance(value, dict):
-        return "{" + ", ".join(f"{k} = {_show(v)}" for k, v in value.items()) + "}"
+        return "{" + ", ".join(f"{k} = {_show(v, quote)}" for k, v in value.items()) + "}"
     if dataclasses.is_dataclass(value):
-        return _show(dataclasses.asdict(value))
+        return _show(dataclasses.asdict(value), quote)
     return repr(value)
+
+
+def _toml(value: Any) -> str:
+    return _show(value, json.dumps)
 
 
 def _folders() -> dict[str, tuple[str, ...]]:
@@ -609,7 +613,8 @@ def _field_docs(cls: type) -> dict[str, str]:
             and isinstance(after, ast.Expr)
             and isinstance(after.value, ast.Constant)
         ):
-            docs[node.target.id] = " ".join(after.value.value.strip().split("\n\n")[0].split())
+            first = after.value.value.strip().split("\n\n")[0]
+            docs[node.target.id] = " ".join(first.split()).replace("``", "`")
     return docs
 
 
@@ -629,20 +634,20 @@ def _allowed(tp: Any) -> str:
     for m in meta:
         func = getattr(m, "func", None)
         if isinstance(func, _OneOf):
-            words = [" / ".join(func.choices)]
+            words = [" / ".join(f'"{c}"' for c in func.choices)]
         elif isinstance(func, _AutoOr):
-            words = [f"'auto' or {func.kind}"]
+            words = [f'"auto" or {func.kind}']
         for item in getattr(m, "metadata", ()):
             for attr, sign in (
                 ("ge", ">="),
                 ("gt", ">"),
                 ("le", "<="),
                 ("lt", "<"),
-                ("min_length", "items >="),
+                ("min_length", "at least"),
             ):
                 if getattr(item, attr, None) is not None:
                     words.append(f"{sign} {getattr(item, attr)}")
-    return " ".join(w for w in words if w)
+    return ", ".join(w for w in words if w)
 
 
 _RULES = {
@@ -684,11 +689,11 @@ def settings_reference() -> list[SettingInfo]:
             prefix, cls = ("state", StateSpace) if f.name == "state" else ("candidate", SetbackRule)
             sub_docs = _field_docs(cls)
             if f.name == "candidates":
-                rules = "; ".join(_show(dataclasses.asdict(r)) for r in default.candidates)
+                rules = "; ".join(_toml(dataclasses.asdict(r)) for r in default.candidates)
                 rows.append(SettingInfo("candidate", rules, "", "at least one", stages, docs[f.name]))
             for sub in dataclasses.fields(cls):
                 key = f"{prefix}.{sub.name}"
-                shown = _show(getattr(default.state, sub.name)) if f.name == "state" else ""
+                shown = _toml(getattr(default.state, sub.name)) if f.name == "state" else ""
                 meaning = sub_docs.get(sub.name, "Name of the rule, shown in the ledger.")
                 rows.append(SettingInfo(key, shown, "", _NESTED_RULES.get(key, ""), stages, meaning))
             continue
@@ -700,7 +705,7 @@ def settings_reference() -> list[SettingInfo]:
         allowed = "; ".join(w for w in (_allowed(hints[f.name]), _RULES.get(f.name, "")) if w)
         rows.append(
             SettingInfo(
-                f.name, _show(getattr(default, f.name)), f.metadata["unit"], allowed, stages, docs[f.name]
+                f.name, _toml(getattr(default, f.name)), f.metadata["unit"], allowed, stages, docs[f.name]
             )
         )
     return rows
