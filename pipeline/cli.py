@@ -375,6 +375,14 @@ def _require_lake(config: Config) -> None:
         )
 
 
+def _require_warehouse(config: Config, stage: str) -> None:
+    if not Path(config.warehouse_path).exists():
+        raise stages.StageError(
+            f"{stage}: no warehouse at {config.warehouse_path}; run"
+            f" `thermal-ledger ingest --lake DIR --out {config.out}` first"
+        )
+
+
 def _run_flow(args: argparse.Namespace, overrides: dict[str, Any]) -> stages.RunSummary:
     from flows.thermal_run import quiet_tracebacks, thermal_ledger_run
 
@@ -400,6 +408,7 @@ def _run_stage(args: argparse.Namespace) -> int:
         print_ingest(result.ingest, console)
         print_summary(result, config.confidence, console)
         return EXIT_REFUSED if result.ingest.refused else EXIT_OK
+    _require_warehouse(config, args.stage)
     run = Run(config)
     if args.stage == "episodes":
         print_episodes(stages.episodes(config, run))
