@@ -176,15 +176,35 @@ def test_demo_on_a_missing_lake_prints_one_line_under_prefect(prefect_harness, t
     ]
 
 
-def test_a_stage_failing_inside_the_flow_ends_in_one_line_without_traceback(prefect_harness, tmp_path, capfd):
-    """A user error raised by a task (no usable steps) ends the Prefect run with one line and exit 2."""
+@pytest.fixture(scope="module")
+def prefect_logging(prefect_harness):
+    """Prefect sets up its log handlers at the first flow run; do that here, on pytest's session streams.
+
+    Set up inside a test, they would keep writing to that test's capture after it is closed.
+    """
+    from prefect import flow
+
+    @flow(name="nothing")
+    def nothing() -> None:
+        return None
+
+    nothing()
+
+
+def test_a_stage_failing_inside_the_flow_ends_in_one_line_without_traceback(
+    prefect_logging, tmp_path, capsys, caplog
+):
+    """A user error raised in a task (no usable steps) ends a Prefect run in one line, exit 2, no traceback."""
     lake = write_landing(tmp_path, {"premises/p.csv": "premise_id\n"})
     code = main(["run", "--lake", str(lake), "--out", str(tmp_path / "out")])
-    captured = capfd.readouterr()
+    captured = capsys.readouterr()
     assert code == EXIT_USAGE
-    assert "Traceback" not in captured.out + captured.err
-    ours = [line for line in captured.err.splitlines() if line.startswith("thermal-ledger:")]
-    assert ours == ["thermal-ledger: no usable decision steps: check the episode stage's exclusions"]
+    assert captured.err.splitlines()[-1:] == [
+        "thermal-ledger: no usable decision steps: check the episode stage's exclusions"
+    ]
+    failed = [r for r in caplog.records if "StageError" in r.getMessage()]
+    assert failed, "Prefect logged the failed task and flow"
+    assert "Traceback" not in captured.out + captured.err + caplog.text
 
 
 def test_settings_subcommand_prints_the_committed_reference(capsys):
