@@ -194,7 +194,7 @@ def prefect_logging(prefect_harness):
 def test_a_stage_failing_inside_the_flow_ends_in_one_line_without_traceback(
     prefect_logging, tmp_path, capsys, caplog
 ):
-    """A user error raised in a task (no usable steps) ends a Prefect run in one line, exit 2, no traceback."""
+    """A user error in a task (no usable steps) ends a Prefect run in one line, exit 2, no traceback."""
     lake = write_landing(tmp_path, {"premises/p.csv": "premise_id\n"})
     code = main(["run", "--lake", str(lake), "--out", str(tmp_path / "out")])
     captured = capsys.readouterr()
