@@ -1,7 +1,7 @@
 """The whole pipeline as one Prefect flow, and its stages as tasks.
 
-Each task is one call into ``pipeline.stages``; nothing here transforms data, so
-every step can be run and tested without Prefect.
+Each task is one call into ``pipeline.stages``, in the order ``stages.STAGES`` gives;
+nothing here transforms data, so every step can be run and tested without Prefect.
 """
 
 from __future__ import annotations
@@ -16,7 +16,6 @@ from prefect.cache_policies import NO_CACHE
 
 from pipeline import config as config_module
 from pipeline import stages
-from pipeline.config import Config
 from pipeline.ledger import Run
 
 
@@ -45,29 +44,10 @@ def quiet_tracebacks(errors: tuple[type[BaseException], ...]) -> Iterator[None]:
             handler.removeFilter(strip)
 
 
-@task(name="ingest", cache_policy=NO_CACHE)
-def ingest_task(config: Config) -> stages.IngestSummary:
-    return stages.ingest(config)
-
-
-@task(name="episodes", cache_policy=NO_CACHE)
-def episodes_task(config: Config, run: Run) -> stages.EpisodeCounts:
-    return stages.episodes(config, run)
-
-
-@task(name="learn", cache_policy=NO_CACHE)
-def learn_task(config: Config, run: Run) -> stages.BehaviorSummary:
-    return stages.learn(config, run)
-
-
-@task(name="evaluate", cache_policy=NO_CACHE)
-def evaluate_task(config: Config, run: Run) -> stages.EvaluationSummary:
-    return stages.evaluate(config, run)
-
-
-@task(name="finish", cache_policy=NO_CACHE)
-def finish_task(config: Config, run: Run) -> str:
-    return stages.finish(config, run)
+STAGE_TASKS = {
+    name: task(stages.STAGE_FUNCTIONS[name], name=name, cache_policy=NO_CACHE) for name in stages.STAGES
+}
+finish_task = task(stages.finish, name="finish", cache_policy=NO_CACHE)
 
 
 @flow(name="thermal-ledger-run", log_prints=True)
@@ -77,9 +57,6 @@ def thermal_ledger_run(
     """Ingest, build episodes, learn and evaluate; write the ledger for one run."""
     config = config_module.load(config_path, overrides)
     run = Run(config)
-    ingested = ingest_task(config)
-    counts = episodes_task(config, run)
-    behavior = learn_task(config, run)
-    evaluation = evaluate_task(config, run)
-    finish_task(config, run)
-    return stages.RunSummary(run.run_id, ingested, counts, behavior, evaluation)
+    results = {name: STAGE_TASKS[name](config, run) for name in stages.STAGES}
+    finish_task(config, run, results)
+    return stages.summary(run, results)

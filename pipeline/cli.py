@@ -375,14 +375,6 @@ def _require_lake(config: Config) -> None:
         )
 
 
-def _require_warehouse(config: Config, stage: str) -> None:
-    if not Path(config.warehouse_path).exists():
-        raise stages.StageError(
-            f"{stage}: no warehouse at {config.warehouse_path}; run"
-            f" `thermal-ledger ingest --lake DIR --out {config.out}` first"
-        )
-
-
 def _run_flow(args: argparse.Namespace, overrides: dict[str, Any]) -> stages.RunSummary:
     from flows.thermal_run import quiet_tracebacks, thermal_ledger_run
 
@@ -397,8 +389,7 @@ def _run_stage(args: argparse.Namespace) -> int:
     config = config_module.load(args.config, overrides, flags)
     if args.stage == "ingest":
         _require_lake(config)
-        files = ingestion.results_frame(ingestion.ingest(config, progress=_progress))
-        summary = stages.IngestSummary(files, int((files["status"] == "refused").sum()))
+        summary = stages.ingest(config, Run(config), progress=_progress)
         print_ingest(summary)
         return EXIT_REFUSED if summary.refused else EXIT_OK
     if args.stage == "run":
@@ -408,16 +399,15 @@ def _run_stage(args: argparse.Namespace) -> int:
         print_ingest(result.ingest, console)
         print_summary(result, config.confidence, console)
         return EXIT_REFUSED if result.ingest.refused else EXIT_OK
-    _require_warehouse(config, args.stage)
     run = Run(config)
+    result = stages.STAGE_FUNCTIONS[args.stage](config, run)
     if args.stage == "episodes":
-        print_episodes(stages.episodes(config, run))
+        print_episodes(result.counts)
     elif args.stage == "learn":
-        learned = stages.learn(config, run)
-        _console().print(f"{learned.describe()}; behaviour policy rows: {learned.rows:,}", markup=False)
+        _console().print(f"{result.describe()}; behaviour policy rows: {result.rows:,}", markup=False)
     elif args.stage == "evaluate":
-        print_evaluation(stages.evaluate(config, run), config.confidence)
-    stages.finish(config, run)
+        print_evaluation(result, config.confidence)
+    stages.finish(config, run, {args.stage: result})
     return EXIT_OK
 
 

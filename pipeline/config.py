@@ -67,15 +67,14 @@ class _OneOf:
 
 
 def _behavior_models() -> tuple[str, ...]:
-    # Imported when used: pipeline.behavior owns the names, and may come to import this module.
-    try:
-        from pipeline.behavior import BEHAVIOR_MODELS
-    except ImportError:
-        return ("types", "counts")
+    # Imported when used: pipeline.behavior owns the names, and this module stays importable from it.
+    from pipeline.behavior import BEHAVIOR_MODELS
+
     return tuple(BEHAVIOR_MODELS)
 
 
 def _estimator_names() -> tuple[str, ...]:
+    # Until pipeline.estimators publishes OFF_POLICY_NAMES, the off-policy estimators it has today.
     try:
         from pipeline.estimators import OFF_POLICY_NAMES
     except ImportError:

@@ -20,31 +20,34 @@ from pipeline import store
 from pipeline.config import Config
 
 
-@dataclass
+@dataclass(frozen=True)
 class Run:
-    """One pipeline run: its identity and what it wrote."""
+    """One pipeline run's identity. Immutable and picklable: stages on other workers share it.
+
+    What a stage writes comes back to the caller as row counts (``write`` returns them), and
+    ``finish`` records the counts it is handed, so no stage mutates shared state.
+    """
 
     config: Config
     run_id: str = ""
     started_at: dt.datetime = field(default_factory=lambda: dt.datetime.now(dt.UTC))
-    row_counts: dict[str, int] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         if not self.run_id:
-            self.run_id = f"{self.started_at:%Y%m%dT%H%M%SZ}-{uuid.uuid4().hex[:6]}"
+            object.__setattr__(self, "run_id", f"{self.started_at:%Y%m%dT%H%M%SZ}-{uuid.uuid4().hex[:6]}")
 
     @property
     def run_date(self) -> dt.date:
         """Partition date of this run's ledger files."""
         return self.started_at.date()
 
-    def write(self, table: str, frame: pl.DataFrame) -> Path:
-        """Write one ledger table, stamped with this run's id; remember its row count."""
+    def write(self, table: str, frame: pl.DataFrame) -> dict[str, int]:
+        """Write one ledger table stamped with this run's id; return ``{table: rows}``."""
         stamped = frame.select(pl.lit(self.run_id).alias("run_id"), pl.all())
-        self.row_counts[table] = stamped.height
-        return store.write_ledger(self.config.ledger_path, table, stamped, self.run_id, self.run_date)
+        store.write_ledger(self.config.ledger_path, table, stamped, self.run_id, self.run_date)
+        return {table: stamped.height}
 
-    def finish(self, con: duckdb.DuckDBPyConnection | None = None) -> Path:
+    def finish(self, row_counts: dict[str, int], con: duckdb.DuckDBPyConnection | None = None) -> Path:
         """Write the ``run`` table: configuration, code version, data watermark and row counts."""
         watermark = None
         if con is not None:
@@ -56,7 +59,7 @@ class Run:
                 "config": [self.config.to_json()],
                 "code_version": [code_version()],
                 "data_watermark": [watermark],
-                "row_counts": [json.dumps(dict(sorted(self.row_counts.items())))],
+                "row_counts": [json.dumps(dict(sorted(row_counts.items())))],
             },
             schema_overrides={"data_watermark": pl.Datetime("us", "UTC")},
         )

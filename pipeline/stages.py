@@ -1,29 +1,48 @@
-"""The pipeline's stages as plain functions of a Config (and the Run they belong to).
+"""The pipeline's stages as plain functions of a Config and the Run they belong to.
 
-Each stage reads what the previous one left in the warehouse, so a stage can be
-run alone from the command line, as a Prefect task, or from a test.
+Each stage reads what the previous one left in the warehouse, so a stage can be run
+alone from the command line, as a Prefect task, or from a test. A stage hands back an
+immutable, picklable result (what it built, the ledger rows it wrote); nothing is
+shared between stages but the warehouse, so the same stages run in one process or as
+tasks on other workers. ``STAGES`` is the one definition of their order, used by
+``run_all`` and by the Prefect flow alike.
+
+Every stage that writes the warehouse does so in one transaction together with its
+build record (``pipeline.lineage``): a stage that fails leaves the warehouse as it was,
+and a stage whose inputs were built with other settings refuses to run.
 """
 
 from __future__ import annotations
 
 import dataclasses
-from dataclasses import dataclass
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
 
 import polars as pl
 
 from pipeline import evaluate as evaluation
 from pipeline import ingest as ingestion
-from pipeline import store
-from pipeline.behavior import BehaviorPolicy, fit_behavior
+from pipeline import lineage, store
+from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
 from pipeline.config import Config
 from pipeline.episodes import EpisodeCounts, build, episode_summary, load_episodes, load_steps, steps_for
 from pipeline.ledger import Run
+from pipeline.lineage import StageError
 
-__all__ = ["BehaviorSummary", "EpisodeCounts", "EvaluationSummary", "IngestSummary", "RunSummary"]
+__all__ = [
+    "STAGES",
+    "BehaviorSummary",
+    "EpisodeCounts",
+    "EvaluationSummary",
+    "IngestSummary",
+    "RunSummary",
+    "StageError",
+    "run_all",
+]
 
-
-class StageError(RuntimeError):
-    """A stage cannot run because an earlier one has not produced its input."""
+STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "evaluate")
+"""The stages of a run, in order; each reads what the ones before it left in the warehouse."""
 
 
 @dataclass(frozen=True)
@@ -32,14 +51,16 @@ class IngestSummary:
 
     files: pl.DataFrame
     refused: int
+    tables: Mapping[str, int] = field(default_factory=dict)
+    """Rows per warehouse table after the load."""
 
 
 @dataclass(frozen=True)
-class EvaluationSummary:
-    """The savings rows of one evaluation, and the weight spread per decision-point choice."""
+class EpisodeSummary:
+    """What the episode stage built, and the ledger rows it wrote."""
 
-    savings: pl.DataFrame
-    horizon: pl.DataFrame
+    counts: EpisodeCounts
+    tables: Mapping[str, int] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -52,6 +73,7 @@ class BehaviorSummary:
     rows: int
     premises_per_type: tuple[int, ...]
     """Premises whose largest share is each habit type, in type order (empty for the counts model)."""
+    tables: Mapping[str, int] = field(default_factory=dict)
 
     def describe(self) -> str:
         """One line for the run summary."""
@@ -65,6 +87,15 @@ class BehaviorSummary:
 
 
 @dataclass(frozen=True)
+class EvaluationSummary:
+    """The savings rows of one evaluation, and the weight spread per decision-point choice."""
+
+    savings: pl.DataFrame
+    horizon: pl.DataFrame
+    tables: Mapping[str, int] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
 class RunSummary:
     """What one whole run did."""
 
@@ -75,91 +106,172 @@ class RunSummary:
     evaluation: EvaluationSummary
 
 
-def ingest(config: Config) -> IngestSummary:
-    """Load the landing files into the warehouse."""
-    results = ingestion.results_frame(ingestion.ingest(config))
+def _settings_of(config: Config, names: tuple[str, ...]) -> dict[str, dict[str, Any]]:
+    return {name: config.stage_settings(name) for name in names}
+
+
+def _upstream(stage: str) -> tuple[str, ...]:
+    return STAGES[: STAGES.index(stage)]
+
+
+def _require_warehouse(config: Config, stage: str) -> None:
+    if not config.warehouse_path.exists():
+        raise StageError(
+            f"no warehouse at {config.warehouse_path}: the {stage} stage reads it;"
+            f" run `thermal-ledger ingest --lake {config.lake} --out {config.out}` first"
+            " (or `thermal-ledger run`)"
+        )
+
+
+def _checked(config: Config, stage: str) -> None:
+    """Refuse ``stage`` unless the warehouse holds current inputs built with this run's settings."""
+    _require_warehouse(config, stage)
+    upstream = _upstream(stage)
+    with store.warehouse(config.warehouse_path) as con:
+        lineage.check(con, stage, upstream, _settings_of(config, upstream))
+
+
+def ingest(config: Config, run: Run, progress: ingestion.Progress | None = None) -> IngestSummary:
+    """Load the landing files into the warehouse and record the settings they were checked with."""
+    results = ingestion.results_frame(ingestion.ingest(config, progress=progress))
+    with store.warehouse(config.warehouse_path) as con, store.transaction(con):
+        lineage.record(con, "ingest", config.stage_settings("ingest"), (), run.run_id)
     return IngestSummary(results, int((results["status"] == "refused").sum()))
 
 
-def episodes(config: Config, run: Run) -> EpisodeCounts:
+def episodes(config: Config, run: Run) -> EpisodeSummary:
     """Rebuild the hourly grid, episodes and steps; write ``episode_summary`` to the ledger."""
+    _checked(config, "episodes")
     with store.warehouse(config.warehouse_path) as con:
-        counts = build(con, config)
+        with store.transaction(con):
+            counts = build(con, config)
+            lineage.record(
+                con, "episodes", config.stage_settings("episodes"), _upstream("episodes"), run.run_id
+            )
         steps = load_steps(con)
         episodes_frame = load_episodes(con)
-    run.row_counts.update(hourly=counts.hours, episode=counts.episodes, step=counts.steps)
-    run.write("episode_summary", episode_summary(episodes_frame, steps))
-    run.write("state_lookup", config.state.lookup())
-    return counts
+    tables = {"hourly": counts.hours, "episode": counts.episodes, "step": counts.steps}
+    tables |= run.write("episode_summary", episode_summary(episodes_frame, steps))
+    tables |= run.write("state_lookup", config.state.lookup())
+    return EpisodeSummary(counts, tables)
 
 
 def _steps(config: Config) -> pl.DataFrame:
     with store.warehouse(config.warehouse_path, read_only=True) as con:
         steps = load_steps(con)
     if steps.is_empty():
-        raise StageError("no usable decision steps: check the episode stage's exclusions")
+        raise StageError("no usable decision steps: check the episode stage's exclusions (episode_summary)")
     return steps
 
 
+def _other_choice(config: Config) -> Config:
+    """The configuration with the other choice of decision points (for the horizon report)."""
+    other = "fixed" if config.decision_points == "anchored" else "anchored"
+    return dataclasses.replace(config, decision_points=other)
+
+
+def _store_behavior(con, model: BehaviorModel, prefix: str) -> None:
+    for name, frame in model.to_tables().items():
+        store.replace_table(con, f"{prefix}_{name}", frame)
+
+
+def _load_behavior(con, prefix: str, config: Config) -> BehaviorModel:
+    tables = {name: store.frame(con, f"select * from {prefix}_{name}") for name in BEHAVIOR_TABLES}
+    return load_behavior(tables, config.actions, config.state)
+
+
 def learn(config: Config, run: Run) -> BehaviorSummary:
-    """Estimate the behaviour policy; keep it in the warehouse and write it to the ledger."""
+    """Estimate the behaviour policy; keep it in the warehouse and write it to the ledger.
+
+    The same model (its chosen size, no second search) is also fitted on the steps of the
+    other choice of decision points, for the evaluate stage's horizon report.
+    """
+    _checked(config, "learn")
     steps = _steps(config)
     model = fit_behavior(steps, config)
-    table = model.table()
-    with store.warehouse(config.warehouse_path) as con:
-        con.register("behavior_frame", table.to_arrow())
-        store.frame(con, "create or replace table behavior_policy as select * from behavior_frame")
-        con.unregister("behavior_frame")
-    run.write("behavior_policy", table)
+    other = _other_choice(config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        other_steps = steps_for(con, other)
+    other_model = model.clone().fit(other_steps)
+    with store.warehouse(config.warehouse_path) as con, store.transaction(con):
+        _store_behavior(con, model, "behavior")
+        _store_behavior(con, other_model, f"behavior_{other.decision_points}")
+        lineage.record(con, "learn", config.stage_settings("learn"), _upstream("learn"), run.run_id)
+    tables: dict[str, int] = {}
+    for name, frame in model.to_tables().items():
+        tables |= run.write(f"behavior_{name}", frame)
     membership = model.membership()
-    run.write("behavior_type", membership)
     per_type: tuple[int, ...] = ()
     if model.n_types is not None:
         top = membership.sort("share", descending=True).unique(["premise_id", *model.split_], keep="first")
         counts = top.group_by("habit_type").len()
         found = dict(zip(counts["habit_type"].to_list(), counts["len"].to_list(), strict=True))
         per_type = tuple(found.get(z, 0) for z in range(1, model.n_types + 1))
-    return BehaviorSummary(config.behavior_model, model.n_types, model.prior_strength, table.height, per_type)
+    return BehaviorSummary(
+        config.behavior_model,
+        model.n_types,
+        model.prior_strength,
+        tables["behavior_policy"],
+        per_type,
+        tables,
+    )
 
 
 def evaluate(config: Config, run: Run) -> EvaluationSummary:
     """Evaluate the behaviour policy and every candidate; write savings, policy and diagnostics."""
+    _checked(config, "evaluate")
     steps = _steps(config)
+    other = _other_choice(config)
     with store.warehouse(config.warehouse_path, read_only=True) as con:
-        behavior = BehaviorPolicy.from_table(
-            store.frame(con, "select * from behavior_policy"), config.actions, config.state
-        )
+        behavior = _load_behavior(con, "behavior", config)
+        fitted = {
+            config.decision_points: behavior,
+            other.decision_points: _load_behavior(con, f"behavior_{other.decision_points}", config),
+        }
         days = store.frame(
             con,
             "select premise_id, p.cohort, count(distinct h.local_date) as days_observed"
             " from hourly h join premise p using (premise_id) group by all",
         )
-        by_choice = {
-            choice: steps_for(con, dataclasses.replace(config, decision_points=choice))
-            for choice in ("fixed", "anchored")
-        }
+        by_choice = {config.decision_points: steps, other.decision_points: steps_for(con, other)}
     result = evaluation.evaluate_candidates(steps, behavior, days, config)
-    horizon = evaluation.horizon_report(by_choice, config, {config.decision_points: behavior})
-    run.write("horizon", horizon)
-    run.write("state_value", evaluation.state_values(steps))
-    run.write("savings", result.savings)
-    run.write("policy", result.policy)
-    run.write("diagnostics", result.diagnostics)
-    return EvaluationSummary(result.savings, horizon)
+    horizon = evaluation.horizon_report(by_choice, config, fitted)
+    tables = run.write("horizon", horizon)
+    tables |= run.write("state_value", evaluation.state_values(steps))
+    tables |= run.write("savings", result.savings)
+    tables |= run.write("policy", result.policy)
+    tables |= run.write("diagnostics", result.diagnostics)
+    return EvaluationSummary(result.savings, horizon, tables)
 
 
-def finish(config: Config, run: Run) -> str:
-    """Write the run record; return the path of its file."""
+def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
+    """Write the run record with the row counts the stages' results report; return its file's path."""
+    row_counts: dict[str, int] = {}
+    for result in results.values():
+        row_counts |= dict(result.tables)
     with store.warehouse(config.warehouse_path, read_only=True) as con:
-        return str(run.finish(con))
+        return str(run.finish(row_counts, con))
+
+
+STAGE_FUNCTIONS: dict[str, Callable[[Config, Run], Any]] = {
+    "ingest": ingest,
+    "episodes": episodes,
+    "learn": learn,
+    "evaluate": evaluate,
+}
+"""Each stage's function, keyed as in ``STAGES``."""
+
+
+def summary(run: Run, results: Mapping[str, Any]) -> RunSummary:
+    """The run summary from every stage's result."""
+    return RunSummary(
+        run.run_id, results["ingest"], results["episodes"].counts, results["learn"], results["evaluate"]
+    )
 
 
 def run_all(config: Config) -> RunSummary:
     """Every stage in order, without Prefect."""
     run = Run(config)
-    ingested = ingest(config)
-    counts = episodes(config, run)
-    behavior = learn(config, run)
-    evaluated = evaluate(config, run)
-    finish(config, run)
-    return RunSummary(run.run_id, ingested, counts, behavior, evaluated)
+    results = {name: STAGE_FUNCTIONS[name](config, run) for name in STAGES}
+    finish(config, run, results)
+    return summary(run, results)

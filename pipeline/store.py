@@ -15,7 +15,15 @@ from typing import Any
 import duckdb
 import polars as pl
 
-SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
+
+def _sql_dir() -> Path:
+    # An installed wheel carries the SQL files as pipeline/sql/; a checkout keeps them at the top.
+    here = Path(__file__).resolve().parent
+    installed = here / "sql"
+    return installed if installed.is_dir() else here.parent / "sql"
+
+
+SQL_DIR = _sql_dir()
 
 
 class StoreError(RuntimeError):
@@ -74,6 +82,16 @@ def frame(con: duckdb.DuckDBPyConnection, text: str, params: dict[str, Any] | No
     return con.sql(text, params=params_for(text, params or {}) or None).pl()
 
 
+def replace_table(con: duckdb.DuckDBPyConnection, name: str, frame: pl.DataFrame) -> int:
+    """Replace warehouse table ``name`` with ``frame``; return its row count."""
+    con.register("_frame", frame.to_arrow())
+    try:
+        execute(con, f"create or replace table {name} as select * from _frame")
+    finally:
+        con.unregister("_frame")
+    return frame.height
+
+
 def _has_code(statement: str) -> bool:
     return any(line.strip() and not line.strip().startswith("--") for line in statement.splitlines())
 
@@ -101,3 +119,15 @@ def connect_ledger(ledger: Path) -> duckdb.DuckDBPyConnection:
     execute(con, "set variable ledger_root = $root", {"root": str(Path(ledger).resolve())})
     run_sql(con, "views")
     return con
+
+
+@contextmanager
+def transaction(con: duckdb.DuckDBPyConnection) -> Iterator[duckdb.DuckDBPyConnection]:
+    """Everything written inside commits together, or is rolled back if anything raises."""
+    execute(con, "begin transaction")
+    try:
+        yield con
+    except BaseException:
+        execute(con, "rollback")
+        raise
+    execute(con, "commit")
