@@ -6,6 +6,9 @@ nothing here transforms data, so every step can be run and tested without Prefec
 
 from __future__ import annotations
 
+import logging
+from collections.abc import Iterator
+from contextlib import contextmanager
 from typing import Any
 
 from prefect import flow, task
@@ -14,6 +17,32 @@ from prefect.cache_policies import NO_CACHE
 from pipeline import config as config_module
 from pipeline import stages
 from pipeline.ledger import Run
+
+
+@contextmanager
+def quiet_tracebacks(errors: tuple[type[BaseException], ...]) -> Iterator[None]:
+    """Print failed tasks and flows caused by ``errors`` without their traceback, on the terminal only.
+
+    These are the user's mistakes (settings, files, order of stages), answered in one line by the
+    caller; Prefect's API log handler still receives the whole record, so the UI keeps the detail.
+    """
+
+    def strip(record: logging.LogRecord) -> bool:
+        if record.exc_info and isinstance(record.exc_info[1], errors):
+            record.exc_info, record.exc_text = None, None
+        return True
+
+    # Prefect 3 puts its console handler on the root logger (older releases on "prefect").
+    handlers = logging.getLogger().handlers + logging.getLogger("prefect").handlers
+    consoles = [h for h in handlers if isinstance(h, logging.StreamHandler)]
+    for handler in consoles:
+        handler.addFilter(strip)
+    try:
+        yield
+    finally:
+        for handler in consoles:
+            handler.removeFilter(strip)
+
 
 STAGE_TASKS = {
     name: task(stages.STAGE_FUNCTIONS[name], name=name, cache_policy=NO_CACHE) for name in stages.STAGES

@@ -1,7 +1,8 @@
 """The ``thermal-ledger`` command: one subcommand per stage, plus ``run`` for all of them.
 
 Exit code 0 on success; 1 when any landing file was refused (the rest still
-loads); 2 for unusable settings or a stage that cannot run.
+loads); 2 for unusable settings or a stage that cannot run. A user's mistake is
+answered by one line on stderr, never a traceback.
 """
 
 from __future__ import annotations
@@ -9,33 +10,60 @@ from __future__ import annotations
 import argparse
 import datetime as dt
 import sys
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
 import polars as pl
+from rich import box
+from rich.console import Console
+from rich.table import Table
 
 from pipeline import config as config_module
 from pipeline import ingest as ingestion
 from pipeline import stages
-from pipeline.config import ConfigError
+from pipeline.behavior import BehaviorInputError
+from pipeline.config import Config, ConfigError
+from pipeline.estimators import EstimatorInputError
 from pipeline.ingest import IngestError
 from pipeline.ledger import Run
+from pipeline.policies import PolicyError
 from pipeline.store import StoreError
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE = 0, 1, 2
+
+USER_ERRORS: tuple[type[Exception], ...] = (
+    ConfigError,
+    stages.StageError,
+    IngestError,
+    StoreError,
+    BehaviorInputError,
+    EstimatorInputError,
+    PolicyError,
+)
+"""Errors caused by the user's settings, files or order of stages: one line and exit 2."""
+
+SETTINGS_HINT = (
+    "Every setting, its unit, default and allowed values: SETTINGS.md, or `thermal-ledger settings`."
+)
 
 
 def _common(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--lake", type=Path, help="folder holding landing/ (default: sample_lake)")
     parser.add_argument("--out", type=Path, help="folder for warehouse.duckdb and ledger/ (default: out)")
-    parser.add_argument("--config", type=Path, help="TOML file of settings (see DEVELOPERS.md)")
+    parser.add_argument(
+        "--config",
+        type=Path,
+        help="TOML file of settings (example: sample_lake/settings.toml; see SETTINGS.md)",
+    )
     parser.add_argument("--seed", type=int, help="seed for every random draw")
     parser.add_argument(
         "--set",
         action="append",
         default=[],
         metavar="KEY=VALUE",
-        help="override one setting, TOML syntax (repeatable), e.g. --set recovery_hours=2",
+        help="override one setting, TOML syntax (repeatable), e.g. --set recovery_hours=2;"
+        " dotted keys reach into tables: --set state.price_tiers=2",
     )
 
 
@@ -44,6 +72,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="thermal-ledger",
         description="Learn and audit thermostat setpoint policies from utility interval data.",
+        epilog=SETTINGS_HINT,
     )
     sub = parser.add_subparsers(dest="stage", required=True, metavar="STAGE")
     helps = {
@@ -76,45 +105,94 @@ def build_parser() -> argparse.ArgumentParser:
         help="also roll out the default candidates for their true values",
     )
     for name, text in helps.items():
-        p = sub.add_parser(name, help=text, description=text)
+        p = sub.add_parser(name, help=text, description=text, epilog=SETTINGS_HINT)
         _common(p)
         if name == "run":
             p.add_argument(
                 "--no-prefect", action="store_true", help="run the stages directly, without a Prefect flow"
             )
+    ref = sub.add_parser(
+        "settings",
+        help="list every setting: meaning, unit, default, allowed values and the stages it shapes",
+        description="The settings reference (the committed SETTINGS.md is this command's --markdown output).",
+    )
+    ref.add_argument(
+        "--markdown", action="store_true", help="plain markdown (the default when not a terminal)"
+    )
     return parser
 
 
 def overrides_from(args: argparse.Namespace) -> dict[str, Any]:
-    """Settings given on the command line: --set items, then the explicit flags."""
+    """Settings given by ``--set`` items, in order (a later one wins)."""
     overrides: dict[str, Any] = {}
     for item in args.set:
         overrides.update(config_module.parse_override(item))
-    for flag in ("lake", "out", "seed"):
-        value = getattr(args, flag, None)
-        if value is not None:
-            overrides[flag] = str(value) if isinstance(value, Path) else value
     return overrides
 
 
-def _table(frame: pl.DataFrame) -> str:
-    with pl.Config(
-        tbl_rows=60, tbl_cols=20, tbl_width_chars=160, tbl_hide_dataframe_shape=True, fmt_str_lengths=40
-    ):
-        return str(frame)
+def flags_from(args: argparse.Namespace) -> dict[str, Any]:
+    """Settings given by the explicit flags --lake, --out and --seed."""
+    flags = {flag: getattr(args, flag, None) for flag in ("lake", "out", "seed")}
+    return {k: str(v) if isinstance(v, Path) else v for k, v in flags.items() if v is not None}
 
 
-def print_ingest(summary: stages.IngestSummary) -> None:
+# ---- output ------------------------------------------------------------------------------------
+
+
+def _console() -> Console:
+    # Off a terminal: no colour, and wide enough that no header wraps.
+    tty = sys.stdout.isatty()
+    return Console(file=sys.stdout, no_color=not tty, highlight=False, width=None if tty else 240)
+
+
+def _table(title: str | None, columns: Sequence[str], rows: Sequence[Sequence[Any]]) -> Table:
+    """A table with plain labels; numbers right-aligned, headers never wrapped."""
+    table = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+    numeric = [all(isinstance(r[i], int | float) or r[i] is None for r in rows) for i in range(len(columns))]
+    for label, is_number in zip(columns, numeric, strict=True):
+        table.add_column(label, justify="right" if is_number and rows else "left", no_wrap=True)
+    for row in rows:
+        table.add_row(*(_cell(v) for v in row))
+    return table
+
+
+def _cell(value: Any) -> str:
+    if value is None:
+        return "-"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, int):
+        return f"{value:,}"
+    if isinstance(value, float):
+        return f"{value:,}"
+    return str(value)
+
+
+def print_ingest(summary: stages.IngestSummary, console: Console | None = None) -> None:
     """The per-file table of counts, then a line for every refused or missing file."""
-    files = summary.files.with_columns(pl.col("seconds").round(2))
-    print(_table(files.drop("message")))
+    console = console or _console()
+    files = summary.files
+    rows = files.select(
+        "source_file",
+        "folder",
+        "status",
+        "rows_read",
+        "rows_loaded",
+        "rows_quarantined",
+        "rows_duplicate",
+        pl.col("seconds").round(2),
+    ).rows()
+    labels = ("file", "folder", "status", "rows read", "loaded", "quarantined", "duplicate", "seconds")
+    console.print(_table("landing files", labels, rows))
     totals = files.select(pl.sum("rows_read", "rows_loaded", "rows_quarantined", "rows_duplicate")).row(0)
-    print("total rows read {:,}, loaded {:,}, quarantined {:,}, duplicate {:,}".format(*totals))
+    console.print("total rows read {:,}, loaded {:,}, quarantined {:,}, duplicate {:,}".format(*totals))
     unchanged = files.filter(pl.col("status") == "unchanged").height
     if unchanged:
-        print(f"{unchanged} of {files.height} landing files already loaded and unchanged: not read again")
+        console.print(
+            f"{unchanged} of {files.height} landing files already loaded and unchanged: not read again"
+        )
     for row in files.filter(pl.col("status").is_in(["refused", "missing"])).iter_rows(named=True):
-        print(f"{row['status']}: {row['message']}")
+        console.print(f"{row['status']}: {row['message']}", markup=False)
 
 
 def _progress(done: int, total: int, result: ingestion.FileResult) -> None:
@@ -126,40 +204,73 @@ def _progress(done: int, total: int, result: ingestion.FileResult) -> None:
     )
 
 
-def print_summary(summary: stages.RunSummary) -> None:
-    """The short end-of-run table: premises, episodes, policies, savings with intervals."""
-    counts = summary.episodes
-    savings = summary.evaluation.savings
-    premises = savings.filter(pl.col("scope") == "premise")["key"].n_unique()
-    print(f"\nrun {summary.run_id}")
-    print(
-        f"premises evaluated: {premises}   episodes used: {counts.episodes_used} of {counts.episodes}"
-        f"   decision steps: {counts.steps}"
-    )
-    print(
-        f"weekday away episodes per premise and weekday: {counts.weekday_episodes_per_weekday:.2f}"
-        f"   decisions per episode: {counts.mean_decisions:.1f}   clipped actions: {counts.clipped_actions}"
-    )
+def print_episodes(counts: stages.EpisodeCounts, console: Console | None = None) -> None:
+    """What the episode build made, and why episodes were left out."""
+    console = console or _console()
+    rows = [
+        ("premise-hours on the grid", counts.hours),
+        ("away episodes found", counts.episodes),
+        ("away episodes used", counts.episodes_used),
+        ("decision steps", counts.steps),
+        ("decisions per used episode", round(counts.mean_decisions, 2)),
+        ("weekday away episodes per premise and weekday", round(counts.weekday_episodes_per_weekday, 2)),
+        ("logged actions clipped to the action set", counts.clipped_actions),
+    ]
+    console.print(_table("episodes", ("", "count"), rows))
     if counts.excluded:
-        print("episodes excluded: " + ", ".join(f"{k} {v}" for k, v in sorted(counts.excluded.items())))
-    print(summary.behavior.describe())
-    portfolio = savings.filter(pl.col("scope") == "portfolio").select(
-        "policy_name",
-        "mode",
-        pl.when(pl.col("recommended"))
-        .then(pl.col("estimator") + " *")
-        .otherwise("estimator")
-        .alias("estimator"),
-        "status",
-        "n_episodes",
-        pl.col("savings_usd_per_episode").round(3),
-        pl.col("ci_low").round(3),
-        pl.col("ci_high").round(3),
-        pl.col("lower_bound_usd").round(3),
-        pl.col("ess").round(1),
-        pl.col("savings_usd_annual").round(2),
+        excluded = sorted(counts.excluded.items())
+        console.print(_table("episodes excluded, by reason", ("reason", "episodes"), excluded))
+
+
+def _savings_rows(savings: pl.DataFrame, scopes: tuple[str, ...]) -> list[tuple]:
+    return (
+        savings.filter(pl.col("scope").is_in(scopes))
+        .sort(
+            "scope", "key", "policy_name", "mode", "estimator", descending=[True, False, False, False, False]
+        )
+        .select(
+            "scope",
+            "key",
+            "policy_name",
+            "mode",
+            pl.when(pl.col("recommended"))
+            .then(pl.col("estimator") + " *")
+            .otherwise("estimator")
+            .alias("estimator"),
+            "status",
+            "n_episodes",
+            pl.col("savings_usd_per_episode", "ci_low", "ci_high", "lower_bound_usd").round(3),
+            pl.col("ess").round(1),
+            pl.col("savings_usd_annual").round(2),
+        )
+        .rows()
     )
-    horizon = summary.evaluation.horizon.select(
+
+
+_SAVINGS_LABELS = (
+    "scope",
+    "key",
+    "policy",
+    "mode",
+    "estimator",
+    "status",
+    "episodes",
+    "savings USD/episode",
+    "interval low USD",
+    "interval high USD",
+    "lower bound USD",
+    "ESS",
+    "USD/premise/year",
+)
+
+
+def print_evaluation(
+    evaluation: stages.EvaluationSummary, confidence: float, console: Console | None = None
+) -> None:
+    """Portfolio and cohort savings, the weight spread per decision-point choice, where premise rows are."""
+    console = console or _console()
+    level = f"{confidence:.0%}"
+    horizon = evaluation.horizon.select(
         "decision_points",
         "mode",
         "policy_name",
@@ -167,15 +278,137 @@ def print_summary(summary: stages.RunSummary) -> None:
         pl.col("ess").round(1),
         pl.col("ess_share").round(3),
         pl.col("max_weight_share").round(3),
+    ).rows()
+    console.print(
+        _table(
+            "importance-weight spread per choice of decision points (fewer decisions, tamer weights)",
+            (
+                "decision points",
+                "mode",
+                "policy",
+                "decisions/episode",
+                "ESS",
+                "ESS share",
+                "max weight share",
+            ),
+            horizon,
+        )
     )
-    print("importance-weight spread per choice of decision points (fewer decisions, tamer weights):")
-    print(_table(horizon))
-    print(
-        "portfolio savings per episode, USD (95 % interval, lower bound), and per premise per year"
-        " (* recommended estimator):"
+    title = f"savings per episode with {level} interval and lower bound, per premise per year (* recommended)"
+    console.print(_table(title, _SAVINGS_LABELS, _savings_rows(evaluation.savings, ("portfolio", "cohort"))))
+    premises = evaluation.savings.filter(pl.col("scope") == "premise")
+    console.print(
+        f"{premises.height:,} premise rows ({premises['key'].n_unique():,} premises) not shown:"
+        " see the ledger's savings table (scope = 'premise')"
+        " or the analyst view savings_by_premise (sql/views.sql)."
     )
-    print(_table(portfolio))
-    print("Estimates only: local codes, program rules and licensed practice govern what is sent to a device.")
+
+
+def print_summary(
+    summary: stages.RunSummary, confidence: float = 0.95, console: Console | None = None
+) -> None:
+    """The end-of-run summary: episodes, behaviour model, savings with intervals, and the caution."""
+    console = console or _console()
+    console.print(f"\nrun {summary.run_id}", markup=False)
+    print_episodes(summary.episodes, console)
+    console.print(summary.behavior.describe(), markup=False)
+    print_evaluation(summary.evaluation, confidence, console)
+    console.print(
+        "Estimates only: local codes, program rules and licensed practice govern what is sent to a device."
+    )
+
+
+def settings_markdown() -> str:
+    """The settings reference as markdown: the text of the committed SETTINGS.md."""
+    lines = [
+        "# Settings",
+        "",
+        "Generated by `thermal-ledger settings --markdown` from `pipeline/config.py`; do not edit by hand.",
+        "Give them in a TOML file (`--config FILE.toml`, example: `sample_lake/settings.toml`) or one at a",
+        "time with `--set key=value` (TOML value syntax; dotted keys reach into tables, e.g.",
+        "`--set state.price_tiers=2`). Every value is checked when the settings are read. `stages` are the",
+        "stages whose results a setting shapes: change it and those stages (and the ones after) must run",
+        "again.",
+        "",
+        "| setting | default | unit | allowed | stages | meaning |",
+        "|---|---|---|---|---|---|",
+    ]
+    for row in config_module.settings_reference():
+        cells = (
+            f"`{row.key}`",
+            f"`{row.default}`" if row.default else "",
+            row.unit,
+            row.allowed,
+            ", ".join(row.stages),
+            row.meaning,
+        )
+        lines.append("| " + " | ".join(c.replace("|", "\\|") for c in cells) + " |")
+    return "\n".join(lines) + "\n"
+
+
+def print_settings(markdown: bool) -> None:
+    """The settings reference: a rich table on a terminal, markdown otherwise or when asked."""
+    if markdown or not sys.stdout.isatty():
+        sys.stdout.write(settings_markdown())
+        return
+    rows = [
+        (r.key, r.default, r.unit, r.allowed, ", ".join(r.stages), r.meaning)
+        for r in config_module.settings_reference()
+    ]
+    table = Table(title="settings", box=box.SIMPLE_HEAD, show_lines=True)
+    for label in ("setting", "default", "unit", "allowed", "stages", "meaning"):
+        table.add_column(label, overflow="fold")
+    for row in rows:
+        table.add_row(*row)
+    Console().print(table)
+
+
+# ---- running -----------------------------------------------------------------------------------
+
+
+def _require_lake(config: Config) -> None:
+    landing = Path(config.lake) / "landing"
+    if not landing.is_dir():
+        raise IngestError(
+            f"--lake {config.lake}: no landing/ folder there; give the folder that holds landing/"
+            " (e.g. thermal-ledger run --lake sample_lake)"
+        )
+
+
+def _run_flow(args: argparse.Namespace, overrides: dict[str, Any]) -> stages.RunSummary:
+    from flows.thermal_run import quiet_tracebacks, thermal_ledger_run
+
+    with quiet_tracebacks(USER_ERRORS):
+        state = thermal_ledger_run(str(args.config) if args.config else None, overrides, return_state=True)
+    # A failed flow's state re-raises the stage's own exception, so user errors stay one line.
+    return state.result()
+
+
+def _run_stage(args: argparse.Namespace) -> int:
+    overrides, flags = overrides_from(args), flags_from(args)
+    config = config_module.load(args.config, overrides, flags)
+    if args.stage == "ingest":
+        _require_lake(config)
+        summary = stages.ingest(config, Run(config), progress=_progress)
+        print_ingest(summary)
+        return EXIT_REFUSED if summary.refused else EXIT_OK
+    if args.stage == "run":
+        _require_lake(config)
+        result = stages.run_all(config) if args.no_prefect else _run_flow(args, {**overrides, **flags})
+        console = _console()
+        print_ingest(result.ingest, console)
+        print_summary(result, config.confidence, console)
+        return EXIT_REFUSED if result.ingest.refused else EXIT_OK
+    run = Run(config)
+    result = stages.STAGE_FUNCTIONS[args.stage](config, run)
+    if args.stage == "episodes":
+        print_episodes(result.counts)
+    elif args.stage == "learn":
+        _console().print(f"{result.describe()}; behaviour policy rows: {result.rows:,}", markup=False)
+    elif args.stage == "evaluate":
+        print_evaluation(result, config.confidence)
+    stages.finish(config, run, {args.stage: result})
+    return EXIT_OK
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -187,35 +420,12 @@ def main(argv: list[str] | None = None) -> int:
         summary = main_simulate(args)
         print(", ".join(f"{k}: {v}" for k, v in summary.items() if not isinstance(v, dict | list)))
         return EXIT_OK
-    try:
-        overrides = overrides_from(args)
-        config = config_module.load(args.config, overrides)
-        if args.stage == "ingest":
-            run = Run(config)
-            summary = stages.ingest(config, run, progress=_progress)
-            print_ingest(summary)
-            return EXIT_REFUSED if summary.refused else EXIT_OK
-        if args.stage == "run":
-            if args.no_prefect:
-                result = stages.run_all(config)
-            else:
-                from flows.thermal_run import thermal_ledger_run
-
-                result = thermal_ledger_run(str(args.config) if args.config else None, overrides)
-            print_ingest(result.ingest)
-            print_summary(result)
-            return EXIT_REFUSED if result.ingest.refused else EXIT_OK
-        run = Run(config)
-        result = stages.STAGE_FUNCTIONS[args.stage](config, run)
-        if args.stage == "episodes":
-            print(result.counts)
-        elif args.stage == "learn":
-            print(f"{result.describe()}; behaviour policy rows: {result.rows}")
-        elif args.stage == "evaluate":
-            print(_table(result.savings))
-        stages.finish(config, run, {args.stage: result})
+    if args.stage == "settings":
+        print_settings(args.markdown)
         return EXIT_OK
-    except (ConfigError, stages.StageError, IngestError, StoreError) as exc:
+    try:
+        return _run_stage(args)
+    except USER_ERRORS as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)
         return EXIT_USAGE
 

@@ -361,6 +361,7 @@ def test_unlogged_pairs_mix_the_premise_or_cohort_types_as_a_plain_loop_does():
 def test_the_registry_names_each_model_and_fit_behavior_uses_it():
     """BEHAVIOR_MODELS lists 'types' then 'counts'; fit_behavior builds the class the setting names."""
     from dataclasses import replace
+    from types import SimpleNamespace
 
     from pipeline.behavior import BEHAVIOR_MODELS, fit_behavior
     from pipeline.config import Config
@@ -370,8 +371,10 @@ def test_the_registry_names_each_model_and_fit_behavior_uses_it():
     steps = _opposite_habits(60)
     assert type(fit_behavior(steps, config)) is HabitTypes
     assert type(fit_behavior(steps, replace(config, behavior_model="counts"))) is CohortCounts
+    # Config itself refuses an unknown model, so the stand-in carries the same fields unvalidated.
+    unchecked = SimpleNamespace(**{**vars(config), "behavior_model": "mixture"})
     with pytest.raises(BehaviorInputError, match="must be one of types, counts"):
-        fit_behavior(steps, replace(config, behavior_model="mixture"))
+        fit_behavior(steps, unchecked)
 
 
 def test_stored_tables_that_cannot_rebuild_a_model_are_refused():
