@@ -74,11 +74,9 @@ def _behavior_models() -> tuple[str, ...]:
 
 
 def _estimator_names() -> tuple[str, ...]:
-    # Until pipeline.estimators publishes OFF_POLICY_NAMES, the off-policy estimators it has today.
-    try:
-        from pipeline.estimators import OFF_POLICY_NAMES
-    except ImportError:
-        return ("ordinary_is", "weighted_is", "per_decision_is", "weighted_per_decision_is", "doubly_robust")
+    # Imported when used, like the behaviour models: the registry owns the names.
+    from pipeline.estimators import OFF_POLICY_NAMES
+
     return tuple(OFF_POLICY_NAMES)
 
 
@@ -221,7 +219,7 @@ class Config:
     estimators: Annotated[
         tuple[Annotated[Name, AfterValidator(_OneOf(_estimator_names))], ...], Field(min_length=1)
     ] = _setting(("weighted_is", "weighted_per_decision_is", "doubly_robust"), stages=("evaluate",))
-    """Off-policy estimators reported for every candidate (names in pipeline.estimators)."""
+    """Off-policy estimators reported for every candidate (names in pipeline.estimators.OFF_POLICY_NAMES)."""
     recommended_estimator: Annotated[Name, AfterValidator(_OneOf(_estimator_names))] = _setting(
         "weighted_is", stages=("evaluate",)
     )

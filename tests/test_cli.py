@@ -194,14 +194,14 @@ def prefect_logging(prefect_harness):
 def test_a_stage_failing_inside_the_flow_ends_in_one_line_without_traceback(
     prefect_logging, tmp_path, capsys, caplog
 ):
-    """A user error in a task (no usable steps) ends a Prefect run in one line, exit 2, no traceback."""
+    """A user error in a task (no meter files) ends a Prefect run in one line, exit 2, no traceback."""
     lake = write_landing(tmp_path, {"premises/p.csv": "premise_id\n"})
     code = main(["run", "--lake", str(lake), "--out", str(tmp_path / "out")])
     captured = capsys.readouterr()
     assert code == EXIT_USAGE
     ours = [line for line in captured.err.splitlines() if line.startswith("thermal-ledger:")]
-    assert len(ours) == 1 and ours[0].startswith("thermal-ledger: no usable decision steps")
-    failed = [r for r in caplog.records if "StageError" in r.getMessage()]
+    assert len(ours) == 1 and ours[0].startswith("thermal-ledger: no meter files")
+    failed = [r for r in caplog.records if "NoMeterFiles" in r.getMessage()]
     assert failed, "Prefect logged the failed task and flow"
     assert "Traceback" not in captured.out + captured.err + caplog.text
 

@@ -10,6 +10,7 @@ from pipeline import estimators
 from pipeline.behavior import CohortCounts, HabitTypes
 from pipeline.config import Config
 from pipeline.estimators import OFF_POLICY_NAMES
+from pipeline.estimators.registry import off_policy_estimator
 from pipeline.evaluate import (
     _finish_savings,
     _shrink_to_cohort,
@@ -326,8 +327,8 @@ def test_sample_lake_ledger_tables_have_their_grain_and_consistent_annual_figure
 
 
 def test_an_estimator_outside_the_registry_is_refused_by_name():
-    """evaluate_policy accepts only registered off-policy estimators and names the valid ones."""
-    steps = _logged_steps(Config())
-    b = np.full(steps.height, 0.2)
+    """Settings and the registry accept only registered off-policy estimators, naming the valid ones."""
+    with pytest.raises(ValueError, match="must be one of 'ordinary_is'"):
+        Config(estimators=("diagnostics",))
     with pytest.raises(estimators.EstimatorInputError, match="not an off-policy estimator; use one of"):
-        evaluate_policy(steps, b, b, DAYS, Config(estimators=("diagnostics",)))
+        off_policy_estimator("diagnostics")

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import shutil
 import subprocess
 import sys
 import zipfile
@@ -22,22 +23,12 @@ SETTINGS = {"bootstrap_replicates": 40}
 @pytest.fixture(scope="module")
 def wheel(tmp_path_factory) -> Path:
     out = tmp_path_factory.mktemp("wheel")
-    subprocess.run(
-        [
-            sys.executable,
-            "-m",
-            "pip",
-            "wheel",
-            "--quiet",
-            "--no-deps",
-            "--no-build-isolation",
-            "-w",
-            out,
-            ROOT,
-        ],
-        check=True,
-        capture_output=True,
-    )
+    # Built from a copy: setuptools reuses an in-tree build/ folder, which may hold stale modules.
+    source = tmp_path_factory.mktemp("source") / "thermal-ledger"
+    skip = shutil.ignore_patterns(".*", "build", "out", "bench_out", "*.egg-info", "__pycache__")
+    shutil.copytree(ROOT, source, ignore=skip)
+    pip = [sys.executable, "-m", "pip", "wheel", "--quiet", "--no-deps", "--no-build-isolation"]
+    subprocess.run([*pip, "-w", out, source], check=True, capture_output=True)
     (built,) = out.glob("thermal_ledger-*.whl")
     return built
 
