@@ -82,12 +82,8 @@ def build(con: duckdb.DuckDBPyConnection, config: Config) -> EpisodeCounts:
     episodes = store.build_table(con, "episode", params)
     raw_steps = store.query(con, "step", params).sort("episode_id", "t")
     steps = add_state_keys(raw_steps, config)
-    con.register("step_frame", steps.to_arrow())
-    store.execute(con, "create or replace table step as select * from step_frame")
-    con.unregister("step_frame")
-    con.register("lookup_frame", config.state.lookup().to_arrow())
-    store.execute(con, "create or replace table state_lookup as select * from lookup_frame")
-    con.unregister("lookup_frame")
+    store.replace_table(con, "step", steps)
+    store.replace_table(con, "state_lookup", config.state.lookup())
     rate = store.execute(
         con,
         "with days as (select premise_id,"

@@ -184,7 +184,10 @@ def _store_behavior(con, model: BehaviorModel, prefix: str) -> None:
 
 
 def _load_behavior(con, prefix: str, config: Config) -> BehaviorModel:
-    tables = {name: store.frame(con, f"select * from {prefix}_{name}") for name in BEHAVIOR_TABLES}
+    tables = {
+        name: store.frame(con, f"select * from {store.quote_identifier(f'{prefix}_{name}')}")
+        for name in BEHAVIOR_TABLES
+    }
     return load_behavior(tables, config.actions, config.state)
 
 

@@ -103,7 +103,7 @@ def replace_table(con: duckdb.DuckDBPyConnection, name: str, frame: pl.DataFrame
     """Replace warehouse table ``name`` with ``frame``; return its row count."""
     con.register("_frame", frame.to_arrow())
     try:
-        execute(con, f"create or replace table {name} as select * from _frame")
+        execute(con, f"create or replace table {quote_identifier(name)} as select * from _frame")
     finally:
         con.unregister("_frame")
     return frame.height
