@@ -135,11 +135,11 @@ def _prepare(
                 f"{column[row]!r} at row {row} and {column[start]!r} at its start"
             )
         first = column.gather(starts)
-        # Dense ranks give sorted group codes in polars, without numpy object arrays of strings.
-        group = first.rank("dense").to_numpy().astype(np.int64) - 1
-        representative = np.empty(int(group.max()) + 1, dtype=np.int64)
-        representative[group] = np.arange(group.size)
-        labels = first.gather(representative).rename("group")
+        # Codes looked up among the sorted distinct labels: a hash lookup per episode, no sort of
+        # every episode's label and no numpy object arrays of strings.
+        labels = first.unique().sort().rename("group")
+        codes = pl.Series(np.arange(labels.len(), dtype=np.int64))
+        group = first.replace_strict(labels, codes).to_numpy()
     else:
         group = np.zeros(starts.size, dtype=np.int64)
         labels = pl.Series("group", [ALL_GROUP], dtype=pl.String)
