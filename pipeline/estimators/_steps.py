@@ -64,7 +64,7 @@ class _Steps:
     @cached_property
     def episode(self) -> np.ndarray:
         """(n_steps,) episode code of each step, 0 .. n_episodes - 1 in frame order."""
-        return np.repeat(np.arange(self.n_episodes), self.lengths)
+        return np.cumsum(self.t == 0) - 1
 
     @cached_property
     def discount(self) -> np.ndarray:
@@ -227,7 +227,15 @@ def _segment_cumsum(values: np.ndarray, s: _Steps) -> np.ndarray:
 
 def _episode_sum(values: np.ndarray, s: _Steps) -> np.ndarray:
     """Sum of ``values`` (n_steps,) per episode, shape (n_episodes,)."""
-    return np.add.reduceat(values, s.starts)
+    return np.bincount(s.episode, weights=values, minlength=s.n_episodes)
+
+
+def _group_sums(values: np.ndarray, group: np.ndarray, n_groups: int) -> np.ndarray:
+    """Sums of ``values`` (m,) by ``group`` code (m,), shape (n_groups,).
+
+    One group is a plain sum: a bincount into a single bin waits on every add in turn.
+    """
+    return np.array([values.sum()]) if n_groups == 1 else np.bincount(group, values, n_groups)
 
 
 def _discounted(values: np.ndarray, s: _Steps) -> np.ndarray:
@@ -303,10 +311,13 @@ def _previous_weights(weights: np.ndarray, s: _Steps) -> np.ndarray:
 
 def _weight_summary(weights: np.ndarray, group: np.ndarray, n_groups: int) -> tuple[np.ndarray, ...]:
     """Per group: sum, Kish ESS and largest share of the episode ``weights`` (n_episodes,)."""
-    total = np.bincount(group, weights=weights, minlength=n_groups)
-    squares = np.bincount(group, weights=weights * weights, minlength=n_groups)
-    largest = np.zeros(n_groups)
-    np.maximum.at(largest, group, weights)
+    total = _group_sums(weights, group, n_groups)
+    squares = _group_sums(weights * weights, group, n_groups)
+    if n_groups == 1:
+        largest = np.array([weights.max()])
+    else:
+        largest = np.zeros(n_groups)
+        np.maximum.at(largest, group, weights)
     ess = np.divide(total * total, squares, out=np.zeros(n_groups), where=squares > 0)
     share = np.divide(largest, total, out=np.full(n_groups, np.nan), where=total > 0)
     return total, ess, share

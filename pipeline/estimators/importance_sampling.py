@@ -25,6 +25,7 @@ from pipeline.estimators._steps import (
     EstimatorInputError,
     _discounted,
     _episode_sum,
+    _group_sums,
     _keyed_sums,
     _prepare,
     _previous_weights,
@@ -154,13 +155,13 @@ def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) 
     n_cells, n_groups = terms.n_cells, s.n_groups
     n_keys = n_groups * n_cells
     if multiplicity is None:
-        # Every multiplicity is 1: a bincount sums the entries by key in any order, with no sort.
+        # Every multiplicity is 1: entries are summed by key in any order, with no sort.
         rows = 1
-        numerator = np.bincount(key, weights=terms.numerator, minlength=n_keys)
-        denominator = np.bincount(key, weights=terms.denominator, minlength=n_keys)
+        numerator = _group_sums(terms.numerator, key, n_keys)
+        denominator = _group_sums(terms.denominator, key, n_keys)
         carried = None
         if terms.carry is not None:
-            carried = np.bincount(carry_key, weights=terms.carry[2], minlength=n_keys)
+            carried = _group_sums(terms.carry[2], carry_key, n_keys)
     else:
         if (key[1:] < key[:-1]).any() or (carry_key[1:] < carry_key[:-1]).any():
             terms = _in_key_order(terms, s)
@@ -188,7 +189,7 @@ def _estimate_frame(s: _Steps, terms: _Terms) -> pl.DataFrame:
         {
             "group": s.labels,
             "estimate": _evaluate(terms, s)[0],
-            "n_episodes": np.bincount(s.group, minlength=s.n_groups).astype(np.int64),
+            "n_episodes": np.bincount(s.group, minlength=s.n_groups).astype(np.int64, copy=False),
             "ess": ess,
             "max_weight_share": share,
         }
