@@ -116,7 +116,9 @@ def _prepare(
     new_episode = episode_id[1:] != episode_id[:-1]
     # t counts 0, 1, 2, ... within episodes exactly when it is 0 at the first row and, further
     # on, 0 where the id changes and one more than the row before where it does not.
-    if t[0] != 0 or not np.array_equal(t[1:], (t[:-1] + 1) * ~new_episode):
+    expected = np.add(t[:-1], 1)
+    np.multiply(expected, ~new_episode, out=expected)
+    if t[0] != 0 or not np.array_equal(t[1:], expected):
         _raise_t_error(episode_id, t, new_episode)
     starts = np.flatnonzero(t == 0)
     lengths = np.diff(np.append(starts, t.size))
@@ -259,26 +261,33 @@ def _cumulative_weights(pi: np.ndarray, b: np.ndarray, s: _Steps) -> np.ndarray:
     normal float64 range; otherwise summed in log space (``_log_space_weights``).
     """
     if pi.min() > 0.0:
-        weights = _segment_cumprod(pi / b, s)
+        weights = _segment_cumprod(np.divide(pi, b), s, in_place=True)
         if np.finfo(np.float64).tiny <= weights.min() and weights.max() <= _MAX_WEIGHT:
             return weights
     return _log_space_weights(pi, b, s)
 
 
-def _segment_cumprod(values: np.ndarray, s: _Steps) -> np.ndarray:
+def _segment_cumprod(values: np.ndarray, s: _Steps, in_place: bool = False) -> np.ndarray:
     """Inclusive cumulative product of ``values`` (n_steps,) restarting at each episode.
 
     A log-step scan (Hillis and Steele 1986): after the pass with offset k each
     row holds the product of its last 2k values within the episode, so a frame
     whose longest episode has L steps takes ceil(log2 L) whole-array passes.
+    ``in_place`` overwrites ``values`` instead of copying them.
     """
-    out = values.copy()
+    out = values if in_place else values.copy()
     offset, longest = 1, int(s.lengths.max())
+    # Three scratch arrays reused by every pass: fresh step-sized temporaries each cost page faults.
+    same, rest, factor = np.empty(out.size), np.empty(out.size), np.empty(out.size)
     while offset < longest:
-        # 1 where the row offset back is in the same episode. x * 1 + 0 == x and x * 0 + 1 == 1
-        # exactly, and plain arithmetic runs several times faster than a masked multiply.
-        same = (s.t[offset:] >= offset).astype(np.float64)
-        out[offset:] *= out[:-offset] * same + (1.0 - same)
+        m = out.size - offset
+        # same is 1 where the row offset back is in the same episode; x * 1 + 0 == x and
+        # x * 0 + 1 == 1 exactly, and plain arithmetic runs faster than a masked multiply.
+        np.greater_equal(s.t[offset:], offset, out=same[:m])
+        np.subtract(1.0, same[:m], out=rest[:m])
+        np.multiply(out[:-offset], same[:m], out=factor[:m])
+        np.add(factor[:m], rest[:m], out=factor[:m])
+        out[offset:] *= factor[:m]
         offset *= 2
     return out
 
