@@ -187,6 +187,51 @@ def test_estimator_matches_reference_loop(estimator, gamma):
         assert_allclose([got[g] for g in groups], [want[g] for g in groups], rtol=1e-10, atol=1e-12)
 
 
+@pytest.mark.parametrize("gamma", [1.0, 0.95])
+@pytest.mark.parametrize("estimator", OFF_POLICY)
+def test_long_episodes_with_groups_match_reference_loop(estimator, gamma):
+    """Episodes of up to 40 steps in many groups, all pi > 0, take the direct product of ratios
+    (six doubling passes) and still equal the plain loop."""
+    rng = np.random.default_rng(17)
+    lengths = rng.integers(1, 41, 150)
+    n = int(lengths.sum())
+    names = np.array([f"home-{k:02d}" for k in range(12)])
+    steps = _frame(
+        {
+            "episode_id": np.repeat(np.arange(150) * 2, lengths),
+            "t": np.concatenate([np.arange(k) for k in lengths]),
+            "reward": rng.normal(-1.0, 0.7, n),
+            "pi": rng.uniform(0.6, 1.0, n),
+            "b": rng.uniform(0.6, 1.0, n),
+            "q_hat": rng.normal(-1.0, 0.5, n),
+            "v_hat": rng.normal(-1.0, 0.5, n),
+            "group": np.repeat(names[rng.integers(0, 12, 150)], lengths),
+        }
+    )
+    got = _by_group(estimator(steps, gamma=gamma))
+    want = ref_estimate(steps, estimator.__name__, gamma)
+    groups = sorted(want)
+    assert sorted(got) == groups
+    assert_allclose([got[g] for g in groups], [want[g] for g in groups], rtol=1e-12, atol=1e-12)
+
+
+def test_weights_that_underflow_midway_are_summed_in_log_space():
+    """A running weight that dips below the float64 range and recovers keeps its exact final value
+    (1e-200 * 1e-200 * 1e150 * 1e150 = 1e-100), where a direct product would stick at 0."""
+    steps = pl.DataFrame(
+        {
+            "episode_id": [0, 0, 0, 0],
+            "t": [0, 1, 2, 3],
+            "reward": [0.0, 0.0, 0.0, 1.0],
+            "pi": [1e-200, 1e-200, 1.0, 1.0],
+            "b": [1.0, 1.0, 1e-150, 1e-150],
+        }
+    )
+    exact = Fraction(1, 10**100)  # product of the four ratios, times the one reward of 1
+    assert ordinary_is(steps)["estimate"].item() == pytest.approx(float(exact), rel=1e-12, abs=0.0)
+    assert per_decision_is(steps)["estimate"].item() == pytest.approx(float(exact), rel=1e-12, abs=0.0)
+
+
 def test_weights_columns_match_kish_of_reference_trajectory_weights():
     """ess, max_weight_share and n_episodes describe the trajectory weights rho_i = prod pi/b."""
     steps = random_steps(7)
@@ -789,6 +834,20 @@ def test_unusable_steps_raise_a_specific_error(change, message):
     """Each kind of unusable frame raises EstimatorInputError saying what to fix."""
     with pytest.raises(EstimatorInputError, match=message):
         weighted_is(change(_small()))
+
+
+def test_order_and_group_errors_name_the_first_offending_row():
+    """The messages point at the first bad row and the value expected there."""
+    steps = _small()
+    with pytest.raises(EstimatorInputError, match=r"row 1 \(episode_id 0\) has t=2 where 1 was expected"):
+        weighted_is(steps.with_columns(t=pl.Series([0, 2, 0])))
+    with pytest.raises(EstimatorInputError, match=r"row 2 \(episode_id 1\) has t=1 where 0 was expected"):
+        weighted_is(steps.with_columns(t=pl.Series([0, 1, 1])))
+    three = pl.concat([steps, steps.tail(1).with_columns(t=pl.lit(1, dtype=pl.Int64))])
+    with pytest.raises(EstimatorInputError, match="episode_id 1 has 'y' at row 3 and 'x' at its start"):
+        weighted_is(three.with_columns(group=pl.Series(["z", "z", "x", "y"])))
+    with pytest.raises(EstimatorInputError, match="row 2 has episode_id 0 after 1"):
+        weighted_is(three.with_columns(episode_id=pl.Series([0, 1, 0, 0])))
 
 
 def test_unusable_options_raise_a_specific_error():

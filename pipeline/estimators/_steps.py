@@ -9,6 +9,7 @@ or steps.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 import polars as pl
@@ -20,6 +21,7 @@ _STEP_COLUMNS = ("episode_id", "t", "reward")
 _PROB_COLUMNS = ("pi", "b")
 # exp(709.8) is the largest finite float64; beyond this a weight cannot be represented.
 _MAX_LOG_WEIGHT = 700.0
+_MAX_WEIGHT = float(np.exp(_MAX_LOG_WEIGHT))
 
 
 class EstimatorInputError(ValueError):
@@ -30,8 +32,6 @@ class EstimatorInputError(ValueError):
 class _Steps:
     """Validated decision steps as flat arrays, with episode and group codes."""
 
-    episode: np.ndarray
-    """(n_steps,) episode code of each step, 0 .. n_episodes - 1 in frame order."""
     starts: np.ndarray
     """(n_episodes,) row of each episode's first step."""
     lengths: np.ndarray
@@ -40,8 +40,10 @@ class _Steps:
     """(n_episodes,) group code of each episode, 0 .. n_groups - 1."""
     labels: pl.Series
     """(n_groups,) group label of each code, sorted."""
-    discount: np.ndarray
-    """(n_steps,) gamma ** t."""
+    t: np.ndarray
+    """(n_steps,) decision index of each step within its episode, 0, 1, 2, ..."""
+    gamma: float
+    """Discount per decision step."""
     reward: np.ndarray | None
     """(n_steps,) reward, USD; None when the caller did not ask for it."""
 
@@ -58,6 +60,17 @@ class _Steps:
         """(n_episodes,) row of each episode's last step."""
         return self.starts + self.lengths - 1
 
+    # Built on first use: most estimators need neither, and each costs a pass over every step.
+    @cached_property
+    def episode(self) -> np.ndarray:
+        """(n_steps,) episode code of each step, 0 .. n_episodes - 1 in frame order."""
+        return np.cumsum(self.t == 0) - 1
+
+    @cached_property
+    def discount(self) -> np.ndarray:
+        """(n_steps,) gamma ** t."""
+        return np.power(self.gamma, self.t.astype(np.float64))
+
 
 # ---------------------------------------------------------------- validation
 
@@ -65,7 +78,11 @@ class _Steps:
 def _prepare(
     steps: pl.DataFrame, required: tuple[str, ...], gamma: float, nullable: tuple[str, ...] = ()
 ) -> _Steps:
-    """Check columns, order and group constancy; return the step arrays."""
+    """Check columns, order and group constancy; return the step arrays.
+
+    Each check is one cheap pass over whole arrays; only when it fails is the
+    offending row looked up for the message.
+    """
     if not isinstance(steps, pl.DataFrame):
         raise EstimatorInputError(f"steps must be a polars DataFrame, got {type(steps).__name__}")
     if not (isinstance(gamma, int | float) and 0.0 < gamma <= 1.0):
@@ -89,73 +106,89 @@ def _prepare(
             raise EstimatorInputError(f"column {name!r} has {nulls} null value(s); drop or fill them first")
 
     episode_id = steps["episode_id"].to_numpy()
-    back = np.flatnonzero(episode_id[1:] < episode_id[:-1])  # no diff: unsigned ids would wrap
-    if back.size:
-        row = int(back[0]) + 1
+    if (episode_id[1:] < episode_id[:-1]).any():  # no diff: unsigned ids would wrap
+        row = int(np.argmax(episode_id[1:] < episode_id[:-1])) + 1
         raise EstimatorInputError(
             f"steps must be sorted by (episode_id, t): row {row} has episode_id {episode_id[row]} "
             f"after {episode_id[row - 1]}; call steps.sort(['episode_id', 't'])"
         )
-    is_start = np.empty(episode_id.size, dtype=bool)
-    is_start[0] = True
-    np.not_equal(episode_id[1:], episode_id[:-1], out=is_start[1:])
-    starts = np.flatnonzero(is_start)
-    episode = np.cumsum(is_start) - 1
-    lengths = np.diff(np.append(starts, episode_id.size))
-    t = steps["t"].to_numpy().astype(np.int64)
-    expected = np.arange(t.size) - starts[episode]
-    off = np.flatnonzero(t != expected)
-    if off.size:
-        row = int(off[0])
-        raise EstimatorInputError(
-            f"t must count 0, 1, 2, ... within each episode: row {row} (episode_id {episode_id[row]}) "
-            f"has t={t[row]} where {expected[row]} was expected; sort by (episode_id, t) and "
-            "renumber t from 0 without gaps"
-        )
+    t = steps["t"].to_numpy().astype(np.int64, copy=False)
+    new_episode = episode_id[1:] != episode_id[:-1]
+    # t counts 0, 1, 2, ... within episodes exactly when it is 0 at the first row and, further
+    # on, 0 where the id changes and one more than the row before where it does not.
+    expected = np.add(t[:-1], 1)
+    np.multiply(expected, ~new_episode, out=expected)
+    if t[0] != 0 or not np.array_equal(t[1:], expected):
+        _raise_t_error(episode_id, t, new_episode)
+    starts = np.flatnonzero(t == 0)
+    lengths = np.diff(np.append(starts, t.size))
 
     if "group" in steps.columns:
         column = steps["group"]
         if column.null_count():
             raise EstimatorInputError(f"column 'group' has {column.null_count()} null value(s)")
-        first = column.gather(starts)
-        varying = np.flatnonzero((column != first.gather(episode)).to_numpy())
+        # Within an episode the first value unlike its start is also the first unlike the row before.
+        varying = np.flatnonzero((column[1:] != column[:-1]).to_numpy() & ~new_episode)
         if varying.size:
-            row = int(varying[0])
+            row = int(varying[0]) + 1
+            start = int(starts[np.searchsorted(starts, row, side="right") - 1])
             raise EstimatorInputError(
                 f"group must be constant within an episode: episode_id {episode_id[row]} has "
-                f"{column[row]!r} at row {row} and {first[int(episode[row])]!r} at its start"
+                f"{column[row]!r} at row {row} and {column[start]!r} at its start"
             )
-        # Dense ranks give sorted group codes in polars, without numpy object arrays of strings.
-        group = first.rank("dense").to_numpy().astype(np.int64) - 1
-        representative = np.empty(int(group.max()) + 1, dtype=np.int64)
-        representative[group] = np.arange(group.size)
-        labels = first.gather(representative).rename("group")
+        first = column.gather(starts)
+        # Codes looked up among the sorted distinct labels: a hash lookup per episode, no sort of
+        # every episode's label and no numpy object arrays of strings.
+        labels = first.unique().sort().rename("group")
+        codes = pl.Series(np.arange(labels.len(), dtype=np.int64))
+        group = first.replace_strict(labels, codes).to_numpy()
     else:
         group = np.zeros(starts.size, dtype=np.int64)
         labels = pl.Series("group", [ALL_GROUP], dtype=pl.String)
 
     reward = None
     if "reward" in required:
-        reward = steps["reward"].to_numpy().astype(np.float64)
-        bad = np.flatnonzero(~np.isfinite(reward))
+        reward = steps["reward"].to_numpy().astype(np.float64, copy=False)
+        _check_finite(reward, "reward")
+    return _Steps(starts, lengths, group, labels, t, float(gamma), reward)
+
+
+def _raise_t_error(episode_id: np.ndarray, t: np.ndarray, new_episode: np.ndarray) -> None:
+    """Name the first row whose t does not count 0, 1, 2, ... within its episode."""
+    starts = np.flatnonzero(np.concatenate(([True], new_episode)))
+    expected = np.arange(t.size) - np.repeat(starts, np.diff(np.append(starts, t.size)))
+    row = int(np.argmax(t != expected))
+    raise EstimatorInputError(
+        f"t must count 0, 1, 2, ... within each episode: row {row} (episode_id {episode_id[row]}) "
+        f"has t={t[row]} where {expected[row]} was expected; sort by (episode_id, t) and "
+        "renumber t from 0 without gaps"
+    )
+
+
+def _check_finite(values: np.ndarray, name: str) -> None:
+    # A finite sum rules out every NaN and infinity in one pass; only its failure needs a row.
+    if not np.isfinite(values.sum()):
+        bad = np.flatnonzero(~np.isfinite(values))
         if bad.size:
             raise EstimatorInputError(
-                f"column 'reward' has {bad.size} non-finite value(s), first at row {int(bad[0])}"
+                f"column {name!r} has {bad.size} non-finite value(s), first at row {int(bad[0])}"
             )
-    discount = np.power(float(gamma), t.astype(np.float64))
-    return _Steps(episode, starts, lengths, group.astype(np.int64), labels, discount, reward)
 
 
 def _probabilities(steps: pl.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     """``pi`` in [0, 1] and ``b`` in (0, 1], as float arrays (n_steps,)."""
-    pi = steps["pi"].to_numpy().astype(np.float64)
-    b = steps["b"].to_numpy().astype(np.float64)
+    pi = steps["pi"].to_numpy().astype(np.float64, copy=False)
+    b = steps["b"].to_numpy().astype(np.float64, copy=False)
     _check_range(pi, "pi", "target", allow_zero=True)
     _check_range(b, "b", "behaviour", allow_zero=False)
     return pi, b
 
 
 def _check_range(p: np.ndarray, name: str, role: str, allow_zero: bool) -> None:
+    # min and max pass over the array once each; NaN fails both comparisons and reaches the search.
+    low, high = p.min(), p.max()
+    if ((low >= 0.0) if allow_zero else (low > 0.0)) and high <= 1.0:
+        return
     inside = ((p >= 0.0) if allow_zero else (p > 0.0)) & (p <= 1.0)
     bad = np.flatnonzero(~inside)
     if bad.size:
@@ -199,6 +232,19 @@ def _episode_sum(values: np.ndarray, s: _Steps) -> np.ndarray:
     return np.bincount(s.episode, weights=values, minlength=s.n_episodes)
 
 
+def _group_sums(values: np.ndarray, group: np.ndarray, n_groups: int) -> np.ndarray:
+    """Sums of ``values`` (m,) by ``group`` code (m,), shape (n_groups,).
+
+    One group is a plain sum: a bincount into a single bin waits on every add in turn.
+    """
+    return np.array([values.sum()]) if n_groups == 1 else np.bincount(group, values, n_groups)
+
+
+def _discounted(values: np.ndarray, s: _Steps) -> np.ndarray:
+    """gamma ** t * ``values`` (n_steps,); the values themselves when gamma is 1, as 1.0 * x == x."""
+    return values if s.gamma == 1.0 else s.discount * values
+
+
 def _keyed_sums(key: np.ndarray, values: np.ndarray, n_keys: int) -> np.ndarray:
     """Sums of ``values`` (B, m) by ``key`` (m,), shape (B, n_keys); ``key`` must be non-decreasing."""
     out = np.zeros((values.shape[0], n_keys))
@@ -211,8 +257,45 @@ def _keyed_sums(key: np.ndarray, values: np.ndarray, n_keys: int) -> np.ndarray:
 def _cumulative_weights(pi: np.ndarray, b: np.ndarray, s: _Steps) -> np.ndarray:
     """rho_{0:t} = prod_{k <= t} pi_k / b_k within each episode, shape (n_steps,).
 
-    Summed in log space so long episodes do not under- or overflow midway; a
-    step with ``pi == 0`` zeroes the rest of its episode without taking log(0).
+    Multiplied directly when every pi is positive and no product leaves the
+    normal float64 range; otherwise summed in log space (``_log_space_weights``).
+    """
+    if pi.min() > 0.0:
+        weights = _segment_cumprod(np.divide(pi, b), s, in_place=True)
+        if np.finfo(np.float64).tiny <= weights.min() and weights.max() <= _MAX_WEIGHT:
+            return weights
+    return _log_space_weights(pi, b, s)
+
+
+def _segment_cumprod(values: np.ndarray, s: _Steps, in_place: bool = False) -> np.ndarray:
+    """Inclusive cumulative product of ``values`` (n_steps,) restarting at each episode.
+
+    A log-step scan (Hillis and Steele 1986): after the pass with offset k each
+    row holds the product of its last 2k values within the episode, so a frame
+    whose longest episode has L steps takes ceil(log2 L) whole-array passes.
+    ``in_place`` overwrites ``values`` instead of copying them.
+    """
+    out = values if in_place else values.copy()
+    offset, longest = 1, int(s.lengths.max())
+    # Three scratch arrays reused by every pass: fresh step-sized temporaries each cost page faults.
+    same, rest, factor = np.empty(out.size), np.empty(out.size), np.empty(out.size)
+    while offset < longest:
+        m = out.size - offset
+        # same is 1 where the row offset back is in the same episode; x * 1 + 0 == x and
+        # x * 0 + 1 == 1 exactly, and plain arithmetic runs faster than a masked multiply.
+        np.greater_equal(s.t[offset:], offset, out=same[:m])
+        np.subtract(1.0, same[:m], out=rest[:m])
+        np.multiply(out[:-offset], same[:m], out=factor[:m])
+        np.add(factor[:m], rest[:m], out=factor[:m])
+        out[offset:] *= factor[:m]
+        offset *= 2
+    return out
+
+
+def _log_space_weights(pi: np.ndarray, b: np.ndarray, s: _Steps) -> np.ndarray:
+    """rho_{0:t} summed in log space, so long episodes do not under- or overflow midway.
+
+    A step with ``pi == 0`` zeroes the rest of its episode without taking log(0).
     """
     takes = pi > 0.0
     log_ratio = np.log(np.where(takes, pi, 1.0)) - np.log(np.where(takes, b, 1.0))
@@ -237,10 +320,13 @@ def _previous_weights(weights: np.ndarray, s: _Steps) -> np.ndarray:
 
 def _weight_summary(weights: np.ndarray, group: np.ndarray, n_groups: int) -> tuple[np.ndarray, ...]:
     """Per group: sum, Kish ESS and largest share of the episode ``weights`` (n_episodes,)."""
-    total = np.bincount(group, weights=weights, minlength=n_groups)
-    squares = np.bincount(group, weights=weights * weights, minlength=n_groups)
-    largest = np.zeros(n_groups)
-    np.maximum.at(largest, group, weights)
+    total = _group_sums(weights, group, n_groups)
+    squares = _group_sums(weights * weights, group, n_groups)
+    if n_groups == 1:
+        largest = np.array([weights.max()])
+    else:
+        largest = np.zeros(n_groups)
+        np.maximum.at(largest, group, weights)
     ess = np.divide(total * total, squares, out=np.zeros(n_groups), where=squares > 0)
     share = np.divide(largest, total, out=np.full(n_groups, np.nan), where=total > 0)
     return total, ess, share
@@ -248,7 +334,7 @@ def _weight_summary(weights: np.ndarray, group: np.ndarray, n_groups: int) -> tu
 
 def _returns(s: _Steps) -> np.ndarray:
     """Discounted return of each episode, USD, shape (n_episodes,)."""
-    return _episode_sum(s.discount * s.reward, s)
+    return _episode_sum(_discounted(s.reward, s), s)
 
 
 def _weighted_steps(

@@ -23,7 +23,9 @@ import polars as pl
 from pipeline.estimators._steps import (
     _STEP_COLUMNS,
     EstimatorInputError,
+    _discounted,
     _episode_sum,
+    _group_sums,
     _keyed_sums,
     _prepare,
     _previous_weights,
@@ -89,30 +91,29 @@ def _weighted_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Term
 def _per_decision_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
     s, w = _weighted_steps(steps, gamma)
     # Same expression as the doubly robust term with a zero model, so the two agree bit for bit.
-    per_episode = _episode_sum(s.discount * (w * s.reward), s)
+    per_episode = _episode_sum(_discounted(w * s.reward, s), s)
     return s, _scalar_terms(per_episode, np.ones(s.n_episodes), w[s.ends])
 
 
 def _weighted_per_decision_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
     s, w = _weighted_steps(steps, gamma)
     n_cells = int(s.lengths.max())
-    t = np.arange(w.size) - s.starts[s.episode]
     # An ended episode keeps its final weight in later denominators (it sits in an absorbing
     # state with reward 0); dropping it would estimate E[r_t | still running] instead.
     ended = s.lengths < n_cells
     carry = (np.flatnonzero(ended), s.lengths[ended], w[s.ends][ended])
-    terms = _Terms(s.episode, t, s.discount * (w * s.reward), w, n_cells, w[s.ends], carry)
+    terms = _Terms(s.episode, s.t, _discounted(w * s.reward, s), w, n_cells, w[s.ends], carry)
     return s, terms
 
 
 def _doubly_robust_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
     s, w = _weighted_steps(steps, gamma, _MODEL_COLUMNS)
-    q_hat = steps["q_hat"].to_numpy().astype(np.float64)
-    v_hat = steps["v_hat"].to_numpy().astype(np.float64)
+    q_hat = steps["q_hat"].to_numpy().astype(np.float64, copy=False)
+    v_hat = steps["v_hat"].to_numpy().astype(np.float64, copy=False)
     for name, values in (("q_hat", q_hat), ("v_hat", v_hat)):
-        if not np.isfinite(values).all():
+        if not np.isfinite(values.sum()):  # a finite sum has no NaN or infinite term
             raise EstimatorInputError(f"column {name!r} has non-finite values; refit the Q model")
-    step_terms = s.discount * (w * (s.reward - q_hat) + _previous_weights(w, s) * v_hat)
+    step_terms = _discounted(w * (s.reward - q_hat) + _previous_weights(w, s) * v_hat, s)
     return s, _scalar_terms(_episode_sum(step_terms, s), np.ones(s.n_episodes), w[s.ends])
 
 
@@ -151,18 +152,31 @@ def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) 
     denominator is zero in some cell, i.e. no episode with non-zero weight, gets NaN.
     """
     key, carry_key = _entry_keys(terms, s)
-    if (key[1:] < key[:-1]).any() or (carry_key[1:] < carry_key[:-1]).any():
-        terms = _in_key_order(terms, s)
-        key, carry_key = _entry_keys(terms, s)
-    u = np.ones((1, s.n_episodes)) if multiplicity is None else multiplicity
-    rows, n_cells, n_groups = u.shape[0], terms.n_cells, s.n_groups
+    n_cells, n_groups = terms.n_cells, s.n_groups
     n_keys = n_groups * n_cells
-    u_entries = u[:, terms.episode]
-    numerator = _keyed_sums(key, u_entries * terms.numerator, n_keys).reshape(rows, n_groups, n_cells)
-    denominator = _keyed_sums(key, u_entries * terms.denominator, n_keys).reshape(rows, n_groups, n_cells)
-    if terms.carry is not None:
-        episode, _, value = terms.carry
-        carried = _keyed_sums(carry_key, u[:, episode] * value, n_keys)
+    if multiplicity is None:
+        # Every multiplicity is 1: entries are summed by key in any order, with no sort.
+        rows = 1
+        numerator = _group_sums(terms.numerator, key, n_keys)
+        denominator = _group_sums(terms.denominator, key, n_keys)
+        carried = None
+        if terms.carry is not None:
+            carried = _group_sums(terms.carry[2], carry_key, n_keys)
+    else:
+        if (key[1:] < key[:-1]).any() or (carry_key[1:] < carry_key[:-1]).any():
+            terms = _in_key_order(terms, s)
+            key, carry_key = _entry_keys(terms, s)
+        rows = multiplicity.shape[0]
+        u_entries = multiplicity[:, terms.episode]
+        numerator = _keyed_sums(key, u_entries * terms.numerator, n_keys)
+        denominator = _keyed_sums(key, u_entries * terms.denominator, n_keys)
+        carried = None
+        if terms.carry is not None:
+            episode, _, value = terms.carry
+            carried = _keyed_sums(carry_key, multiplicity[:, episode] * value, n_keys)
+    numerator = numerator.reshape(rows, n_groups, n_cells)
+    denominator = denominator.reshape(rows, n_groups, n_cells)
+    if carried is not None:
         denominator += np.cumsum(carried.reshape(rows, n_groups, n_cells), axis=2)
     positive = denominator > 0.0
     ratio = np.divide(numerator, denominator, out=np.zeros_like(numerator), where=positive)
@@ -175,7 +189,7 @@ def _estimate_frame(s: _Steps, terms: _Terms) -> pl.DataFrame:
         {
             "group": s.labels,
             "estimate": _evaluate(terms, s)[0],
-            "n_episodes": np.bincount(s.group, minlength=s.n_groups).astype(np.int64),
+            "n_episodes": np.bincount(s.group, minlength=s.n_groups).astype(np.int64, copy=False),
             "ess": ess,
             "max_weight_share": share,
         }
