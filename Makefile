@@ -28,9 +28,9 @@ lint: $(STAMP)
 	$(BIN)/ruff check pipeline flows tests
 	$(BIN)/ruff format --check pipeline flows tests
 
+# Reuses bench_out/lake-1000x92-s7 when it was simulated before; figures in bench_out/bench-1000.json.
 bench: $(STAMP)
-	$(BIN)/python bench/ingest_bench.py --premises 1000 --days 92 --work bench_out/ingest
-	$(BIN)/python bench/pipeline_bench.py --premises 1000 --days 92 --work bench_out/pipeline
+	$(BIN)/thermal-ledger bench --premises 1000 --days 92 --work bench_out
 
 clean:
 	rm -rf $(OUT) .pytest_cache

@@ -18,7 +18,7 @@ import time
 import numpy as np
 import polars as pl
 
-from bench.pipeline_bench import reference_per_decision_is, reference_weighted_is
+from pipeline.bench import reference_per_decision_is, reference_weighted_is
 from pipeline import estimators
 
 

@@ -111,6 +111,23 @@ def build_parser() -> argparse.ArgumentParser:
             p.add_argument(
                 "--no-prefect", action="store_true", help="run the stages directly, without a Prefect flow"
             )
+    bench = sub.add_parser(
+        "bench",
+        help="time every stage (each in its own process) on a simulated lake, against a floor",
+        description="Simulate (or reuse) a lake of N homes, run each stage in its own process and report"
+        " wall seconds, rows/s and peak memory per stage, the whole run against one DuckDB query's floor,"
+        " and the vectorised estimators against reference loops; also writes <work>/bench-<N>.json.",
+    )
+    bench.add_argument("--premises", type=int, required=True, help="number of simulated homes")
+    bench.add_argument("--days", type=int, default=92, help="number of days (default 92)")
+    bench.add_argument("--seed", type=int, default=7, help="seed of the simulated lake (default 7)")
+    bench.add_argument(
+        "--work", type=Path, default=Path("bench_out"), help="working folder (default bench_out)"
+    )
+    bench.add_argument("--csv", action="store_true", help="also ingest the meter files converted to CSV")
+    bench.add_argument(
+        "--reuse", action="store_true", help="require the lake already simulated there (never simulate)"
+    )
     ref = sub.add_parser(
         "settings",
         help="list every setting: meaning, unit, default, allowed values and the stages it shapes",
@@ -420,6 +437,10 @@ def main(argv: list[str] | None = None) -> int:
         summary = main_simulate(args)
         print(", ".join(f"{k}: {v}" for k, v in summary.items() if not isinstance(v, dict | list)))
         return EXIT_OK
+    if args.stage == "bench":
+        from pipeline.bench import main_bench
+
+        return main_bench(args.premises, args.days, args.seed, args.work, args.csv, args.reuse)
     if args.stage == "settings":
         print_settings(args.markdown)
         return EXIT_OK
