@@ -18,8 +18,8 @@ import time
 import numpy as np
 import polars as pl
 
-from pipeline.bench import reference_per_decision_is, reference_weighted_is
 from pipeline import estimators
+from pipeline.bench import reference_per_decision_is, reference_weighted_is
 
 
 def synthetic_steps(n_episodes: int, groups: int, seed: int) -> pl.DataFrame:
