@@ -10,8 +10,8 @@ import zipfile
 from pathlib import Path
 
 import polars as pl
-from polars.testing import assert_frame_equal
 import pytest
+from polars.testing import assert_frame_equal
 
 from pipeline import stages
 from pipeline.config import load
