@@ -188,8 +188,8 @@ def roll(world: World, episodes: Episodes, chooser: Chooser, choice_stream: int 
     p, h, c = world.params, world.homes, world.clock
     n_days = p.days
     uniforms = np.zeros((len(h.tz), n_days, MAX_STEPS))
-    for i in range(len(h.tz)):
-        uniforms[i] = stream(p.seed, STREAM_CHOICE, i, choice_stream).random((n_days, MAX_STEPS))
+    for row, i in enumerate(h.index):
+        uniforms[row] = stream(p.seed, STREAM_CHOICE, int(i), choice_stream).random((n_days, MAX_STEPS))
     m = len(episodes.n)
     keys = np.zeros((m, MAX_STEPS), dtype=np.int64)
     acts = np.zeros((m, MAX_STEPS), dtype=np.int64)

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import argparse
 import hashlib
+import tempfile
 import time
 from collections.abc import Sequence
 from dataclasses import replace
@@ -34,8 +35,14 @@ from pipeline.simulate.engine import (
     step_frame,
 )
 from pipeline.simulate.params import SimParams, SimulationError
-from pipeline.simulate.rollout import CANDIDATES, true_values
-from pipeline.simulate.world import World, build_world
+from pipeline.simulate.rollout import CANDIDATES, policy_runs, summarise_runs
+from pipeline.simulate.world import Shared, World, build_shared, build_world
+
+CHUNK_PREMISES = 500
+"""Premises simulated at a time by ``generate_lake``; peak memory grows with it, not with the lake."""
+
+_ROW_GROUP_ROWS = 100_000
+"""Most rows in one Parquet row group; a file's row groups are equal in size, whatever the chunk size."""
 
 
 def generate_lake(
@@ -46,37 +53,65 @@ def generate_lake(
     days: int = 92,
     params: SimParams | None = None,
     policy_values: bool = False,
+    chunk_premises: int = CHUNK_PREMISES,
 ) -> dict:
     """Simulate homes and write ``landing/`` and ``truth/`` under ``out_dir``; return a summary.
 
     ``params``, when given, overrides the defaults; ``n_premises``, ``seed``,
     ``start`` and ``days`` are then applied on top of it. With
     ``policy_values``, ``truth/policy_values.parquet`` also records the true
-    value of the default candidate rules (see ``true_values``).
+    value of the default candidate rules (see ``true_values``). Homes are
+    simulated ``chunk_premises`` at a time on the lake's one weather and price
+    draw, each from its own streams, and written as they are done, so the files
+    do not depend on the chunk size and memory is bounded by the chunk.
     """
     began = time.perf_counter()
+    if chunk_premises < 1:
+        raise SimulationError(f"chunk_premises must be at least 1, got {chunk_premises}")
     params = replace(params or SimParams(), n_premises=n_premises, seed=seed, start=start, days=days)
     out = Path(out_dir)
-    world = build_world(params)
-    episodes = find_episodes(world)
-    rollout = roll(world, episodes, behavior_chooser(world), choice_stream=0)
-    run = run_grid(world, away_setpoints(world, episodes, rollout), record=True)
+    shared = build_shared(params)
     landing, truth = out / "landing", out / "truth"
     for sub in ("premises", "meter", "weather", "thermostat", "tariffs"):
         (landing / sub).mkdir(parents=True, exist_ok=True)
     truth.mkdir(parents=True, exist_ok=True)
-    _write_premises(world, landing / "premises" / "premises.csv")
-    meter_rows = _write_meter(world, run, landing / "meter")
-    _write_weather(world, landing / "weather")
-    _write_tariffs(world, landing / "tariffs" / "tariffs.csv")
-    thermostat_rows = _write_thermostat(world, episodes, rollout, run, landing / "thermostat")
-    ep = episode_frame(world, episodes, rollout, run)
-    steps = step_frame(world, episodes, rollout, run)
-    _write_truth(world, ep, steps, truth)
-    shares = followed_shares(world, episodes, rollout)
-    seen = followed_shares(world, episodes, rollout, observable_only=True)
+    _write_weather(params, shared, landing / "weather")
+    _write_tariffs(params, landing / "tariffs" / "tariffs.csv")
+    thermostat, episodes_parts, steps_parts, parameters = [], [], [], []
+    followed: list[tuple[dict[str, np.ndarray], np.ndarray]] = []
+    runs: list[list[tuple[str, float, pl.DataFrame]]] = []
+    meter_rows = 0
+    with tempfile.TemporaryDirectory(dir=out, prefix=".chunks-") as scratch:
+        parts = _Parts(Path(scratch))
+        with (landing / "premises" / "premises.csv").open("wb") as premises_csv:
+            for first in range(0, params.n_premises, chunk_premises):
+                chunk = range(first, min(params.n_premises, first + chunk_premises))
+                world = build_world(params, chunk, shared)
+                episodes = find_episodes(world)
+                rollout = roll(world, episodes, behavior_chooser(world), choice_stream=0)
+                run = run_grid(world, away_setpoints(world, episodes, rollout), record=True)
+                _premise_rows(world).write_csv(premises_csv, include_header=first == 0)
+                meter_rows += _meter_parts(world, run, parts)
+                thermostat.append(_thermostat_rows(world, episodes, rollout, run))
+                episodes_parts.append(episode_frame(world, episodes, rollout, run))
+                steps_parts.append(step_frame(world, episodes, rollout, run))
+                _behavior_parts(world, parts)
+                parameters.append(_parameter_rows(world))
+                followed.append((_followed(world, episodes, rollout), world.homes.presence[episodes.home]))
+                if policy_values:
+                    runs.append(policy_runs(world))
+                del world, episodes, rollout, run
+        for name in parts.names("meter_"):
+            parts.write([name], landing / "meter" / f"{name}.parquet")
+        parts.write(parts.names("behavior_"), truth / "behavior_probabilities.parquet")
+    thermostat_rows = _write_thermostat(_concat(thermostat), landing / "thermostat")
+    ep, steps = _concat(episodes_parts), _concat(steps_parts)
+    _concat(parameters).write_parquet(truth / "premise_parameters.parquet", compression="zstd")
+    ep.write_parquet(truth / "episodes.parquet", compression="zstd")
+    steps.write_parquet(truth / "steps.parquet", compression="zstd")
     if policy_values:
-        true_values(params, world=world).write_parquet(truth / "policy_values.parquet", compression="zstd")
+        whole = [(name, eps, _concat([r[k][2] for r in runs])) for k, (name, eps, _) in enumerate(runs[0])]
+        summarise_runs(whole).write_parquet(truth / "policy_values.parquet", compression="zstd")
     files = {str(f.relative_to(out)): f.stat().st_size for f in sorted(out.rglob("*")) if f.is_file()}
     return {
         "n_premises": params.n_premises,
@@ -88,12 +123,47 @@ def generate_lake(
         "meter_rows": meter_rows,
         "thermostat_rows": thermostat_rows,
         "mean_return_usd": float(ep["return_usd"].mean()) if ep.height else float("nan"),
-        "followed_share": shares,
-        "followed_share_observable": seen,
+        "followed_share": _shares(followed, observable_only=False),
+        "followed_share_observable": _shares(followed, observable_only=True),
         "files": files,
         "bytes": sum(files.values()),
         "seconds": time.perf_counter() - began,
     }
+
+
+def _concat(frames: list[pl.DataFrame]) -> pl.DataFrame:
+    """One contiguous frame, so Parquet row groups and float sums do not follow the chunks."""
+    return pl.concat(frames).rechunk()
+
+
+class _Parts:
+    """Frames of one output file written chunk by chunk to scratch, then streamed into the file in order."""
+
+    def __init__(self, folder: Path) -> None:
+        self._folder = folder
+        self._files: dict[str, list[Path]] = {}
+        self._rows: dict[str, int] = {}
+
+    def add(self, name: str, frame: pl.DataFrame) -> None:
+        """Keep ``frame`` as the next part of output ``name``."""
+        files = self._files.setdefault(name, [])
+        path = self._folder / f"{name}-{len(files):06d}.arrow"
+        frame.write_ipc(path, compression="zstd")
+        files.append(path)
+        self._rows[name] = self._rows.get(name, 0) + frame.height
+
+    def names(self, prefix: str) -> list[str]:
+        """Outputs whose name starts with ``prefix``, sorted."""
+        return sorted(n for n in self._files if n.startswith(prefix))
+
+    def write(self, names: list[str], path: Path) -> None:
+        """Stream the parts of ``names``, in order, into one Parquet file with equal row groups of at most
+        _ROW_GROUP_ROWS rows."""
+        rows = sum(self._rows[name] for name in names)
+        groups = max(1, -(-rows // _ROW_GROUP_ROWS))
+        pl.scan_ipc([f for name in names for f in self._files[name]]).sink_parquet(
+            path, compression="zstd", row_group_size=max(1, -(-rows // groups))
+        )
 
 
 def followed_shares(
@@ -103,12 +173,24 @@ def followed_shares(
 
     With ``observable_only``, only episodes of homes with presence sensing count.
     """
+    seen = world.homes.presence[episodes.home]
+    return _shares([(_followed(world, episodes, rollout), seen)], observable_only)
+
+
+def _followed(world: World, episodes: Episodes, rollout: Rollout) -> dict[str, np.ndarray]:
+    """Per candidate rule, whether every logged action of each episode equals what the rule would do."""
     valid = np.arange(MAX_STEPS)[None, :] < episodes.n_decisions[:, None]
-    keep = world.homes.presence[episodes.home] if observable_only else np.ones(len(episodes.n), dtype=bool)
+    return {
+        rule.name: ((rule.actions(world.params.state, rollout.state_key) == rollout.action) | ~valid).all(1)
+        for rule in CANDIDATES
+    }
+
+
+def _shares(chunks: list[tuple[dict[str, np.ndarray], np.ndarray]], observable_only: bool) -> dict:
+    """Share of followed episodes per rule over the chunks' (followed, presence sensing) arrays."""
     out = {}
     for rule in CANDIDATES:
-        wanted = rule.actions(world.params.state, rollout.state_key)
-        same = ((wanted == rollout.action) | ~valid).all(axis=1)[keep]
+        same = np.concatenate([f[rule.name][seen | (not observable_only)] for f, seen in chunks])
         out[rule.name] = float(same.mean()) if len(same) else 0.0
     return out
 
@@ -122,13 +204,13 @@ def _utc_strings(t0, hours: np.ndarray, minutes: np.ndarray | int = 0, suffix: s
     return pl.Series(np.datetime_as_string(stamps, unit="s")) + suffix
 
 
-def _write_premises(world: World, path: Path) -> None:
+def _premise_rows(world: World) -> pl.DataFrame:
     h, p = world.homes, world.params
     station_ids = np.array([s.station_id for s in p.stations])
     plan_ids = np.array(world.tariffs.plan_ids)
     towns = np.array([s.town.split()[0].lower() for s in p.stations])
     kind = np.array(["tou" if "TOU" in pid else "flat" for pid in plan_ids])
-    pl.DataFrame(
+    return pl.DataFrame(
         {
             "premise_id": h.premise_id,
             "timezone": np.array(world.clock.timezones)[h.tz],
@@ -139,7 +221,7 @@ def _write_premises(world: World, path: Path) -> None:
             "cohort": np.char.add(np.char.add(towns[h.station], "-"), kind[h.plan]),
             "floor_area_m2": h.floor_area_m2.astype(np.int64),
         }
-    ).write_csv(path)
+    )
 
 
 def _local_quarters(world: World) -> tuple[np.ndarray, np.ndarray]:
@@ -151,7 +233,8 @@ def _local_quarters(world: World) -> tuple[np.ndarray, np.ndarray]:
     return (day >= 0) & (day < world.params.days), month
 
 
-def _write_meter(world: World, run: Run, folder: Path) -> int:
+def _meter_parts(world: World, run: Run, parts: _Parts) -> int:
+    """Add the chunk's reads to each local month's meter file; return the rows added."""
     c, h = world.clock, world.homes
     n_q = run.meter_kwh.shape[0]
     inside, month = _local_quarters(world)
@@ -170,7 +253,7 @@ def _write_meter(world: World, run: Run, folder: Path) -> int:
                 "quality": np.where(world.estimated[q_idx, home], "estimated", "actual"),
             }
         ).with_columns(pl.col("interval_start").dt.replace_time_zone("UTC"))
-        frame.write_parquet(folder / f"meter_{key // 100:04d}-{key % 100:02d}.parquet", compression="zstd")
+        parts.add(f"meter_{key // 100:04d}-{key % 100:02d}", frame)
         rows += frame.height
     return rows
 
@@ -190,24 +273,24 @@ def _year_of(world: World, local_day: np.ndarray) -> np.ndarray:
     return years[inverse].reshape(ordinal.shape)
 
 
-def _write_weather(world: World, folder: Path) -> None:
-    c = world.clock
+def _write_weather(params: SimParams, shared: Shared, folder: Path) -> None:
+    c = shared.clock
     hours = np.arange(c.n_hours + 1)
-    for j, st in enumerate(world.params.stations):
+    for j, st in enumerate(params.stations):
         col = "dry_bulb_f" if st.unit == "f" else "dry_bulb_c"
         pl.DataFrame(
             {
                 "station_id": np.full(len(hours), st.station_id),
                 "observed_at": _utc_strings(c.t0, hours, 0, st.utc_suffix),
-                col: world.weather.published[j],
+                col: shared.weather.published[j],
             }
         ).write_csv(folder / f"weather_{st.station_id}.csv", float_precision=1)
 
 
-def _write_tariffs(world: World, path: Path) -> None:
+def _write_tariffs(params: SimParams, path: Path) -> None:
     rows = [
         (pid, r.months, r.day_type, r.start_hour, r.end_hour, r.price_per_kwh)
-        for pid, plan_rows in world.params.plans
+        for pid, plan_rows in params.plans
         for r in plan_rows
     ]
     pl.DataFrame(
@@ -217,8 +300,8 @@ def _write_tariffs(world: World, path: Path) -> None:
     ).write_csv(path)
 
 
-def _write_thermostat(world: World, episodes: Episodes, rollout: Rollout, run: Run, folder: Path) -> int:
-    """Initial rows, departures, setpoint changes at decisions and returns, one CSV per UTC month."""
+def _thermostat_rows(world: World, episodes: Episodes, rollout: Rollout, run: Run) -> pl.DataFrame:
+    """Initial rows, departures, setpoint changes at decisions and returns, with their local month key."""
     c, h, p = world.clock, world.homes, world.params
     per_hour = 60 // p.substep_minutes
     trace = run.t_in_c
@@ -273,25 +356,26 @@ def _write_thermostat(world: World, episodes: Episodes, rollout: Rollout, run: R
         + cat["hour"].astype("timedelta64[h]")
         + cat["minute"].astype("timedelta64[m]")
     )
-    frame = (
-        pl.DataFrame(
-            {
-                "premise_id": h.premise_id[cat["home"]],
-                "stamp": stamps.astype("datetime64[ms]"),
-                "mode": np.full(len(stamps), "cool"),
-                "cool_setpoint_c": cat["sp"],
-                "heat_setpoint_c": h.comfort_heat_c[cat["home"]].astype(float),
-                "occupied": pl.Series(cat["occ"], nan_to_null=True).cast(pl.Int8),
-                "indoor_c": cat["indoor"],
-                "month_key": cat["month"],
-            }
-        )
-        .sort(["stamp", "premise_id"], maintain_order=True)
-        .with_columns(
-            changed_at=pl.col("stamp").dt.strftime("%Y-%m-%dT%H:%M:%S+00:00"),
-        )
+    return pl.DataFrame(
+        {
+            "premise_id": h.premise_id[cat["home"]],
+            "stamp": stamps.astype("datetime64[ms]"),
+            "mode": np.full(len(stamps), "cool"),
+            "cool_setpoint_c": cat["sp"],
+            "heat_setpoint_c": h.comfort_heat_c[cat["home"]].astype(float),
+            "occupied": pl.Series(cat["occ"], nan_to_null=True).cast(pl.Int8),
+            "indoor_c": cat["indoor"],
+            "month_key": cat["month"],
+        }
     )
-    for key in np.unique(cat["month"]):
+
+
+def _write_thermostat(rows: pl.DataFrame, folder: Path) -> int:
+    """One CSV per month in time order; a premise's rows are all in one chunk, so ties keep their order."""
+    frame = rows.sort(["stamp", "premise_id"], maintain_order=True).with_columns(
+        changed_at=pl.col("stamp").dt.strftime("%Y-%m-%dT%H:%M:%S+00:00"),
+    )
+    for key in frame["month_key"].unique().sort().to_list():
         part = frame.filter(pl.col("month_key") == key).select(
             "premise_id", "changed_at", "mode", "cool_setpoint_c", "heat_setpoint_c", "occupied", "indoor_c"
         )
@@ -299,12 +383,12 @@ def _write_thermostat(world: World, episodes: Episodes, rollout: Rollout, run: R
     return frame.height
 
 
-def _write_truth(world: World, episodes: pl.DataFrame, steps: pl.DataFrame, folder: Path) -> None:
+def _behavior_parts(world: World, parts: _Parts) -> None:
+    """Add the chunk's true behaviour tables; all premises' rows of one 'feeling hot' level come together."""
     p, h = world.params, world.homes
     space = p.state
     states = space.n_states
     hot_levels = (False, True) if p.hidden_confounder else (False,)
-    frames = []
     for hot in hot_levels:
         tables = behavior_tables(
             space, h.depth_pref, h.keenness, h.restore_lead, h.comfort_cool_c, p.cool_band_c, hot
@@ -318,9 +402,12 @@ def _write_truth(world: World, episodes: pl.DataFrame, steps: pl.DataFrame, fold
         }
         if p.hidden_confounder:
             cols["feeling_hot"] = np.full(n * states * k, hot)
-        frames.append(pl.DataFrame(cols))
-    pl.concat(frames).write_parquet(folder / "behavior_probabilities.parquet", compression="zstd")
-    pl.DataFrame(
+        parts.add(f"behavior_{int(hot)}", pl.DataFrame(cols))
+
+
+def _parameter_rows(world: World) -> pl.DataFrame:
+    h = world.homes
+    return pl.DataFrame(
         {
             "premise_id": h.premise_id,
             "r_k_per_kw": h.r_k_per_kw,
@@ -336,9 +423,7 @@ def _write_truth(world: World, episodes: pl.DataFrame, steps: pl.DataFrame, fold
             "restore_lead": h.restore_lead,
             "presence_sensing": h.presence,
         }
-    ).write_parquet(folder / "premise_parameters.parquet", compression="zstd")
-    episodes.write_parquet(folder / "episodes.parquet", compression="zstd")
-    steps.write_parquet(folder / "steps.parquet", compression="zstd")
+    )
 
 
 def true_step_probabilities(root: str | Path, steps: pl.DataFrame) -> np.ndarray:

@@ -77,11 +77,12 @@ def _simulate(world: World, policy_probs: np.ndarray | str, choice_stream: int) 
         chooser = behavior_chooser(world)
     else:
         probs = np.asarray(policy_probs, dtype=float)
-        per_home_ok = probs.ndim == 2 or (probs.ndim == 3 and probs.shape[0] == params.n_premises)
+        n_homes = len(world.homes.index)
+        per_home_ok = probs.ndim == 2 or (probs.ndim == 3 and probs.shape[0] == n_homes)
         if probs.shape[-2:] != (params.state.n_states, len(ACTIONS)) or not per_home_ok:
             raise SimulationError(
                 f"policy table shape {probs.shape} does not fit {params.state.n_states} states,"
-                f" {len(ACTIONS)} actions {tuple(ACTIONS.tolist())} and {params.n_premises} premises"
+                f" {len(ACTIONS)} actions {tuple(ACTIONS.tolist())} and {n_homes} premises"
             )
         validate_table(probs.reshape(-1, len(ACTIONS)), probs.size // len(ACTIONS), len(ACTIONS))
         chooser = table_chooser(world, probs)
@@ -105,27 +106,49 @@ def true_values(
     per episode. Epsilon-soft rules draw their choices from stream 1, so they
     are independent of the logged choices (stream 0).
     """
-    world = world or build_world(params)
+    return summarise_runs(policy_runs(world or build_world(params), rules, epsilons))
+
+
+def policy_runs(
+    world: World,
+    rules: tuple[SetbackRule, ...] = CANDIDATES,
+    epsilons: tuple[float, ...] = (0.0, 0.05),
+) -> list[tuple[str, float, pl.DataFrame]]:
+    """Roll the behaviour and each rule out on ``world``; the visible episodes of each, in premise order.
+
+    Runs of consecutive slices of a lake's premises, concatenated in order,
+    are the runs of the whole lake (see ``summarise_runs``).
+    """
+    params = world.params
     runs = [("behavior", 0.0, _simulate(world, "behavior", 0))]
     for rule in rules:
         for eps in epsilons:
             table = rule.table(params.state, epsilon=eps)
             runs.append((rule.name, eps, _simulate(world, table, 1 if eps > 0 else 0)))
+    columns = ["premise_id", "return_usd", "kwh", "comfort_penalty_usd"]
+    return [(name, eps, run.filter(pl.col("presence_sensing")).select(columns)) for name, eps, run in runs]
+
+
+def summarise_runs(runs: list[tuple[str, float, pl.DataFrame]]) -> pl.DataFrame:
+    """Per policy and epsilon: a portfolio row and one row per premise of the mean return, kWh and penalty."""
     frames = []
-    for name, eps, frame in runs:
-        seen = frame.filter(pl.col("presence_sensing"))
+    for name, eps, seen in runs:
         ids = seen["premise_id"].to_numpy()
-        groups = [(None, np.ones(len(ids), dtype=bool))] + [(p, ids == p) for p in np.unique(ids)]
+        # a premise's episodes are contiguous (premise order), so each premise is one slice
+        premises, first, count = np.unique(ids, return_index=True, return_counts=True)
+        slices = [slice(0, len(ids))] + [slice(f, f + c) for f, c in zip(first, count, strict=True)]
+        groups = [None, *premises.tolist()]
+        values = {col: seen[col].to_numpy() for col in ("return_usd", "kwh", "comfort_penalty_usd")}
         # numpy means in a fixed order, so the file's bytes do not depend on thread scheduling
         frames.append(
             pl.DataFrame(
                 {
                     "policy_name": [name] * len(groups),
                     "epsilon": [eps] * len(groups),
-                    "premise_id": pl.Series([g for g, _ in groups], dtype=pl.String),
-                    "n_episodes": [int(m.sum()) for _, m in groups],
+                    "premise_id": pl.Series(groups, dtype=pl.String),
+                    "n_episodes": [sl.stop - sl.start for sl in slices],
                     **{
-                        out: [float(np.mean(seen[col].to_numpy()[m])) for _, m in groups]
+                        out: [float(np.mean(values[col][sl])) for sl in slices]
                         for out, col in (
                             ("value_usd", "return_usd"),
                             ("kwh", "kwh"),

@@ -187,6 +187,8 @@ class Homes:
 
     premise_id: np.ndarray
     """Identifiers "P0001", ..."""
+    index: np.ndarray
+    """Position of the premise in the whole lake, the key of its random streams."""
     station: np.ndarray
     """Index into ``SimParams.stations``."""
     tz: np.ndarray
@@ -265,12 +267,36 @@ def _base_shape(hour: np.ndarray, occupied: np.ndarray) -> np.ndarray:
     return np.where(occupied, home, 0.55)
 
 
-def build_world(params: SimParams) -> World:
-    """Draw every exogenous quantity of a lake from the seed."""
+@dataclass(frozen=True)
+class Shared:
+    """The draws every premise of a lake shares: the time grid, station weather and prices."""
+
+    clock: Clock
+    """Time grid."""
+    weather: Weather
+    """Station weather."""
+    tariffs: Tariffs
+    """Prices per hour."""
+
+
+def build_shared(params: SimParams) -> Shared:
+    """Draw the lake-wide quantities once, so chunks of premises can share them."""
     clock = build_clock(params)
-    weather = build_weather(params, clock)
-    tariffs = build_tariffs(params, clock)
-    n, nd = params.n_premises, params.days
+    return Shared(clock, build_weather(params, clock), build_tariffs(params, clock))
+
+
+def build_world(params: SimParams, premises: range | None = None, shared: Shared | None = None) -> World:
+    """Draw every exogenous quantity of a lake, or of the premises in ``premises`` only, from the seed.
+
+    A premise's draws come from its own stream, so the world of a slice of
+    premises holds the very homes the whole lake has at those positions.
+    """
+    premises = range(params.n_premises) if premises is None else premises
+    if premises.step != 1 or premises.start < 0 or premises.stop > params.n_premises:
+        raise SimulationError(f"premises {premises} is not a slice of the {params.n_premises} in the lake")
+    shared = shared or build_shared(params)
+    clock, weather, tariffs = shared.clock, shared.weather, shared.tariffs
+    n, nd = len(premises), params.days
     n_q = 4 * clock.n_hours
     shares = np.array([s.share for s in params.stations])
     cols: dict[str, list] = {name: [] for name in Homes.__dataclass_fields__}
@@ -283,7 +309,7 @@ def build_world(params: SimParams) -> World:
     weekday_of_day = np.array(
         [datetime.fromordinal(params.start.toordinal() + d).weekday() < 5 for d in range(nd)]
     )
-    for i in range(n):
+    for row, i in enumerate(premises):
         rng = stream(params.seed, STREAM_PREMISE, i)
         station = int(rng.choice(len(shares), p=shares / shares.sum()))
         area = float(np.clip(np.round(rng.lognormal(np.log(160.0), 0.3)), 80, 320))
@@ -295,6 +321,7 @@ def build_world(params: SimParams) -> World:
         design = ua * (38.0 - comfort) + 0.8 * base_kw * 1.5 + 0.6 * aperture
         capacity = round(design * rng.uniform(1.15, 1.5), 1)
         cols["premise_id"].append(f"P{i + 1:04d}")
+        cols["index"].append(i)
         cols["station"].append(station)
         cols["tz"].append(clock.timezones.index(params.stations[station].timezone))
         cols["plan"].append(0 if rng.random() < params.share_tou else 1)
@@ -313,14 +340,14 @@ def build_world(params: SimParams) -> World:
         cols["depth_pref"].append(int(rng.choice([1, 2, 3], p=params.depth_pref_probs)))
         cols["keenness"].append(rng.normal(0.0, 0.4))
         p_away = np.where(weekday_of_day, rng.uniform(*params.weekday_away_prob), params.weekend_away_prob)
-        away[i] = rng.random(nd) < p_away
-        dep[i] = _off_the_hour(np.floor(60 * rng.uniform(*params.depart_window_h, nd)).astype(np.int64))
-        ret[i] = _off_the_hour(np.floor(60 * rng.uniform(*params.return_window_h, nd)).astype(np.int64))
+        away[row] = rng.random(nd) < p_away
+        dep[row] = _off_the_hour(np.floor(60 * rng.uniform(*params.depart_window_h, nd)).astype(np.int64))
+        ret[row] = _off_the_hour(np.floor(60 * rng.uniform(*params.return_window_h, nd)).astype(np.int64))
         hot_draw = rng.random(nd) < params.hidden_hot_prob
-        hot[i] = hot_draw & params.hidden_confounder
+        hot[row] = hot_draw & params.hidden_confounder
         sd = 0.3
-        noise[:, i] = rng.lognormal(-sd * sd / 2.0, sd, n_q)
-        estimated[:, i] = rng.random(n_q) < params.share_estimated
+        noise[:, row] = rng.lognormal(-sd * sd / 2.0, sd, n_q)
+        estimated[:, row] = rng.random(n_q) < params.share_estimated
         cols["restore_lead"].append(int(rng.random() < params.early_restore_share))
     homes = Homes(**{k: np.asarray(v) for k, v in cols.items()})
     days = Days(away, dep, ret, hot)
