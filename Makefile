@@ -13,7 +13,7 @@ $(BIN)/python:
 
 $(STAMP): pyproject.toml | $(BIN)/python
 	$(BIN)/python -m pip install --quiet --upgrade pip
-	$(BIN)/python -m pip install --quiet -e '.[test]'
+	$(BIN)/python -m pip install --quiet -e '.[test,dask]'
 	touch $(STAMP)
 
 # The embedded Prefect server would otherwise try to send usage analytics (and log a

@@ -116,9 +116,22 @@ Share = Annotated[float, Strict(), Field(gt=0, le=1)]
 Name = Annotated[str, Strict()]
 
 
-def _setting(default: Any = dataclasses.MISSING, *, stages: tuple[str, ...], unit: str = "", factory=None):
-    """A field with the stages it shapes and its unit in the metadata."""
-    metadata = {"stages": stages, "unit": unit}
+def _setting(
+    default: Any = dataclasses.MISSING,
+    *,
+    stages: tuple[str, ...],
+    unit: str = "",
+    factory=None,
+    execution: bool = False,
+):
+    """A field with the stages it shapes and its unit in the metadata.
+
+    ``execution`` marks a setting of how the work runs (shards, workers, schedule, DuckDB's
+    resources) that by design shapes no result, so it claims no stage.
+    """
+    if execution and stages:
+        raise ValueError("an execution setting shapes no stage")
+    metadata = {"stages": stages, "unit": unit, "execution": execution}
     if factory is not None:
         return dataclasses.field(default_factory=factory, metadata=metadata)
     return dataclasses.field(default=default, metadata=metadata)
@@ -238,6 +251,16 @@ class Config:
     """Candidate setback rules evaluated in every run ([[candidate]] tables)."""
     columns: dict[str, dict[str, str]] = _setting(stages=("ingest",), factory=dict)
     """Per landing folder, canonical column name -> the name used in the files ([columns.<folder>])."""
+    shard_premises: Count = _setting(250, stages=(), execution=True, unit="premises")
+    """Premises per shard of the episode stage; shapes no result, only memory and parallel work."""
+    task_runner: Annotated[Name, AfterValidator(_OneOf(("default", "dask")))] = _setting(
+        "default", stages=(), execution=True
+    )
+    """Where the flow's shard tasks run: 'default' (Prefect's threads) or 'dask' (needs the dask extra)."""
+    dask_address: Name = _setting("", stages=(), execution=True, unit="address")
+    """Scheduler of an existing Dask cluster (tcp://host:8786); empty starts a local cluster."""
+    dask_workers: Count = _setting(2, stages=(), execution=True, unit="processes")
+    """Worker processes of the local Dask cluster (when dask_address is empty)."""
 
     def __post_init__(self) -> None:
         _check_rules(self)

@@ -15,6 +15,9 @@ import polars as pl
 from pipeline import store
 from pipeline.config import Config
 
+EPISODES_PER_PREMISE = 100_000
+"""Episode ids are the premise's number (rank in premise-id order) times this plus the episode's rank."""
+
 
 @dataclass(frozen=True)
 class EpisodeCounts:
@@ -50,6 +53,7 @@ def sql_params(config: Config) -> dict[str, object]:
         "hold_from": config.setback_hold_hours[0],
         "hold_to": config.setback_hold_hours[1],
         "presence_sources": list(config.presence_sources),
+        "episodes_per_premise": EPISODES_PER_PREMISE,
     }
 
 
@@ -76,14 +80,22 @@ def steps_for(con: duckdb.DuckDBPyConnection, config: Config) -> pl.DataFrame:
 
 
 def build(con: duckdb.DuckDBPyConnection, config: Config) -> EpisodeCounts:
-    """Rebuild ``hourly``, ``episode`` and ``step`` in the warehouse from the typed tables."""
+    """Rebuild ``hourly``, ``episode`` and ``step`` as tables of the warehouse, in one piece.
+
+    The pipeline builds them in shards (``pipeline.shards``); this one-piece build of the
+    same SQL is what a shard's files must equal, and what tests of the SQL use.
+    """
     params = sql_params(config)
-    hours = store.build_table(con, "hourly", params)
-    episodes = store.build_table(con, "episode", params)
-    raw_steps = store.query(con, "step", params).sort("episode_id", "t")
-    steps = add_state_keys(raw_steps, config)
+    store.build_table(con, "hourly", params)
+    store.build_table(con, "episode", params)
+    steps = add_state_keys(store.query(con, "step", params).sort("episode_id", "t"), config)
     store.replace_table(con, "step", steps)
     store.replace_table(con, "state_lookup", config.state.lookup())
+    return counts(con)
+
+
+def counts(con: duckdb.DuckDBPyConnection) -> EpisodeCounts:
+    """Row counts of the ``hourly``, ``episode`` and ``step`` the warehouse holds now."""
     rate = store.execute(
         con,
         "with days as (select premise_id,"
@@ -98,15 +110,20 @@ def build(con: duckdb.DuckDBPyConnection, config: Config) -> EpisodeCounts:
             "select excluded_reason, count(*) from episode where excluded_reason is not null group by all",
         )
     )
-    used = store.execute(con, "select count(*) from episode where excluded_reason is null")[0][0]
+    hours, episodes, used = store.execute(
+        con,
+        "select (select count(*) from hourly), count(*), count(*) filter (excluded_reason is null)"
+        " from episode",
+    )[0]
+    n_steps, clipped = store.execute(con, "select count(*), count(*) filter (action_clipped) from step")[0]
     return EpisodeCounts(
         hours=hours,
         episodes=episodes,
         episodes_used=used,
-        steps=steps.height,
-        clipped_actions=int(steps["action_clipped"].sum() or 0),
+        steps=n_steps,
+        clipped_actions=int(clipped or 0),
         excluded=excluded,
-        mean_decisions=float(steps.height / used) if used else 0.0,
+        mean_decisions=float(n_steps / used) if used else 0.0,
         weekday_episodes_per_weekday=float(rate or 0.0),
     )
 

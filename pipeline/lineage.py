@@ -9,9 +9,11 @@ silently giving the old numbers while the run record shows the new settings.
 from __future__ import annotations
 
 import datetime as dt
+import functools
+import hashlib
 import json
-import uuid
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 import duckdb
@@ -50,20 +52,63 @@ def builds(con: duckdb.DuckDBPyConnection) -> dict[str, Build]:
     }
 
 
+@functools.cache
+def code_fingerprint() -> str:
+    """Hash of the pipeline's Python and SQL sources: a build made by other code is not reused."""
+    package = Path(__file__).resolve().parent
+    digest = hashlib.sha256()
+    for path in sorted([*package.rglob("*.py"), *store.SQL_DIR.glob("*.sql")]):
+        digest.update(path.name.encode())
+        digest.update(path.read_bytes())
+    return digest.hexdigest()
+
+
+def build_id_for(
+    con: duckdb.DuckDBPyConnection,
+    stage: str,
+    settings: dict[str, Any],
+    upstream: tuple[str, ...],
+    inputs: str = "",
+) -> str:
+    """The id a build of ``stage`` gets from these settings, the current upstream builds and ``inputs``.
+
+    Equal ids mean equal tables: the id hashes everything that shapes them (settings, the
+    upstream builds' ids, a digest of the stage's own inputs, and the code), so a stage
+    whose id is unchanged since its last build can reuse that build.
+    """
+    current = builds(con)
+    parts = {
+        "stage": stage,
+        "settings": _normal(settings),
+        "upstream": {name: current[name].build_id for name in upstream if name in current},
+        "inputs": inputs,
+        "code": code_fingerprint(),
+    }
+    return hashlib.sha256(json.dumps(parts, sort_keys=True).encode()).hexdigest()[:32]
+
+
+def reusable(con: duckdb.DuckDBPyConnection, stage: str, build_id: str) -> bool:
+    """Whether the warehouse's current build of ``stage`` is ``build_id`` (so it need not be rebuilt)."""
+    build = builds(con).get(stage)
+    return build is not None and build.build_id == build_id
+
+
 def record(
     con: duckdb.DuckDBPyConnection,
     stage: str,
     settings: dict[str, Any],
     upstream: tuple[str, ...],
     run_id: str,
+    inputs: str = "",
 ) -> str:
     """Record a new build of ``stage`` made from the current builds of ``upstream``; return its id.
 
     Call inside the transaction that wrote the stage's tables, so the record and the tables
-    appear together or not at all.
+    appear together or not at all. ``inputs`` digests what the stage read besides upstream
+    builds (files, shards); see ``build_id_for``.
     """
     current = builds(con)
-    build_id = uuid.uuid4().hex
+    build_id = build_id_for(con, stage, settings, upstream, inputs)
     store.execute(con, "delete from stage_build where stage = $stage", {"stage": stage})
     store.execute(
         con,

@@ -23,10 +23,20 @@ import polars as pl
 
 from pipeline import evaluate as evaluation
 from pipeline import ingest as ingestion
-from pipeline import lineage, store
+from pipeline import lineage, shards, store
 from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
 from pipeline.config import Config
-from pipeline.episodes import EpisodeCounts, build, episode_summary, load_episodes, load_steps, steps_for
+from pipeline.episodes import (
+    EpisodeCounts,
+    episode_summary,
+    load_episodes,
+    load_steps,
+    sql_params,
+    steps_for,
+)
+from pipeline.episodes import (
+    counts as episode_counts,
+)
 from pipeline.ledger import Run
 from pipeline.lineage import StageError
 
@@ -143,25 +153,63 @@ def ingest(config: Config, run: Run, progress: ingestion.Progress | None = None)
             reread = bool(lineage.changed(con, "ingest", config.stage_settings("ingest")))
     results = ingestion.results_frame(ingestion.ingest(config, progress=progress, reread=reread))
     with store.warehouse(config.warehouse_path) as con, store.transaction(con):
-        lineage.record(con, "ingest", config.stage_settings("ingest"), (), run.run_id)
+        loaded = store.execute(
+            con,
+            "select coalesce(string_agg(concat_ws(':', source_file, content_hash, status, rows_loaded),"
+            " ';' order by source_file), '') from ingest_log",
+        )[0][0]
+        lineage.record(con, "ingest", config.stage_settings("ingest"), (), run.run_id, inputs=loaded)
     return IngestSummary(results, int((results["status"] == "refused").sum()))
 
 
-def episodes(config: Config, run: Run) -> EpisodeSummary:
-    """Rebuild the hourly grid, episodes and steps; write ``episode_summary`` to the ledger."""
+def plan_episodes(config: Config) -> tuple[shards.Shard, ...]:
+    """The episode stage's shards of premises, each with the fingerprint of its inputs."""
     _checked(config, "episodes")
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        return shards.plan(con, config, sql_params(config))
+
+
+def episode_shard(config: Config, shard: shards.Shard) -> shards.ShardWork:
+    """Build (or reuse) one shard's hourly grid, episodes and steps; runs on any worker."""
+    return shards.build_shard(config, shard, sql_params(config))
+
+
+def finish_episodes(
+    config: Config, run: Run, plan: tuple[shards.Shard, ...], work: list[shards.ShardWork]
+) -> EpisodeSummary:
+    """Publish the shards as the warehouse's ``hourly``, ``episode`` and ``step``; write the ledger rows."""
+    inputs = ";".join(shard.fingerprint for shard in plan)
     with store.warehouse(config.warehouse_path) as con:
         with store.transaction(con):
-            counts = build(con, config)
+            shards.combine(con, plan, sql_params(config))
+            store.replace_table(con, "state_lookup", config.state.lookup())
+            counts = episode_counts(con)
             lineage.record(
-                con, "episodes", config.stage_settings("episodes"), _upstream("episodes"), run.run_id
+                con,
+                "episodes",
+                config.stage_settings("episodes"),
+                _upstream("episodes"),
+                run.run_id,
+                inputs=inputs,
             )
         steps = load_steps(con)
         episodes_frame = load_episodes(con)
+    shards.remove_stale(config, plan)
     tables = {"hourly": counts.hours, "episode": counts.episodes, "step": counts.steps}
     tables |= run.write("episode_summary", episode_summary(episodes_frame, steps))
     tables |= run.write("state_lookup", config.state.lookup())
+    tables |= run.write("shard_work", shards.work_frame("episodes", work))
     return EpisodeSummary(counts, tables)
+
+
+def episodes(config: Config, run: Run) -> EpisodeSummary:
+    """Rebuild the hourly grid, episodes and steps shard by shard; write ``episode_summary`` to the ledger.
+
+    Shards run one after another here; the Prefect flow maps them over its task runner.
+    """
+    plan = plan_episodes(config)
+    work = [episode_shard(config, shard) for shard in plan]
+    return finish_episodes(config, run, plan, work)
 
 
 def _steps(config: Config) -> pl.DataFrame:

@@ -94,10 +94,14 @@ labelled as (
     join first_hours f using (premise_id, start_utc)
     left join schedule_check c using (premise_id)
 ),
+-- The premise's number times $episodes_per_premise plus the episode's rank in the premise:
+-- the same id whatever shard the premise is built in.
 identified as (
     select
-        row_number() over (order by premise_id, start_utc) as episode_id,
-        *
-    from labelled
+        o.premise_number * $episodes_per_premise
+            + row_number() over (partition by l.premise_id order by l.start_utc) as episode_id,
+        l.*
+    from labelled l
+    join premise_order o using (premise_id)
 )
 select * from identified

@@ -147,3 +147,7 @@ create or replace macro meter_hours() as table
     select premise_id, hour_utc, sum(kwh) as kwh, sum(minutes) as minutes_read
     from (select * from whole union all select * from corrections)
     group by all;
+-- Each premise's number, its rank in premise-id order: episode ids are built from it, so
+-- they are the same whether the episode stage runs in one shard or many.
+create or replace view premise_order as
+    select premise_id, row_number() over (order by premise_id) as premise_number from premise;

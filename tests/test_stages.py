@@ -9,7 +9,6 @@ from datetime import date
 
 import pytest
 
-from pipeline import episodes as episodes_module
 from pipeline import stages, store
 from pipeline.cli import EXIT_USAGE, main
 from pipeline.ledger import Run
@@ -89,15 +88,15 @@ def test_stages_out_of_order_name_the_command_to_run(tmp_path, capsys):
 
 
 def test_a_failed_stage_leaves_the_warehouse_as_it_was(built, monkeypatch):
-    """An episode build failing after it replaced the hourly grid rolls back; evaluate still runs."""
+    """An episode build failing after it re-pointed the grid at new shards rolls back; evaluate runs."""
     _, config = built
     before = _tables(config)
 
     def fail(*_args, **_kwargs):
         raise RuntimeError("disk full")
 
-    # The hourly and episode tables are already replaced when the state keys are added.
-    monkeypatch.setattr(episodes_module, "add_state_keys", fail)
+    # The views hourly, episode and step already read the new shards when the counts are taken.
+    monkeypatch.setattr(stages, "episode_counts", fail)
     with pytest.raises(RuntimeError, match="disk full"):
         stages.episodes(dataclasses.replace(config, recovery_hours=2, min_episode_hours=4), Run(config))
     monkeypatch.undo()
