@@ -2,6 +2,13 @@
 
 Each task is one call into ``pipeline.stages``, in the order ``stages.STAGES`` gives;
 nothing here transforms data, so every step can be run and tested without Prefect.
+
+The episode stage is mapped over its shards of premises in a subflow whose task runner
+the configuration chooses: Prefect's thread pool (``task_runner = "default"``), or
+``prefect-dask``'s ``DaskTaskRunner`` (``"dask"``) on a local cluster of ``dask_workers``
+processes or on the scheduler at ``dask_address``. Shard tasks read the warehouse
+read-only and write only their own shard folder, so a worker on another machine needs
+only the same paths (a shared file system) and the package installed.
 """
 
 from __future__ import annotations
@@ -11,11 +18,13 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import Any
 
-from prefect import flow, task
+from prefect import flow, task, unmapped
 from prefect.cache_policies import NO_CACHE
+from prefect.task_runners import TaskRunner, ThreadPoolTaskRunner
 
 from pipeline import config as config_module
-from pipeline import stages
+from pipeline import shards, stages
+from pipeline.config import Config, ConfigError
 from pipeline.ledger import Run
 
 
@@ -48,6 +57,51 @@ STAGE_TASKS = {
     name: task(stages.STAGE_FUNCTIONS[name], name=name, cache_policy=NO_CACHE) for name in stages.STAGES
 }
 finish_task = task(stages.finish, name="finish", cache_policy=NO_CACHE)
+plan_episodes_task = task(stages.plan_episodes, name="plan-episode-shards", cache_policy=NO_CACHE)
+episode_shard_task = task(
+    stages.episode_shard,
+    name="episode-shard",
+    cache_policy=NO_CACHE,
+    task_run_name="episode-shard-{shard.shard_id}",
+)
+finish_episodes_task = task(stages.finish_episodes, name="episodes", cache_policy=NO_CACHE)
+
+
+def task_runner(config: Config) -> TaskRunner:
+    """The task runner the configuration asks for the shard tasks."""
+    if config.task_runner == "default":
+        # Each shard's DuckDB queries use every core already; two at a time overlap their I/O.
+        return ThreadPoolTaskRunner(max_workers=2)
+    try:
+        from prefect_dask import DaskTaskRunner
+    except ImportError as error:
+        raise ConfigError(
+            "task_runner = 'dask' needs the dask extra: pip install 'thermal-ledger[dask]'"
+        ) from error
+    if config.dask_address:
+        return DaskTaskRunner(address=config.dask_address)
+    return DaskTaskRunner(
+        cluster_kwargs={
+            "n_workers": config.dask_workers,
+            "threads_per_worker": 1,
+            "processes": True,
+            "dashboard_address": None,
+        }
+    )
+
+
+@flow(name="episode-shards")
+def episode_shards(config: Config, plan: tuple[shards.Shard, ...]) -> list[shards.ShardWork]:
+    """Build every shard of the episode stage on this flow's task runner; return what each did."""
+    futures = episode_shard_task.map(unmapped(config), plan)
+    return [future.result() for future in futures]
+
+
+def episodes_mapped(config: Config, run: Run) -> stages.EpisodeSummary:
+    """The episode stage as Prefect tasks: plan the shards, map them, publish them."""
+    plan = plan_episodes_task(config)
+    work = episode_shards.with_options(task_runner=task_runner(config))(config, plan) if plan else []
+    return finish_episodes_task(config, run, plan, work)
 
 
 @flow(name="thermal-ledger-run", log_prints=True)
@@ -57,6 +111,11 @@ def thermal_ledger_run(
     """Ingest, build episodes, learn and evaluate; write the ledger for one run."""
     config = config_module.load(config_path, overrides)
     run = Run(config)
-    results = {name: STAGE_TASKS[name](config, run) for name in stages.STAGES}
+    results = {}
+    for name in stages.STAGES:
+        if name == "episodes":
+            results[name] = episodes_mapped(config, run)
+        else:
+            results[name] = STAGE_TASKS[name](config, run)
     finish_task(config, run, results)
     return stages.summary(run, results)
