@@ -275,8 +275,15 @@ def run_bench(settings: BenchSettings, say: Callable[[str], None] = print) -> di
     say(f"floor: {floor_s:.1f} s for {floor_hours:,} premise-hours")
     out = settings.work / f"out-{name}"
     timings = run_stages(settings.lake, out, settings.work / f"logs-{name}", say)
+    # The same lake again with no new files: every stage should reuse its build.
+    rerun = [
+        (stage, *run_stage(stage, settings.lake, out, settings.work / f"logs-{name}" / f"{stage}-again.log"))
+        for stage in STAGES
+    ]
     startup_s = measure_startup()
     whole_s = sum(t.seconds for t in timings)
+    rerun_s = sum(seconds for _, seconds, _ in rerun)
+    say(f"rerun with no new files: {rerun_s:.1f} s")
     report: dict[str, Any] = {
         "premises": settings.premises,
         "days": settings.days,
@@ -293,6 +300,12 @@ def run_bench(settings: BenchSettings, say: Callable[[str], None] = print) -> di
             " peak = the largest stage's peak resident memory",
         },
         "whole_run_over_floor": whole_s / floor_s,
+        "rerun": {
+            "seconds": rerun_s,
+            "over_whole_run": rerun_s / whole_s,
+            "stages": {stage: {"seconds": seconds, "peak_mib": peak} for stage, seconds, peak in rerun},
+            "how": "every stage again on the same lake and output folder, no file added",
+        },
         "startup_seconds": startup_s,
         "estimators": compare_estimators(estimator_frame(settings.lake, out)),
     }
@@ -357,6 +370,12 @@ def print_report(report: dict[str, Any]) -> None:
             f"{name}: vectorised {e['vectorised_s'] * 1000:.1f} ms,"
             f" reference loop {e['loop_s'] * 1000:.1f} ms,"
             f" speed-up {e['speedup']:.1f}x"
+        )
+    if "rerun" in report:
+        r = report["rerun"]
+        lines.append(
+            f"rerun with no new files: {r['seconds']:.1f} s"
+            f" ({100 * r['over_whole_run']:.1f} % of the whole run)"
         )
     if "csv_ingest" in report:
         c = report["csv_ingest"]

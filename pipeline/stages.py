@@ -15,6 +15,7 @@ and a stage whose inputs were built with other settings refuses to run.
 from __future__ import annotations
 
 import dataclasses
+import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -56,6 +57,15 @@ STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "evaluate")
 
 
 @dataclass(frozen=True)
+class StageWork:
+    """Whether a stage reused its last build or computed a new one, and its wall time."""
+
+    stage: str
+    reused: bool = False
+    seconds: float = 0.0
+
+
+@dataclass(frozen=True)
 class IngestSummary:
     """Per-file ingest results and whether any file was refused."""
 
@@ -63,6 +73,7 @@ class IngestSummary:
     refused: int
     tables: Mapping[str, int] = field(default_factory=dict)
     """Rows per warehouse table after the load."""
+    work: StageWork = field(default_factory=lambda: StageWork("ingest"))
 
 
 @dataclass(frozen=True)
@@ -71,6 +82,7 @@ class EpisodeSummary:
 
     counts: EpisodeCounts
     tables: Mapping[str, int] = field(default_factory=dict)
+    work: StageWork = field(default_factory=lambda: StageWork("episodes"))
 
 
 @dataclass(frozen=True)
@@ -84,6 +96,7 @@ class BehaviorSummary:
     premises_per_type: tuple[int, ...]
     """Premises whose largest share is each habit type, in type order (empty for the counts model)."""
     tables: Mapping[str, int] = field(default_factory=dict)
+    work: StageWork = field(default_factory=lambda: StageWork("learn"))
 
     def describe(self) -> str:
         """One line for the run summary."""
@@ -103,6 +116,7 @@ class EvaluationSummary:
     savings: pl.DataFrame
     horizon: pl.DataFrame
     tables: Mapping[str, int] = field(default_factory=dict)
+    work: StageWork = field(default_factory=lambda: StageWork("evaluate"))
 
 
 @dataclass(frozen=True)
@@ -147,6 +161,7 @@ def ingest(config: Config, run: Run, progress: ingestion.Progress | None = None)
     When a setting that shapes the checks changed since the last load, every file is read
     again, so no row stays loaded (or quarantined) under the old rules.
     """
+    started = time.perf_counter()
     reread = False
     if config.warehouse_path.exists():
         with store.warehouse(config.warehouse_path) as con:
@@ -159,7 +174,9 @@ def ingest(config: Config, run: Run, progress: ingestion.Progress | None = None)
             " ';' order by source_file), '') from ingest_log",
         )[0][0]
         lineage.record(con, "ingest", config.stage_settings("ingest"), (), run.run_id, inputs=loaded)
-    return IngestSummary(results, int((results["status"] == "refused").sum()))
+    unchanged = bool((results["status"] == "unchanged").all())
+    work = StageWork("ingest", unchanged, time.perf_counter() - started)
+    return IngestSummary(results, int((results["status"] == "refused").sum()), work=work)
 
 
 def plan_episodes(config: Config) -> tuple[shards.Shard, ...]:
@@ -178,6 +195,7 @@ def finish_episodes(
     config: Config, run: Run, plan: tuple[shards.Shard, ...], work: list[shards.ShardWork]
 ) -> EpisodeSummary:
     """Publish the shards as the warehouse's ``hourly``, ``episode`` and ``step``; write the ledger rows."""
+    started = time.perf_counter()
     inputs = ";".join(shard.fingerprint for shard in plan)
     with store.warehouse(config.warehouse_path) as con:
         with store.transaction(con):
@@ -199,7 +217,8 @@ def finish_episodes(
     tables |= run.write("episode_summary", episode_summary(episodes_frame, steps))
     tables |= run.write("state_lookup", config.state.lookup())
     tables |= run.write("shard_work", shards.work_frame("episodes", work))
-    return EpisodeSummary(counts, tables)
+    seconds = time.perf_counter() - started + sum(w.seconds for w in work)
+    return EpisodeSummary(counts, tables, StageWork("episodes", all(w.reused for w in work), seconds))
 
 
 def episodes(config: Config, run: Run) -> EpisodeSummary:
@@ -243,19 +262,27 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
     """Estimate the behaviour policy; keep it in the warehouse and write it to the ledger.
 
     The same model (its chosen size, no second search) is also fitted on the steps of the
-    other choice of decision points, for the evaluate stage's horizon report.
+    other choice of decision points, for the evaluate stage's horizon report. When the
+    warehouse's model was fitted from the same episodes with the same settings and code
+    (its build id is unchanged), it is reused as it is rather than fitted again.
     """
+    started = time.perf_counter()
     _checked(config, "learn")
-    steps = _steps(config)
-    model = fit_behavior(steps, config)
-    other = _other_choice(config)
-    with store.warehouse(config.warehouse_path, read_only=True) as con:
-        other_steps = steps_for(con, other)
-    other_model = model.clone().fit(other_steps)
-    with store.warehouse(config.warehouse_path) as con, store.transaction(con):
-        _store_behavior(con, model, "behavior")
-        _store_behavior(con, other_model, f"behavior_{other.decision_points}")
-        lineage.record(con, "learn", config.stage_settings("learn"), _upstream("learn"), run.run_id)
+    build_id = _build_id(config, "learn")
+    if build_id is not None:
+        with store.warehouse(config.warehouse_path, read_only=True) as con:
+            model = _load_behavior(con, "behavior", config)
+    else:
+        steps = _steps(config)
+        model = fit_behavior(steps, config)
+        other = _other_choice(config)
+        with store.warehouse(config.warehouse_path, read_only=True) as con:
+            other_steps = steps_for(con, other)
+        other_model = model.clone().fit(other_steps)
+        with store.warehouse(config.warehouse_path) as con, store.transaction(con):
+            _store_behavior(con, model, "behavior")
+            _store_behavior(con, other_model, f"behavior_{other.decision_points}")
+            lineage.record(con, "learn", config.stage_settings("learn"), _upstream("learn"), run.run_id)
     tables: dict[str, int] = {}
     for name, frame in model.to_tables().items():
         tables |= run.write(f"behavior_{name}", frame)
@@ -273,12 +300,23 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
         tables["behavior_policy"],
         per_type,
         tables,
+        StageWork("learn", build_id is not None, time.perf_counter() - started),
     )
 
 
-def evaluate(config: Config, run: Run) -> EvaluationSummary:
-    """Evaluate the behaviour policy and every candidate; write savings, policy and diagnostics."""
-    _checked(config, "evaluate")
+EVALUATION_TABLES: tuple[str, ...] = ("horizon", "state_value", "savings", "policy", "diagnostics")
+"""The ledger tables the evaluate stage writes, also kept in the warehouse as ``evaluation_<name>``."""
+
+
+def _build_id(config: Config, stage: str) -> str | None:
+    """The current build's id of ``stage`` if this run would build it the same, else None."""
+    with store.warehouse(config.warehouse_path) as con:
+        build_id = lineage.build_id_for(con, stage, config.stage_settings(stage), _upstream(stage))
+        return build_id if lineage.reusable(con, stage, build_id) else None
+
+
+def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
+    """Every frame the evaluate stage publishes, computed from the warehouse's steps and behaviour model."""
     steps = _steps(config)
     other = _other_choice(config)
     with store.warehouse(config.warehouse_path, read_only=True) as con:
@@ -294,13 +332,44 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
         )
         by_choice = {config.decision_points: steps, other.decision_points: steps_for(con, other)}
     result = evaluation.evaluate_candidates(steps, behavior, days, config)
-    horizon = evaluation.horizon_report(by_choice, config, fitted)
-    tables = run.write("horizon", horizon)
-    tables |= run.write("state_value", evaluation.state_values(steps))
-    tables |= run.write("savings", result.savings)
-    tables |= run.write("policy", result.policy)
-    tables |= run.write("diagnostics", result.diagnostics)
-    return EvaluationSummary(result.savings, horizon, tables)
+    return {
+        "horizon": evaluation.horizon_report(by_choice, config, fitted),
+        "state_value": evaluation.state_values(steps),
+        "savings": result.savings,
+        "policy": result.policy,
+        "diagnostics": result.diagnostics,
+    }
+
+
+def evaluate(config: Config, run: Run) -> EvaluationSummary:
+    """Evaluate the behaviour policy and every candidate; write savings, policy and diagnostics.
+
+    The frames are kept in the warehouse with the stage's build record, so a run whose
+    steps, behaviour model, settings and code are unchanged republishes them without
+    evaluating again.
+    """
+    started = time.perf_counter()
+    _checked(config, "evaluate")
+    build_id = _build_id(config, "evaluate")
+    if build_id is not None:
+        with store.warehouse(config.warehouse_path, read_only=True) as con:
+            frames = {
+                name: store.frame(con, f"select * from {store.quote_identifier(f'evaluation_{name}')}")
+                for name in EVALUATION_TABLES
+            }
+    else:
+        frames = _evaluation_tables(config)
+        with store.warehouse(config.warehouse_path) as con, store.transaction(con):
+            for name in EVALUATION_TABLES:
+                store.replace_table(con, f"evaluation_{name}", frames[name])
+            lineage.record(
+                con, "evaluate", config.stage_settings("evaluate"), _upstream("evaluate"), run.run_id
+            )
+    tables: dict[str, int] = {}
+    for name in EVALUATION_TABLES:
+        tables |= run.write(name, frames[name])
+    work = StageWork("evaluate", build_id is not None, time.perf_counter() - started)
+    return EvaluationSummary(frames["savings"], frames["horizon"], tables, work)
 
 
 def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
@@ -308,8 +377,21 @@ def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
     row_counts: dict[str, int] = {}
     for result in results.values():
         row_counts |= dict(result.tables)
+    row_counts |= run.write("stage_work", stage_work_frame([result.work for result in results.values()]))
     with store.warehouse(config.warehouse_path, read_only=True) as con:
         return str(run.finish(row_counts, con))
+
+
+def stage_work_frame(work: list[StageWork]) -> pl.DataFrame:
+    """The run record's rows of what each stage did: reused or computed, and its seconds."""
+    return pl.DataFrame(
+        {
+            "stage": [w.stage for w in work],
+            "status": ["reused" if w.reused else "computed" for w in work],
+            "seconds": [w.seconds for w in work],
+        },
+        schema={"stage": pl.Utf8, "status": pl.Utf8, "seconds": pl.Float64},
+    )
 
 
 STAGE_FUNCTIONS: dict[str, Callable[[Config, Run], Any]] = {

@@ -49,6 +49,19 @@ def test_every_ratio_is_finite_and_positive(tiny):
     assert all(math.isfinite(r) and r > 0 for r in ratios), ratios
 
 
+def test_the_rerun_with_no_new_files_reuses_every_stage(tiny):
+    """The second pass over the same lake times every stage and records each as reused in the ledger."""
+    settings, _, written = tiny
+    assert sorted(written["rerun"]["stages"]) == sorted(STAGES)
+    assert_allclose(
+        written["rerun"]["seconds"], sum(s["seconds"] for s in written["rerun"]["stages"].values())
+    )
+    ledger = settings.work / f"out-{settings.lake.name}" / "ledger"
+    work = pl.read_parquet(ledger / "stage_work" / "run_date=*" / "*.parquet", hive_partitioning=False)
+    statuses = work.group_by("run_id").agg(pl.col("status").unique()).sort("run_id")
+    assert sorted(statuses["status"].to_list()) == [["computed"]] * len(STAGES) + [["reused"]] * len(STAGES)
+
+
 def test_the_csv_copy_loads_the_same_meter_rows(tiny):
     """The meter files converted to CSV load exactly as many meter rows as the Parquet files."""
     _, _, written = tiny

@@ -98,6 +98,17 @@ def _work(config, run_id: str) -> pl.DataFrame:
     return work.filter(pl.col("run_id") == run_id).sort("shard_id")
 
 
+def assert_same_ledger_rows(config, first: str, again: str) -> None:
+    """A reused run republishes the same rows under its own run id, and no more."""
+    for table in ("savings", "policy", "behavior_policy", "episode_summary"):
+        rows = pl.read_parquet(
+            config.ledger_path / table / "run_date=*" / "*.parquet", hive_partitioning=False
+        )
+        before, after = (rows.filter(pl.col("run_id") == r).drop("run_id") for r in (first, again))
+        assert after.height == before.height > 0, table
+        assert_frame_equal(after, before), table
+
+
 def test_a_rerun_reuses_every_shard_and_a_new_file_recomputes_only_its_shards(tmp_path):
     """Shards are reused while their inputs hash the same; a meter file for 6 homes recomputes their shard."""
     lake = tmp_path / "lake"
@@ -109,6 +120,11 @@ def test_a_rerun_reuses_every_shard_and_a_new_file_recomputes_only_its_shards(tm
     assert set(_work(config, first.run_id)["status"]) == {"computed"}
     again = stages.run_all(config)
     assert set(_work(config, again.run_id)["status"]) == {"reused"}
+    record = pl.read_parquet(
+        config.ledger_path / "stage_work" / "run_date=*" / "*.parquet", hive_partitioning=False
+    ).filter(pl.col("run_id") == again.run_id)
+    assert dict(record.select("stage", "status").rows()) == dict.fromkeys(stages.STAGES, "reused")
+    assert_same_ledger_rows(config, first.run_id, again.run_id)
 
     # September's reads for the first six homes (a tenth of the lake): August's, a month on.
     august = pl.read_parquet(lake / "landing" / "meter" / "meter_2026-08.parquet")
