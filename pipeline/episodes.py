@@ -7,6 +7,7 @@ state key with the shared ``StateSpace``.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import duckdb
@@ -128,39 +129,22 @@ def counts(con: duckdb.DuckDBPyConnection) -> EpisodeCounts:
     )
 
 
-def load_steps(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
-    """All decision steps with their cohort, sorted by (episode_id, t)."""
+def load_steps(con: duckdb.DuckDBPyConnection, table: str = "step") -> pl.DataFrame:
+    """All decision steps with their cohort, sorted by (episode_id, t).
+
+    ``table`` is ``step``, or ``step_alternate`` for the steps under the other choice of
+    decision points (built beside them by the sharded episode stage).
+    """
+    name = store.quote_identifier(table)
     return store.frame(
-        con, "select s.*, p.cohort from step s join premise p using (premise_id) order by episode_id, t"
+        con, f"select s.*, p.cohort from {name} s join premise p using (premise_id) order by episode_id, t"
     )
 
 
-def episode_summary(episodes: pl.DataFrame, steps: pl.DataFrame) -> pl.DataFrame:
-    """One row per episode, used or excluded (with its reason): start, steps, return, kWh, penalty."""
-    used = steps.group_by("episode_id").agg(
-        pl.len().alias("n_steps"),
-        pl.col("reward").sum().alias("return_usd"),
-        (pl.col("kwh").sum() + pl.col("recovery_kwh").sum()).alias("kwh"),
-        pl.col("comfort_penalty_usd").sum(),
-    )
-    return (
-        episodes.join(used, on="episode_id", how="left")
-        .select(
-            "premise_id",
-            "episode_id",
-            "start_utc",
-            "day_type",
-            "mode",
-            "presence_source",
-            "n_away_hours",
-            pl.col("n_steps").fill_null(0),
-            "return_usd",
-            "kwh",
-            "comfort_penalty_usd",
-            "excluded_reason",
-        )
-        .sort("episode_id")
-    )
+def other_choice(config: Config) -> Config:
+    """The configuration with the other choice of decision points (for the horizon report)."""
+    other = "fixed" if config.decision_points == "anchored" else "anchored"
+    return dataclasses.replace(config, decision_points=other)
 
 
 def load_episodes(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:

@@ -37,8 +37,11 @@ from pipeline import lineage, store
 from pipeline.config import Config
 from pipeline.episodes import add_state_keys
 
-SHARD_TABLES: tuple[str, ...] = ("hourly", "episode", "step")
-"""What a shard holds, in build order: each table's SQL reads the ones before it."""
+SHARD_TABLES: tuple[str, ...] = ("hourly", "episode", "step", "step_alternate")
+"""What a shard holds, in build order: each table's SQL reads the ones before it.
+
+``step_alternate`` is the steps under the other choice of decision points (anchored or
+fixed), which the learn and evaluate stages compare in their horizon report."""
 
 PREMISE_TABLES: tuple[str, ...] = ("meter_read", "thermostat_event")
 """The typed tables a shard reads only its own premises' rows of."""
@@ -132,8 +135,11 @@ def build_shard(config: Config, shard: Shard, params: Mapping[str, object]) -> S
                 )
             for table in SHARD_TABLES:
                 target = staging / f"{table}.parquet"
-                if table == "step":
-                    steps = add_state_keys(store.query(con, "step", dict(params)), config)
+                if table.startswith("step"):
+                    choice = dict(params)
+                    if table == "step_alternate":
+                        choice["anchored"] = not choice["anchored"]
+                    steps = add_state_keys(store.query(con, "step", choice), config)
                     steps.sort("episode_id", "t").write_parquet(target)
                     rows[table] = steps.height
                 else:
@@ -156,7 +162,7 @@ def build_shard(config: Config, shard: Shard, params: Mapping[str, object]) -> S
 
 
 def combine(con: duckdb.DuckDBPyConnection, shards: Iterable[Shard], params: Mapping[str, object]) -> None:
-    """Point the views ``hourly``, ``episode`` and ``step`` at the shards' files.
+    """Point the views ``hourly``, ``episode``, ``step`` and ``step_alternate`` at the shards' files.
 
     With no premises to shard, the tables are built empty (with their columns) in the warehouse.
     """
@@ -173,7 +179,10 @@ def combine(con: duckdb.DuckDBPyConnection, shards: Iterable[Shard], params: Map
             kind = "view" if existing[0][0] == "VIEW" else "table"
             store.execute(con, f"drop {kind} {name}")
         if not shards:
-            store.build_table(con, table, dict(params))
+            if table == "step_alternate":
+                store.execute(con, "create table step_alternate as select * from step limit 0")
+            else:
+                store.build_table(con, table, dict(params))
             continue
         files = ", ".join(_literal(str(shard.path(table))) for shard in shards)
         store.execute(con, f"create view {name} as select * from read_parquet([{files}])")

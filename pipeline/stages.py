@@ -14,7 +14,6 @@ and a stage whose inputs were built with other settings refuses to run.
 
 from __future__ import annotations
 
-import dataclasses
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -29,11 +28,9 @@ from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load
 from pipeline.config import Config
 from pipeline.episodes import (
     EpisodeCounts,
-    episode_summary,
-    load_episodes,
     load_steps,
+    other_choice,
     sql_params,
-    steps_for,
 )
 from pipeline.episodes import (
     counts as episode_counts,
@@ -210,11 +207,10 @@ def finish_episodes(
                 run.run_id,
                 inputs=inputs,
             )
-        steps = load_steps(con)
-        episodes_frame = load_episodes(con)
+        summary = store.query(con, "episode_summary")
     shards.remove_stale(config, plan)
     tables = {"hourly": counts.hours, "episode": counts.episodes, "step": counts.steps}
-    tables |= run.write("episode_summary", episode_summary(episodes_frame, steps))
+    tables |= run.write("episode_summary", summary)
     tables |= run.write("state_lookup", config.state.lookup())
     tables |= run.write("shard_work", shards.work_frame("episodes", work))
     seconds = time.perf_counter() - started + sum(w.seconds for w in work)
@@ -237,12 +233,6 @@ def _steps(config: Config) -> pl.DataFrame:
     if steps.is_empty():
         raise StageError("no usable decision steps: check the episode stage's exclusions (episode_summary)")
     return steps
-
-
-def _other_choice(config: Config) -> Config:
-    """The configuration with the other choice of decision points (for the horizon report)."""
-    other = "fixed" if config.decision_points == "anchored" else "anchored"
-    return dataclasses.replace(config, decision_points=other)
 
 
 def _store_behavior(con, model: BehaviorModel, prefix: str) -> None:
@@ -275,9 +265,9 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
     else:
         steps = _steps(config)
         model = fit_behavior(steps, config)
-        other = _other_choice(config)
+        other = other_choice(config)
         with store.warehouse(config.warehouse_path, read_only=True) as con:
-            other_steps = steps_for(con, other)
+            other_steps = load_steps(con, "step_alternate")
         other_model = model.clone().fit(other_steps)
         with store.warehouse(config.warehouse_path) as con, store.transaction(con):
             _store_behavior(con, model, "behavior")
@@ -318,7 +308,7 @@ def _build_id(config: Config, stage: str) -> str | None:
 def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
     """Every frame the evaluate stage publishes, computed from the warehouse's steps and behaviour model."""
     steps = _steps(config)
-    other = _other_choice(config)
+    other = other_choice(config)
     with store.warehouse(config.warehouse_path, read_only=True) as con:
         behavior = _load_behavior(con, "behavior", config)
         fitted = {
@@ -330,7 +320,7 @@ def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
             "select premise_id, p.cohort, count(distinct h.local_date) as days_observed"
             " from hourly h join premise p using (premise_id) group by all",
         )
-        by_choice = {config.decision_points: steps, other.decision_points: steps_for(con, other)}
+        by_choice = {config.decision_points: steps, other.decision_points: load_steps(con, "step_alternate")}
     result = evaluation.evaluate_candidates(steps, behavior, days, config)
     return {
         "horizon": evaluation.horizon_report(by_choice, config, fitted),
