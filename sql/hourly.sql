@@ -34,7 +34,7 @@ local_grid as (
     join premises p using (premise_id)
 ),
 weather as (
-    select station_id, date_trunc('hour', observed_at_utc) as hour_utc, avg(dry_bulb_c) as outdoor_c
+    select station_id, utc_hour(observed_at_utc) as hour_utc, avg(dry_bulb_c) as outdoor_c
     from weather_obs
     group by all
 ),
@@ -80,19 +80,19 @@ with_price as (
 setting_before as (
     select h.premise_id, h.hour_utc, e.mode as mode_before, e.cool_setpoint_c as cool_before,
            e.heat_setpoint_c as heat_before
-    from with_price h
+    from grid h
     asof left join events e on e.premise_id = h.premise_id and e.changed_at_utc < h.hour_utc
 ),
 setting_end as (
     select h.premise_id, h.hour_utc, e.mode as mode_end, e.cool_setpoint_c as cool_end,
            e.heat_setpoint_c as heat_end, e.indoor_c as indoor_end
-    from with_price h
+    from grid h
     asof left join events e
         on e.premise_id = h.premise_id and e.changed_at_utc < h.hour_utc + interval 1 hour
 ),
 presence_start as (
     select h.premise_id, h.hour_utc, p.occupied as occupied_at_start
-    from with_price h
+    from grid h
     asof left join presence p on p.premise_id = h.premise_id and p.changed_at_utc <= h.hour_utc
 ),
 -- Which evidence of absence each premise has.
@@ -112,7 +112,7 @@ presence_kind as (
     group by all
 ),
 presence_within as (
-    select e.premise_id, date_trunc('hour', e.changed_at_utc) as hour_utc,
+    select e.premise_id, utc_hour(e.changed_at_utc) as hour_utc,
            bool_or(e.occupied) as returned_within, count(distinct e.mode) as modes_within
     from events e
     group by all
