@@ -1,4 +1,4 @@
-"""The ``thermal-ledger`` command: one subcommand per stage, plus ``run`` for all of them.
+"""The ``thermal-ledger`` command: one subcommand per stage, ``run`` for all of them, ``serve`` on a schedule.
 
 Exit code 0 on success; 1 when any landing file was refused (the rest still
 loads); 2 for unusable settings or a stage that cannot run. A user's mistake is
@@ -111,6 +111,18 @@ def build_parser() -> argparse.ArgumentParser:
             p.add_argument(
                 "--no-prefect", action="store_true", help="run the stages directly, without a Prefect flow"
             )
+    serve = sub.add_parser(
+        "serve",
+        help="register the run as a Prefect deployment on a cron schedule and run it here until stopped",
+        description="Register the whole run (the flow thermal-ledger-run, with these settings) as a Prefect"
+        " deployment on a cron schedule (serve_cron, default 04:00 UTC on the 1st of each month) and keep"
+        " running its scheduled and hand-triggered runs until interrupted. Needs a running Prefect server"
+        " (`prefect server start`) and PREFECT_API_URL pointing at it.",
+        epilog=SETTINGS_HINT,
+    )
+    _common(serve)
+    serve.add_argument("--cron", help="cron text of the schedule (default: the serve_cron setting)")
+    serve.add_argument("--name", help="deployment name (default: the serve_name setting, 'monthly')")
     bench = sub.add_parser(
         "bench",
         help="time every stage (each in its own process) on a simulated lake, against a floor",
@@ -428,6 +440,31 @@ def _run_stage(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _serve(args: argparse.Namespace) -> int:
+    """Check the settings and the lake, then serve the run until interrupted (exit 2 without Prefect API)."""
+    overrides, flags = overrides_from(args), flags_from(args)
+    schedule = {key: value for key, value in (("serve_cron", args.cron), ("serve_name", args.name)) if value}
+    config = config_module.load(args.config, overrides, {**flags, **schedule})
+    _require_lake(config)
+    # The served runs may start from another folder: give them absolute paths.
+    parameters = {**overrides, **flags}
+    for key in ("lake", "out"):
+        if key in parameters:
+            parameters[key] = str(Path(parameters[key]).resolve())
+    config_path = str(args.config.resolve()) if args.config else None
+    from flows import serve as serving
+
+    served = serving.deployment(
+        config_path, parameters, config.serve_cron, config.serve_name, config.serve_timezone
+    )
+    try:
+        serving.serve(served)
+    except serving.PrefectUnavailable as exc:
+        print(f"thermal-ledger: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    return EXIT_OK
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of ``thermal-ledger``."""
     args = build_parser().parse_args(argv)
@@ -445,7 +482,7 @@ def main(argv: list[str] | None = None) -> int:
         print_settings(args.markdown)
         return EXIT_OK
     try:
-        return _run_stage(args)
+        return _serve(args) if args.stage == "serve" else _run_stage(args)
     except USER_ERRORS as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)
         return EXIT_USAGE

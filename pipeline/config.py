@@ -15,8 +15,10 @@ import dataclasses
 import difflib
 import inspect
 import json
+import shlex
 import textwrap
 import tomllib
+import zoneinfo
 from collections.abc import Callable
 from pathlib import Path
 from typing import Annotated, Any, get_args, get_origin, get_type_hints
@@ -24,6 +26,7 @@ from typing import Annotated, Any, get_args, get_origin, get_type_hints
 from pydantic import AfterValidator, BeforeValidator, ConfigDict, Field, Strict, TypeAdapter, ValidationError
 from pydantic.dataclasses import dataclass
 
+from pipeline.cron import check_cron
 from pipeline.features import StateSpace
 from pipeline.policies import DEFAULT_ACTIONS, SetbackRule
 
@@ -91,6 +94,24 @@ class _AutoOr:
         if value == "auto" or (not isinstance(value, bool) and self._check(value)):
             return value
         raise ValueError(f"must be 'auto' or {self.kind}")
+
+
+def _time_zone(value: str) -> str:
+    try:
+        zoneinfo.ZoneInfo(value)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        raise ValueError("must be an IANA time zone name, e.g. 'UTC' or 'America/Chicago'") from None
+    return value
+
+
+_BANNED_IN_NAMES = "/%&<>"
+"""Characters Prefect refuses in a deployment's name ('/' separates flow and deployment)."""
+
+
+def _deployment_name(value: str) -> str:
+    if not value.strip() or any(c in value for c in _BANNED_IN_NAMES):
+        raise ValueError(f"must be a non-empty name without any of {' '.join(_BANNED_IN_NAMES)}")
+    return value
 
 
 def _no_booleans(prefix: str) -> Callable[[Any], Any]:
@@ -261,6 +282,18 @@ class Config:
     """Scheduler of an existing Dask cluster (tcp://host:8786); empty starts a local cluster."""
     dask_workers: Count = _setting(2, stages=(), execution=True, unit="processes")
     """Worker processes of the local Dask cluster (when dask_address is empty)."""
+    serve_cron: Annotated[Name, AfterValidator(check_cron)] = _setting(
+        "0 4 1 * *", stages=(), execution=True, unit="cron"
+    )
+    """When `thermal-ledger serve` starts a run: cron text in serve_timezone (default: 04:00 on the 1st)."""
+    serve_timezone: Annotated[Name, AfterValidator(_time_zone)] = _setting(
+        "UTC", stages=(), execution=True, unit="IANA zone"
+    )
+    """Time zone the serve_cron schedule is read in (daylight-saving changes follow it)."""
+    serve_name: Annotated[Name, AfterValidator(_deployment_name)] = _setting(
+        "monthly", stages=(), execution=True
+    )
+    """Name of the Prefect deployment `thermal-ledger serve` registers (thermal-ledger-run/<name>)."""
 
     def __post_init__(self) -> None:
         _check_rules(self)
@@ -447,9 +480,13 @@ def _tuples(value: Any) -> Any:
     return tuple(_tuples(v) for v in value) if isinstance(value, list) else value
 
 
+_FLAG_NAMES = {"serve_cron": "cron", "serve_name": "name"}
+"""Settings whose command-line flag is not named after them (``thermal-ledger serve --cron``)."""
+
+
 def _where(source: str, key: str, value: Any) -> str:
     if source == "flag":
-        return f"--{key} {value}"
+        return f"--{_FLAG_NAMES.get(key, key)} {shlex.quote(str(value))}"
     if source == "--set":
         return f"--set {key}={_show(value)}"
     return f"{source}: {key}={_show(value)}"
@@ -681,8 +718,11 @@ _RULES = {
     "presence_sources": "no repeats",
     "estimators": "no repeats",
     "recommended_estimator": "one of estimators",
+    "serve_cron": "5 fields (minute hour day-of-month month day-of-week) or @hourly ... @yearly",
+    "serve_timezone": "an IANA time zone name",
+    "serve_name": "no / % & < >",
 }
-"""Rules between settings (checked in ``_check_rules``), for the reference."""
+"""Rules between settings (``_check_rules``) and checks beyond a type, in words, for the reference."""
 
 _NESTED_RULES = {
     "state.hour_bucket_hours": "a divisor of 24",
