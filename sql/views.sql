@@ -31,6 +31,10 @@ create or replace view horizon as
     select * from read_parquet(getvariable('ledger_root') || '/horizon/*/*.parquet', hive_partitioning = true, union_by_name = true);
 create or replace view state_lookup as
     select * from read_parquet(getvariable('ledger_root') || '/state_lookup/*/*.parquet', hive_partitioning = true, union_by_name = true);
+create or replace view shard_work as
+    select * from read_parquet(getvariable('ledger_root') || '/shard_work/*/*.parquet', hive_partitioning = true, union_by_name = true);
+create or replace view stage_work as
+    select * from read_parquet(getvariable('ledger_root') || '/stage_work/*/*.parquet', hive_partitioning = true, union_by_name = true);
 create or replace view latest_run as
     select run_id from run order by finished_at desc limit 1;
 create or replace view savings_latest as
