@@ -28,6 +28,7 @@ from pipeline.estimators import EstimatorInputError
 from pipeline.ingest import IngestError
 from pipeline.ledger import Run
 from pipeline.policies import PolicyError
+from pipeline.simulate.lake import CHUNK_PREMISES
 from pipeline.store import StoreError
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE = 0, 1, 2
@@ -93,6 +94,14 @@ def build_parser() -> argparse.ArgumentParser:
     sim.add_argument("--out", type=Path, required=True, help="folder to write landing/ and truth/ into")
     sim.add_argument("--start", type=dt.date.fromisoformat, default=dt.date(2026, 6, 1), help="first day")
     sim.add_argument("--days", type=int, default=92, help="number of days (default 92)")
+    sim.add_argument(
+        "--chunk-premises",
+        type=int,
+        default=CHUNK_PREMISES,
+        metavar="N",
+        help="homes simulated at a time: peak memory grows with it, the files stay the same"
+        f" (default {CHUNK_PREMISES})",
+    )
     sim.add_argument(
         "--hidden-confounder",
         action="store_true",
@@ -469,9 +478,13 @@ def main(argv: list[str] | None = None) -> int:
     """Entry point of ``thermal-ledger``."""
     args = build_parser().parse_args(argv)
     if args.stage == "simulate":
-        from pipeline.simulate import main_simulate
+        from pipeline.simulate import SimulationError, main_simulate
 
-        summary = main_simulate(args)
+        try:
+            summary = main_simulate(args)
+        except SimulationError as exc:
+            print(f"thermal-ledger simulate: {exc}", file=sys.stderr)
+            return EXIT_USAGE
         print(", ".join(f"{k}: {v}" for k, v in summary.items() if not isinstance(v, dict | list)))
         return EXIT_OK
     if args.stage == "bench":

@@ -44,6 +44,35 @@ def test_simulate_is_reproducible_bit_for_bit_from_its_seed(tmp_path):
     assert first and first == _digests(tmp_path / "b")
 
 
+def test_simulate_chunk_premises_reaches_the_simulator_and_leaves_the_files_unchanged(tmp_path, monkeypatch):
+    """``--chunk-premises 1`` simulates one home at a time and writes the same bytes as the default chunk."""
+    from pipeline.simulate import lake
+
+    seen, real = [], lake.generate_lake
+
+    def spy(*args, **kwargs):
+        seen.append(kwargs["chunk_premises"])
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(lake, "generate_lake", spy)
+    args = ["simulate", "--premises", "3", "--days", "7", "--seed", "11"]
+    assert main([*args, "--out", str(tmp_path / "one"), "--chunk-premises", "1"]) == EXIT_OK
+    assert main([*args, "--out", str(tmp_path / "default")]) == EXIT_OK
+    assert seen == [1, lake.CHUNK_PREMISES]
+    assert _digests(tmp_path / "one") == _digests(tmp_path / "default")
+
+
+@pytest.mark.parametrize("flag", ["--chunk-premises", "--premises", "--days"])
+@pytest.mark.parametrize("value", ["0", "-2"])
+def test_simulate_refuses_counts_below_one_in_one_line(tmp_path, capsys, flag, value):
+    """A chunk size, number of homes or days below one exits 2, one line naming the flag; no files."""
+    code = main(["simulate", "--premises", "2", "--days", "2", flag, value, "--out", str(tmp_path / "lake")])
+    assert code == EXIT_USAGE
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err == [f"thermal-ledger simulate: {flag} {value}: must be at least 1"]
+    assert not (tmp_path / "lake").exists()
+
+
 def test_ingest_exits_non_zero_when_a_file_is_refused(tmp_path, capsys):
     """A meter file without its kWh column is refused: exit code 1 and a message naming file and column."""
     lake = write_landing(tmp_path, {"meter/m.csv": "premise_id,interval_start,interval_minutes\nP1,x,15\n"})

@@ -117,10 +117,12 @@ def test_summarised_runs_equal_a_plain_loop_over_premises():
             assert row["kwh"].item() == float(np.mean(seen["kwh"].to_numpy()[mask]))
 
 
-def test_generate_refuses_a_chunk_of_no_premises(tmp_path):
-    """A chunk size below one is refused with a message naming it."""
-    with pytest.raises(SimulationError, match="chunk_premises must be at least 1"):
-        generate_lake(tmp_path, chunk_premises=0, **SMALL)
+@pytest.mark.parametrize("name", ["chunk_premises", "n_premises", "days"])
+def test_generate_refuses_counts_below_one(tmp_path, name):
+    """A chunk size, number of homes or days below one is refused, naming it, before any file is made."""
+    with pytest.raises(SimulationError, match=f"{name} must be at least 1, got 0"):
+        generate_lake(tmp_path / "lake", **{**SMALL, "chunk_premises": 5, name: 0})
+    assert not (tmp_path / "lake").exists()
 
 
 def _assert_frames_close(expected: pl.DataFrame, actual: pl.DataFrame) -> None:

@@ -66,8 +66,9 @@ def generate_lake(
     do not depend on the chunk size and memory is bounded by the chunk.
     """
     began = time.perf_counter()
-    if chunk_premises < 1:
-        raise SimulationError(f"chunk_premises must be at least 1, got {chunk_premises}")
+    for name, value in (("n_premises", n_premises), ("days", days), ("chunk_premises", chunk_premises)):
+        if value < 1:
+            raise SimulationError(f"{name} must be at least 1, got {value}")
     params = replace(params or SimParams(), n_premises=n_premises, seed=seed, start=start, days=days)
     out = Path(out_dir)
     shared = build_shared(params)
@@ -474,10 +475,15 @@ def read_manifest(path: str | Path) -> dict[str, str]:
 
 
 def main_simulate(args: argparse.Namespace | Sequence[str] | None = None) -> dict:
-    """Entry for ``thermal-ledger simulate --premises N --seed S --out DIR [--start D --days K]``."""
+    """Entry for ``thermal-ledger simulate --premises N --seed S --out DIR [--start D --days K]``.
+
+    Raises SimulationError, before anything is written, when the premises, days or
+    ``--chunk-premises`` are below one.
+    """
     if not isinstance(args, argparse.Namespace):
         parser = argparse.ArgumentParser(prog="thermal-ledger simulate")
         parser.add_argument("--premises", type=int, default=60)
+        parser.add_argument("--chunk-premises", type=int, default=CHUNK_PREMISES)
         parser.add_argument("--seed", type=int, default=SimParams().seed)
         parser.add_argument("--out", required=True)
         parser.add_argument("--start", type=date.fromisoformat, default=SimParams().start)
@@ -486,6 +492,10 @@ def main_simulate(args: argparse.Namespace | Sequence[str] | None = None) -> dic
         parser.add_argument("--manifest", action="store_true")
         parser.add_argument("--policy-values", action="store_true")
         args = parser.parse_args(args)
+    checks = (("--premises", args.premises), ("--days", getattr(args, "days", 1)))
+    for flag, value in (*checks, ("--chunk-premises", getattr(args, "chunk_premises", CHUNK_PREMISES))):
+        if value < 1:
+            raise SimulationError(f"{flag} {value}: must be at least 1")
     params = SimParams(hidden_confounder=bool(getattr(args, "hidden_confounder", False)))
     summary = generate_lake(
         args.out,
@@ -495,6 +505,7 @@ def main_simulate(args: argparse.Namespace | Sequence[str] | None = None) -> dic
         days=getattr(args, "days", params.days),
         params=params,
         policy_values=bool(getattr(args, "policy_values", False)),
+        chunk_premises=getattr(args, "chunk_premises", CHUNK_PREMISES),
     )
     if getattr(args, "manifest", False):
         write_manifest(args.out)
