@@ -152,6 +152,20 @@ def connect_ledger(ledger: Path) -> duckdb.DuckDBPyConnection:
 
 
 @contextmanager
+def insertion_order_kept(con: duckdb.DuckDBPyConnection) -> Iterator[duckdb.DuckDBPyConnection]:
+    """Statements inside keep rows in the order they were read, whatever the connection's setting.
+
+    For tables whose ``rowid`` numbers records by their place in a file.
+    """
+    before = execute(con, "select current_setting('preserve_insertion_order')")[0][0]
+    execute(con, "set preserve_insertion_order = true")
+    try:
+        yield con
+    finally:
+        execute(con, "set preserve_insertion_order = $kept", {"kept": before})
+
+
+@contextmanager
 def transaction(con: duckdb.DuckDBPyConnection) -> Iterator[duckdb.DuckDBPyConnection]:
     """Everything written inside commits together, or is rolled back if anything raises."""
     execute(con, "begin transaction")
