@@ -9,35 +9,45 @@
 with source as (
     select * from landing
 ),
+-- Text is trimmed once; typed_<column> (a typed Parquet column) is taken before any text.
+trimmed as (
+    select
+        source_row,
+        nullif(trim(premise_id), '') as premise_id,
+        trim(interval_start) as interval_text,
+        typed_interval_start,
+        coalesce(typed_interval_minutes, try_cast(trim(interval_minutes) as integer)) as interval_minutes,
+        coalesce(
+            typed_kwh, try_cast(trim(kwh) as double), coalesce(typed_wh, try_cast(trim(wh) as double)) / 1000.0
+        ) as kwh,
+        lower(coalesce(nullif(trim(quality), ''), 'actual')) as quality
+    from source
+),
 parsed as (
     select
-        l.source_row,
-        nullif(trim(l.premise_id), '') as premise_id,
-        l.interval_start as interval_text,
+        l.* exclude (typed_interval_start),
         p.timezone,
-        l.typed_interval_start is not null
-            or regexp_matches(trim(l.interval_start), '(Z|[+-][0-9]{2}(:?[0-9]{2})?)$') as has_offset,
-        try_cast(trim(l.interval_start) as timestamp) as wall_clock,
-        l.typed_interval_start,
-        coalesce(l.typed_interval_minutes, try_cast(trim(l.interval_minutes) as integer)) as interval_minutes,
+        p.premise_id is not null as premise_known,
         coalesce(
-            l.typed_kwh, try_cast(trim(l.kwh) as double), coalesce(l.typed_wh, try_cast(trim(l.wh) as double)) / 1000.0
-        ) as kwh,
-        lower(coalesce(nullif(trim(l.quality), ''), 'actual')) as quality,
-        p.premise_id is not null as premise_known
-    from source l
-    left join premise p on p.premise_id = trim(l.premise_id)
+            l.typed_interval_start is not null or regexp_matches(l.interval_text, '(Z|[+-][0-9]{2}(:?[0-9]{2})?)$'),
+            false
+        ) as has_offset,
+        l.typed_interval_start
+    from trimmed l
+    left join premise p on p.premise_id = l.premise_id
 ),
 -- The offset test and parse are done once per row here (the hot path of a large lake);
--- the rules are those of the utc_instant and local_time_* macros in schema.sql.
+-- the rules are those of the utc_instant and local_time_* macros in schema.sql. Wall-clock
+-- text is parsed only where there is no offset.
 typed as (
     select
         * exclude (typed_interval_start),
+        case when not has_offset then try_cast(interval_text as timestamp) end as wall_clock,
         coalesce(
             typed_interval_start,
             case
-                when has_offset then try_cast(trim(interval_text) as timestamptz)
-                else timezone(timezone, wall_clock)
+                when has_offset then try_cast(interval_text as timestamptz)
+                else timezone(timezone, try_cast(interval_text as timestamp))
             end
         ) as interval_start_utc
     from parsed
@@ -48,7 +58,7 @@ row_checked as materialized (
         case
             when premise_id is null then 'missing_key'
             when not premise_known then 'unknown_premise'
-            when interval_start_utc is null and (interval_text is null or trim(interval_text) = '')
+            when interval_start_utc is null and (interval_text is null or interval_text = '')
                 then 'missing_timestamp'
             when interval_start_utc is null then 'bad_timestamp'
             when not has_offset and timezone(timezone, interval_start_utc) <> wall_clock
