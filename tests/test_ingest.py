@@ -752,6 +752,22 @@ def test_a_file_gone_from_the_lake_is_reported_and_its_rows_stay(tmp_path):
 # --- coverage -----------------------------------------------------------------------------
 
 
+def test_utc_hour_is_the_hour_an_instant_falls_in_also_before_1970(tmp_path):
+    """utc_hour (integer arithmetic on epoch microseconds) agrees with Python's own truncation."""
+    instants = [
+        dt.datetime(2026, 6, 1, 5, 0, tzinfo=dt.UTC),
+        dt.datetime(2026, 6, 1, 5, 59, 59, 999999, tzinfo=dt.UTC),
+        dt.datetime(2026, 11, 1, 6, 30, tzinfo=dt.UTC),
+        dt.datetime(1970, 1, 1, 0, 0, tzinfo=dt.UTC),
+        dt.datetime(1969, 12, 31, 23, 59, 59, 1, tzinfo=dt.UTC),
+        dt.datetime(1901, 3, 4, 17, 45, tzinfo=dt.UTC),
+    ]
+    with store.warehouse(tmp_path / "w.duckdb") as con:
+        store.run_sql(con, "schema")
+        got = [con.execute("select utc_hour($t::timestamptz)", {"t": t}).fetchall()[0][0] for t in instants]
+    assert got == [t.replace(minute=0, second=0, microsecond=0) for t in instants]
+
+
 def test_coverage_reports_missing_intervals_per_premise_consistently_with_the_hourly_grid(tmp_path):
     """Coverage counts expected and present intervals, and its gap hours are the grid's short hours."""
     starts = [dt.datetime(2026, 6, 1, 0, tzinfo=dt.UTC) + dt.timedelta(minutes=15 * i) for i in range(96)]
