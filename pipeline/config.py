@@ -15,6 +15,7 @@ import dataclasses
 import difflib
 import inspect
 import json
+import re
 import textwrap
 import tomllib
 from collections.abc import Callable
@@ -26,6 +27,7 @@ from pydantic.dataclasses import dataclass
 
 from pipeline.features import StateSpace
 from pipeline.policies import DEFAULT_ACTIONS, SetbackRule
+from pipeline.store import DuckDBSettings
 
 STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "evaluate")
 """The stages a setting can shape, in the order they run."""
@@ -64,6 +66,25 @@ class _OneOf:
         if value not in self.choices:
             raise ValueError(f"must be one of {_listing(self.choices)}{_did_you_mean(value, self.choices)}")
         return value
+
+
+class _Matches:
+    """Validator of text against a regular expression (case ignored); ``words`` say what it admits."""
+
+    def __init__(self, pattern: str, words: str) -> None:
+        self._pattern = re.compile(pattern, re.IGNORECASE)
+        self.words = words
+
+    def __call__(self, value: str) -> str:
+        if not self._pattern.fullmatch(value):
+            raise ValueError(f"must be {self.words}")
+        return value
+
+
+_MEMORY_SIZE = _Matches(
+    r"(\d+(\.\d+)?\s*([KMGT]i?B|[KMGT]|B|%))?",
+    '"" (DuckDB\'s default) or a size such as "4GB", "512MiB" or "50%" (of RAM)',
+)
 
 
 def _behavior_models() -> tuple[str, ...]:
@@ -261,6 +282,17 @@ class Config:
     """Scheduler of an existing Dask cluster (tcp://host:8786); empty starts a local cluster."""
     dask_workers: Count = _setting(2, stages=(), execution=True, unit="processes")
     """Worker processes of the local Dask cluster (when dask_address is empty)."""
+    duckdb_threads: Annotated[int, Strict(), Field(ge=0)] = _setting(
+        0, stages=(), execution=True, unit="threads"
+    )
+    """Threads each DuckDB connection may use; 0 leaves DuckDB's default (one per core)."""
+    duckdb_memory_limit: Annotated[Name, AfterValidator(_MEMORY_SIZE)] = _setting(
+        "", stages=(), execution=True, unit="bytes"
+    )
+    """Memory each DuckDB connection may hold before it spills to disk; empty leaves DuckDB's default
+    (80 % of RAM)."""
+    duckdb_preserve_insertion_order: Annotated[bool, Strict()] = _setting(True, stages=(), execution=True)
+    """Whether DuckDB keeps rows in the order read where a query does not sort; false can use less memory."""
 
     def __post_init__(self) -> None:
         _check_rules(self)
@@ -269,6 +301,13 @@ class Config:
     def warehouse_path(self) -> Path:
         """The DuckDB warehouse file."""
         return self.out / "warehouse.duckdb"
+
+    @property
+    def duckdb(self) -> DuckDBSettings:
+        """DuckDB's resources for every connection to the warehouse and ledger."""
+        return DuckDBSettings(
+            self.duckdb_threads, self.duckdb_memory_limit, self.duckdb_preserve_insertion_order
+        )
 
     @property
     def ledger_path(self) -> Path:
@@ -657,6 +696,8 @@ def _allowed(tp: Any) -> str:
             words = [" / ".join(f'"{c}"' for c in func.choices)]
         elif isinstance(func, _AutoOr):
             words = [f'"auto" or {func.kind}']
+        elif isinstance(func, _Matches):
+            words = [func.words]
         for item in getattr(m, "metadata", ()):
             for attr, sign in (
                 ("ge", ">="),

@@ -195,7 +195,7 @@ def ingest(config: Config, progress: Progress | None = None, reread: bool = Fals
     by_name = {_relative(path, config): (folder, path) for folder, path in work}
     unknown = _unknown_folders(landing)
     results: dict[str, FileResult] = {r.source_file: r for r in unknown}
-    with store.warehouse(config.warehouse_path) as con:
+    with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
         store.run_sql(con, "schema")
         if not any(folder.name == "meter" for folder, _ in work):
             _require_loaded_meter(con, landing, unknown)
