@@ -368,7 +368,9 @@ def _replace_file(
             "released_files",
             {"f": name, "folder": folder.name, "replacing": load.replacing, "releasable": load.releasable},
         )["source_file"].to_list()
-        for gone in [name, *released]:
+        # A file without a log entry has no rows (both are written in one transaction): deleting
+        # them would read the whole table's source_file column for nothing.
+        for gone in [name, *released] if load.replacing else released:
             store.execute(
                 con, f"delete from {store.quote_identifier(folder.table)} where source_file = $f", {"f": gone}
             )

@@ -256,6 +256,17 @@ REASON_CASES = [
         "premise_id,changed_at,mode,cool_setpoint_c,heat_setpoint_c\nP1,2026-06-01T12:00:00Z,warm,24,20\n",
         "bad_code",
     ),
+    # The same two wall-clock times as for the meter, in a thermostat log (IANA tz database).
+    (
+        "thermostat/t.csv",
+        "premise_id,changed_at,mode,cool_setpoint_c,heat_setpoint_c\nP1,2026-03-08 02:30,cool,24,20\n",
+        "nonexistent_local_time",
+    ),
+    (
+        "thermostat/t.csv",
+        "premise_id,changed_at,mode,cool_setpoint_c,heat_setpoint_c\nP1,2026-11-01 01:30,cool,24,20\n",
+        "ambiguous_local_time",
+    ),
     (
         "premises/q.csv",
         "premise_id,timezone,weather_station_id,rate_plan_id,comfort_cool_c,comfort_heat_c\n"
