@@ -599,10 +599,13 @@ def _load(
         )
     ]
     value_columns = ", ".join(store.quote_identifier(c) for c in target_columns if c != "source_file")
+    # In file order (the check's joins do not keep it): files usually list a premise's reads
+    # together, so the table's blocks stay narrow in premise_id and a later read of some
+    # premises (a shard) skips the others' blocks.
     store.execute(
         con,
         f"insert into {store.quote_identifier(folder.table)} ({value_columns}, source_file)"
-        f" select {value_columns}, $f from checked where reason is null",
+        f" select {value_columns}, $f from checked where reason is null order by source_row",
         {"f": name},
     )
     read, loaded, dup = store.query(con, "file_counts").row(0)
