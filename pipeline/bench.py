@@ -215,7 +215,7 @@ def _best_of(fn: Callable[..., Any], *args: Any, repeat: int) -> tuple[float, An
 def estimator_frame(lake: Path, out: Path) -> pl.DataFrame:
     """The run's steps with the first candidate's ``pi`` and the stored behaviour model's ``b``."""
     config = config_module.load(overrides={"lake": str(lake), "out": str(out)})
-    with store.warehouse(config.warehouse_path, read_only=True) as con:
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
         steps = load_steps(con)
         tables = {name: store.frame(con, f"select * from behavior_{name}") for name in BEHAVIOR_TABLES}
     behavior = load_behavior(tables, config.actions, config.state)

@@ -15,6 +15,7 @@ import dataclasses
 import difflib
 import inspect
 import json
+import re
 import shlex
 import textwrap
 import tomllib
@@ -29,6 +30,7 @@ from pydantic.dataclasses import dataclass
 from pipeline.cron import check_cron
 from pipeline.features import StateSpace
 from pipeline.policies import DEFAULT_ACTIONS, SetbackRule
+from pipeline.store import DuckDBSettings
 
 STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "evaluate")
 """The stages a setting can shape, in the order they run."""
@@ -67,6 +69,25 @@ class _OneOf:
         if value not in self.choices:
             raise ValueError(f"must be one of {_listing(self.choices)}{_did_you_mean(value, self.choices)}")
         return value
+
+
+class _Matches:
+    """Validator of text against a regular expression (case ignored); ``words`` say what it admits."""
+
+    def __init__(self, pattern: str, words: str) -> None:
+        self._pattern = re.compile(pattern, re.IGNORECASE)
+        self.words = words
+
+    def __call__(self, value: str) -> str:
+        if not self._pattern.fullmatch(value):
+            raise ValueError(f"must be {self.words}")
+        return value
+
+
+_MEMORY_SIZE = _Matches(
+    r"(\d+(\.\d+)?\s*([KMGT]i?B|[KMGT]|B|%))?",
+    '"" (DuckDB\'s default) or a size such as "4GB", "512MiB" or "50%" (of RAM)',
+)
 
 
 def _behavior_models() -> tuple[str, ...]:
@@ -294,6 +315,17 @@ class Config:
         "monthly", stages=(), execution=True
     )
     """Name of the Prefect deployment `thermal-ledger serve` registers (thermal-ledger-run/<name>)."""
+    duckdb_threads: Annotated[int, Strict(), Field(ge=0)] = _setting(
+        0, stages=(), execution=True, unit="threads"
+    )
+    """Threads each DuckDB connection may use; 0 leaves DuckDB's default (one per core)."""
+    duckdb_memory_limit: Annotated[Name, AfterValidator(_MEMORY_SIZE)] = _setting(
+        "", stages=(), execution=True, unit="bytes"
+    )
+    """Memory each DuckDB connection may hold before it spills to disk; empty leaves DuckDB's default
+    (80 % of RAM)."""
+    duckdb_preserve_insertion_order: Annotated[bool, Strict()] = _setting(True, stages=(), execution=True)
+    """Whether DuckDB keeps rows in the order read where a query does not sort; false can use less memory."""
 
     def __post_init__(self) -> None:
         _check_rules(self)
@@ -302,6 +334,13 @@ class Config:
     def warehouse_path(self) -> Path:
         """The DuckDB warehouse file."""
         return self.out / "warehouse.duckdb"
+
+    @property
+    def duckdb(self) -> DuckDBSettings:
+        """DuckDB's resources for every connection to the warehouse and ledger."""
+        return DuckDBSettings(
+            self.duckdb_threads, self.duckdb_memory_limit, self.duckdb_preserve_insertion_order
+        )
 
     @property
     def ledger_path(self) -> Path:
@@ -694,6 +733,8 @@ def _allowed(tp: Any) -> str:
             words = [" / ".join(f'"{c}"' for c in func.choices)]
         elif isinstance(func, _AutoOr):
             words = [f'"auto" or {func.kind}']
+        elif isinstance(func, _Matches):
+            words = [func.words]
         for item in getattr(m, "metadata", ()):
             for attr, sign in (
                 ("ge", ">="),

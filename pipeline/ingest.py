@@ -67,6 +67,12 @@ class Folder:
     """Columns read when present and left empty otherwise."""
     key: tuple[str, ...] = ()
     """Key of a time series whose conflicting duplicates across files are all quarantined."""
+    typed: tuple[tuple[str, str], ...] = ()
+    """Columns the check also takes already typed, (canonical name, DuckDB type), as ``typed_<name>``.
+
+    A Parquet column of a type that converts exactly (see ``_EXACT_SOURCES``) arrives there and
+    its text column is null, so the check does not format it as text and parse it back.
+    """
 
 
 # Order matters: premises need the tariffs, meter and thermostat rows need the premises.
@@ -94,6 +100,7 @@ FOLDERS: tuple[Folder, ...] = (
         "weather_obs",
         (("station_id",), ("observed_at",), ("dry_bulb_c", "dry_bulb_f")),
         key=("station_id", "observed_at_utc"),
+        typed=(("observed_at", "TIMESTAMPTZ"), ("dry_bulb_c", "DOUBLE"), ("dry_bulb_f", "DOUBLE")),
     ),
     Folder(
         "meter",
@@ -101,6 +108,12 @@ FOLDERS: tuple[Folder, ...] = (
         (("premise_id",), ("interval_start",), ("interval_minutes",), ("kwh", "wh")),
         ("quality",),
         ("premise_id", "interval_start_utc"),
+        typed=(
+            ("interval_start", "TIMESTAMPTZ"),
+            ("interval_minutes", "INTEGER"),
+            ("kwh", "DOUBLE"),
+            ("wh", "DOUBLE"),
+        ),
     ),
     Folder(
         "thermostat",
@@ -138,6 +151,20 @@ Progress = Callable[[int, int, FileResult], None]
 _ROW = "__row"
 """Name of the record-number column of a staged landing file (as in sql/landing_*.sql)."""
 
+_INTEGERS = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT")
+_INTEGERS += tuple("U" + kind for kind in _INTEGERS)
+_EXACT_SOURCES: dict[str, tuple[str, ...]] = {
+    "TIMESTAMPTZ": ("TIMESTAMP WITH TIME ZONE",),
+    "INTEGER": _INTEGERS,
+    "DOUBLE": ("DOUBLE", *_INTEGERS),
+}
+"""File column types that convert to a typed check column exactly as their text would parse.
+
+An absolute instant stays one (a naive TIMESTAMP is wall-clock time, read through its text in
+the premise's zone); integers fit or become null (as their text would fail); a FLOAT or a DECIMAL
+goes through its text, which is what a user reads.
+"""
+
 
 def landing_files(lake: Path, folder: str) -> list[Path]:
     """CSV (optionally gzip) and Parquet files of one landing folder, in name order."""
@@ -168,7 +195,7 @@ def ingest(config: Config, progress: Progress | None = None, reread: bool = Fals
     by_name = {_relative(path, config): (folder, path) for folder, path in work}
     unknown = _unknown_folders(landing)
     results: dict[str, FileResult] = {r.source_file: r for r in unknown}
-    with store.warehouse(config.warehouse_path) as con:
+    with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
         store.run_sql(con, "schema")
         if not any(folder.name == "meter" for folder, _ in work):
             _require_loaded_meter(con, landing, unknown)
@@ -270,52 +297,103 @@ def ingest_file(
             ), []
         return FileResult(name, folder.name, "unchanged", 0, 0, 0, 0), []
 
-    # Staging reads the file into temp tables before the transaction: a reader error must not
-    # abort the transaction that replaces the file's rows.
+    # Staging reads the file before the transaction: a reader error must not abort the
+    # transaction that replaces the file's rows.
     try:
         present, rejects = _stage(con, path)
         failure = None
     except (duckdb.Error, OSError, EOFError, UnicodeError, ValueError, FileRefused) as exc:
-        present, rejects = set(), 0
-        detail = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        failure = f"{name}: file cannot be read: {detail}"
+        present, rejects = {}, 0
+        failure = _unreadable(name, exc)
+    load = _Load(folder, path, name, content_hash, bool(seen), sorted(releasable or ()), started)
+    try:
+        try:
+            return _replace_file(con, load, config, present, rejects, failure)
+        except duckdb.Error:
+            # A Parquet file is read where it is checked, so damage behind an intact footer
+            # shows only now: if reading it whole fails, the file is refused like any unreadable one.
+            damage = _read_failure(con, name) if failure is None else None
+            if damage is None:
+                raise
+            return _replace_file(con, load, config, {}, 0, damage)
+    finally:
+        for table in _SCRATCH_TABLES:
+            store.execute(con, f"drop table if exists {store.quote_identifier(table)}")
 
+
+@dataclass(frozen=True)
+class _Load:
+    """One changed landing file being loaded: what the transaction that replaces its rows needs."""
+
+    folder: Folder
+    path: Path
+    name: str
+    content_hash: str
+    replacing: bool
+    """The file was loaded before (its old rows are replaced)."""
+    releasable: list[str]
+    started: float
+
+
+def _unreadable(name: str, exc: BaseException) -> str:
+    detail = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+    return f"{name}: file cannot be read: {detail}"
+
+
+def _read_failure(con: duckdb.DuckDBPyConnection, name: str) -> str | None:
+    """The refusal message if reading every value of the staged file fails, else None."""
+    try:
+        # Counts may come from the footer's statistics; hashing every value makes each page decode.
+        store.execute(con, "select bit_xor(hash(columns(*))) from landing_src")
+    except duckdb.Error as exc:
+        return _unreadable(name, exc)
+    return None
+
+
+def _replace_file(
+    con: duckdb.DuckDBPyConnection,
+    load: _Load,
+    config: Config,
+    present: dict[str, str],
+    rejects: int,
+    failure: str | None,
+) -> tuple[FileResult, list[str]]:
+    """Replace the file's rows, quarantine rows and log entry in one transaction (see ingest_file)."""
+    folder, name = load.folder, load.name
     store.execute(con, "begin transaction")
     try:
         # Files to check again against the new rows (sql/released_files.sql says which and why).
         released = store.query(
             con,
             "released_files",
-            {
-                "f": name,
-                "folder": folder.name,
-                "replacing": bool(seen),
-                "releasable": sorted(releasable or ()),
-            },
+            {"f": name, "folder": folder.name, "replacing": load.replacing, "releasable": load.releasable},
         )["source_file"].to_list()
-        for gone in [name, *released]:
+        # A file without a log entry has no rows (both are written in one transaction): deleting
+        # them would read the whole table's source_file column for nothing.
+        for gone in [name, *released] if load.replacing else released:
             store.execute(
                 con, f"delete from {store.quote_identifier(folder.table)} where source_file = $f", {"f": gone}
             )
             store.run_sql(con, "forget_file", {"f": gone})
+        moved_from: list[str] = []
         if failure is not None:
-            result = _refuse_unreadable(con, folder, path, name, failure)
+            result = _refuse_unreadable(con, folder, load.path, name, failure)
         else:
             try:
-                selected = _select_columns(folder, config.columns.get(folder.name, {}), present, name)
-                result, moved_from = _load(con, folder, name, selected, rejects, config)
+                selected = _select_columns(folder, config.columns.get(folder.name, {}), set(present), name)
+                result, moved_from = _load(con, folder, name, selected, present, rejects, config)
             except MissingColumnError as exc:
-                result, moved_from = _refuse_all_rows(con, folder, name, str(exc), rejects), []
-        if seen:
+                result = _refuse_all_rows(con, folder, name, str(exc), rejects)
+        if load.replacing:
             result = replace(result, message=result.message or "replaced the rows of an earlier version")
-        result = replace(result, seconds=time.perf_counter() - started)
+        result = replace(result, seconds=time.perf_counter() - load.started)
         store.run_sql(
             con,
             "log_file",
             {
                 "f": name,
                 "folder": folder.name,
-                "h": content_hash,
+                "h": load.content_hash,
                 "read": result.rows_read,
                 "loaded": result.rows_loaded,
                 "quar": result.rows_quarantined,
@@ -325,7 +403,7 @@ def ingest_file(
                 "secs": result.seconds,
             },
         )
-        _refresh_log(con, folder, [name, *moved_from] if failure is None else [name])
+        _refresh_log(con, folder, name, moved_from)
         store.execute(con, "commit")
     except Exception:
         store.execute(con, "rollback")
@@ -350,18 +428,20 @@ def _csv_header(path: Path) -> list[str]:
     return names
 
 
-def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
-    """Read one file whole into ``landing_src`` (source_row, then its columns); return names and rejects.
+def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[dict[str, str], int]:
+    """Stage one file as view ``landing_src`` (source_row, then its columns); return their types and rejects.
 
-    CSV records that do not parse (bad encoding, too many fields, unclosed quote) are kept in
-    ``landing_rejects`` with their text, split into lines; the parsed records are numbered around
-    them, so every record has its own row number.
+    A Parquet file is read where it is used (it is typed and numbered already); a CSV is parsed
+    once into a temp table. CSV records that do not parse (bad encoding, too many fields,
+    unclosed quote) are kept in view ``landing_rejected`` with their text, split into lines; the
+    parsed records are numbered around them, so every record has its own row number.
     """
     store.execute(con, "drop table if exists landing_rejects")
     store.execute(con, "drop table if exists landing_reject_scans")
     if path.name.lower().endswith(".parquet"):
-        store.build_table(con, "landing_parquet", {"path": str(path)}, temp=True)
-        _rename(con, "landing_parquet", "landing_raw")
+        store.execute(con, "set variable landing_path = $path", {"path": str(path)})
+        store.build_view(con, "landing_parquet", temp=True)
+        _use(con, "landing_parquet", "landing_raw")
         _no_rejects(con)
     else:
         header = _csv_header(path)
@@ -378,13 +458,12 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path) -> tuple[set[str], int]:
         if swallowed:
             _stage_by_lines(con, path, columns)
         else:
-            store.build_table(con, "landing_csv", temp=True)
-            _rename(con, "landing_csv", "landing_raw")
+            store.build_view(con, "landing_csv", temp=True)
             _number_rejects(con)
-        store.execute(con, "drop table landing_parsed")
     store.build_view(con, "landing_src", temp=True)
-    present = {row[0] for row in store.execute(con, "describe landing_src")} - {"source_row"}
-    rejects = store.execute(con, "select count(*) from landing_rejects_lines")[0][0]
+    present = {name: kind for name, kind, *_ in store.execute(con, "describe landing_src")}
+    del present["source_row"]
+    rejects = store.execute(con, "select count(*) from landing_rejected")[0][0]
     return present, rejects
 
 
@@ -393,12 +472,20 @@ _MULTI_LINE_REJECTS = (
 )
 """Rejected records spanning several lines: a quote that swallowed the lines after it."""
 
+_SCRATCH_TABLES = ("checked", "moved", "landing_parsed", "landing_line_records", "landing_line_rejects")
+"""Temp tables of one file, dropped once it is done so that their memory is not held meanwhile."""
+
 
 def _parse_csv(con: duckdb.DuckDBPyConnection, path: str, columns: dict[str, str], header: bool) -> None:
-    """Parse a CSV into ``landing_parsed``; records that do not parse go to ``landing_rejects``."""
+    """Parse a CSV into ``landing_parsed``; records that do not parse go to ``landing_rejects``.
+
+    Records are numbered by their position in the table (``rowid``), so it is built in file order
+    even when the connection may reorder results (``duckdb_preserve_insertion_order = false``).
+    """
     store.execute(con, "drop table if exists landing_rejects")
     store.execute(con, "drop table if exists landing_reject_scans")
-    store.build_table(con, "landing_parsed", {"path": path, "cols": columns, "header": header}, temp=True)
+    with store.insertion_order_kept(con):
+        store.build_table(con, "landing_parsed", {"path": path, "cols": columns, "header": header}, temp=True)
 
 
 def _stage_by_lines(con: duckdb.DuckDBPyConnection, path: Path, columns: dict[str, str]) -> None:
@@ -409,7 +496,8 @@ def _stage_by_lines(con: duckdb.DuckDBPyConnection, path: Path, columns: dict[st
     written to a scratch file and parsed; records keep their line number among the data lines
     (header and blank lines not counted), which is their record number in a file without damage.
     """
-    store.build_table(con, "landing_line_text", {"path": str(path)}, temp=True)
+    with store.insertion_order_kept(con):
+        store.build_table(con, "landing_line_text", {"path": str(path)}, temp=True)
     store.build_table(con, "landing_lines", temp=True)
     store.build_table(con, "landing_good_lines", temp=True)
     with tempfile.TemporaryDirectory() as scratch:
@@ -425,36 +513,37 @@ def _stage_by_lines(con: duckdb.DuckDBPyConnection, path: Path, columns: dict[st
         raise FileRefused(f"{path.name}: quotes that cannot be matched line by line")
     store.build_table(con, "landing_line_records", temp=True)
     store.build_table(con, "landing_line_rejects", temp=True)
-    _rename(con, "landing_line_records", "landing_raw")
-    _rename(con, "landing_line_rejects", "landing_rejects_lines")
-    _no_shifts(con)
-    for table in ("landing_line_text", "landing_lines", "landing_good_lines"):
+    _use(con, "landing_line_records", "landing_raw")
+    _use(con, "landing_line_rejects", "landing_rejected")
+    for table in ("landing_line_text", "landing_lines", "landing_good_lines", "landing_parsed"):
         store.execute(con, f"drop table {store.quote_identifier(table)}")
 
 
-def _rename(con: duckdb.DuckDBPyConnection, built: str, final: str) -> None:
-    """Make the staging table ``built`` the one later steps read, under the name ``final``."""
-    store.execute(con, f"drop table if exists {store.quote_identifier(final)}")
+def _use(con: duckdb.DuckDBPyConnection, built: str, final: str) -> None:
+    """Make the staged table or view ``built`` the one later steps read, as view ``final``."""
     store.execute(
-        con, f"alter table {store.quote_identifier(built)} rename to {store.quote_identifier(final)}"
-    )
-
-
-def _no_shifts(con: duckdb.DuckDBPyConnection) -> None:
-    # Records are already numbered by their own row: no reject shifts those after it.
-    store.execute(
-        con, "create or replace temp table landing_reject_shifts (good_before bigint, shift bigint)"
+        con,
+        f"create or replace temp view {store.quote_identifier(final)} as"
+        f" select * from {store.quote_identifier(built)}",
     )
 
 
 def _no_rejects(con: duckdb.DuckDBPyConnection) -> None:
-    store.execute(con, "create or replace temp table landing_rejects_lines (source_row bigint, line varchar)")
-    _no_shifts(con)
+    store.execute(con, "create or replace temp table landing_no_rejects (source_row bigint, line varchar)")
+    _use(con, "landing_no_rejects", "landing_rejected")
 
 
 def _number_rejects(con: duckdb.DuckDBPyConnection) -> None:
-    for table in ("landing_reject_records", "landing_reject_shifts", "landing_rejects_lines"):
-        store.build_table(con, table, temp=True)
+    """Number the parsed records of a CSV around its rejected ones (renumbered only if there are any)."""
+    store.build_table(con, "landing_reject_records", temp=True)
+    shifts = store.build_table(con, "landing_reject_shifts", temp=True)
+    store.build_table(con, "landing_rejects_lines", temp=True)
+    _use(con, "landing_rejects_lines", "landing_rejected")
+    if shifts:
+        store.build_view(con, "landing_shifted", temp=True)
+        _use(con, "landing_shifted", "landing_raw")
+    else:
+        _use(con, "landing_csv", "landing_raw")
 
 
 def _select_columns(
@@ -482,18 +571,11 @@ def _load(
     folder: Folder,
     name: str,
     selected: dict[str, str | None],
+    types: dict[str, str],
     rejects: int,
     config: Config,
 ) -> tuple[FileResult, list[str]]:
-    columns = ", ".join(
-        f"cast(t.{store.quote_identifier(src)} as varchar) as {store.quote_identifier(canon)}"
-        if src
-        else f"cast(null as varchar) as {store.quote_identifier(canon)}"
-        for canon, src in selected.items()
-    )
-    store.execute(
-        con, f"create or replace temp view landing as select t.source_row, {columns} from landing_src t"
-    )
+    _landing_view(con, folder, selected, types)
     params = {
         "cool_low": config.cool_band_c[0],
         "cool_high": config.cool_band_c[1],
@@ -517,29 +599,61 @@ def _load(
         )
     ]
     value_columns = ", ".join(store.quote_identifier(c) for c in target_columns if c != "source_file")
+    # In file order (the check's joins do not keep it): files usually list a premise's reads
+    # together, so the table's blocks stay narrow in premise_id and a later read of some
+    # premises (a shard) skips the others' blocks.
     store.execute(
         con,
         f"insert into {store.quote_identifier(folder.table)} ({value_columns}, source_file)"
         f" select {value_columns}, $f from checked where reason is null order by source_row",
         {"f": name},
     )
-    record_key = "c.record_key" if folder.key else "null"
-    # The raw JSON is made only for rejected rows: most rows pass and never need it.
-    store.execute(
-        con,
-        f"insert into quarantine (source_file, row_number, reason, raw, record_key)"
-        f" select $f, c.source_row, c.reason, {_RAW_JSON},"
-        f" case when c.reason = 'conflicting_duplicate' then {record_key} end"
-        f" from checked c join landing_src s using (source_row)"
-        f" where c.reason is not null and c.reason <> 'exact_duplicate'",
-        {"f": name},
-    )
-    _quarantine_rejects(con, name)
     read, loaded, dup = store.query(con, "file_counts").row(0)
+    if read > loaded + dup:
+        record_key = "c.record_key" if folder.key else "null"
+        # The raw JSON is made only for rejected rows, and the file read again only if there are any.
+        store.execute(
+            con,
+            f"insert into quarantine (source_file, row_number, reason, raw, record_key)"
+            f" select $f, c.source_row, c.reason, {_RAW_JSON},"
+            f" case when c.reason = 'conflicting_duplicate' then {record_key} end"
+            f" from checked c join landing_src s using (source_row)"
+            f" where c.reason is not null and c.reason <> 'exact_duplicate'",
+            {"f": name},
+        )
+    _quarantine_rejects(con, name)
     read += rejects
     quarantined = read - loaded - dup
     status = "loaded" if quarantined == 0 else "loaded_with_quarantine"
     return FileResult(name, folder.name, status, read, loaded, quarantined, dup), moved_from
+
+
+def _landing_view(
+    con: duckdb.DuckDBPyConnection, folder: Folder, selected: dict[str, str | None], types: dict[str, str]
+) -> None:
+    """View ``landing``: source_row and each canonical column as text, plus ``typed_<name>`` columns.
+
+    A file column whose type converts exactly to a typed column (``_EXACT_SOURCES``) fills it and
+    leaves the text null; any other column fills the text and leaves the typed column null.
+    """
+    typed = dict(folder.typed)
+    columns = []
+    for canon, src in selected.items():
+        text = f"cast(t.{store.quote_identifier(src)} as varchar)" if src else "cast(null as varchar)"
+        if canon in typed:
+            wanted = typed[canon]
+            value = f"cast(null as {wanted})"
+            if src and types[src] in _EXACT_SOURCES[wanted]:
+                text, value = (
+                    "cast(null as varchar)",
+                    f"try_cast(t.{store.quote_identifier(src)} as {wanted})",
+                )
+            columns.append(f"{value} as {store.quote_identifier('typed_' + canon)}")
+        columns.append(f"{text} as {store.quote_identifier(canon)}")
+    listed = ", ".join(columns)
+    store.execute(
+        con, f"create or replace temp view landing as select t.source_row, {listed} from landing_src t"
+    )
 
 
 def _move_conflicting_loaded_rows(con: duckdb.DuckDBPyConnection, folder: Folder) -> list[str]:
@@ -567,18 +681,30 @@ def _move_conflicting_loaded_rows(con: duckdb.DuckDBPyConnection, folder: Folder
     return [row[0] for row in store.execute(con, "select distinct source_file from moved")]
 
 
-def _refresh_log(con: duckdb.DuckDBPyConnection, folder: Folder, files: list[str]) -> None:
-    """Recount loaded and quarantined rows (by reason, as JSON) of ``files`` from the tables."""
-    table = store.quote_identifier(folder.table)
+def _refresh_log(con: duckdb.DuckDBPyConnection, folder: Folder, name: str, moved_from: list[str]) -> None:
+    """Recount quarantined rows (by reason, as JSON) of the file and those it moved rows from.
+
+    Loaded rows are recounted from the table only for the files that lost rows to this one (the
+    file's own count is what it inserted): counting the table per file would read all of it.
+    """
+    files = [name, *moved_from]
+    if moved_from:
+        table = store.quote_identifier(folder.table)
+        store.execute(
+            con,
+            f"update ingest_log l set"
+            f"  rows_loaded = (select count(*) from {table} t where t.source_file = l.source_file)"
+            f" where list_contains($files, l.source_file)",
+            {"files": moved_from},
+        )
     store.execute(
         con,
-        f"update ingest_log l set"
-        f"  rows_loaded = (select count(*) from {table} t where t.source_file = l.source_file),"
-        f"  rows_quarantined = (select count(*) from quarantine q where q.source_file = l.source_file),"
-        f"  quarantined_by_reason = coalesce((select json_group_object(reason, n)::varchar from"
-        f"    (select reason, count(*) as n from quarantine q where q.source_file = l.source_file"
-        f"     group by reason order by reason)), '{{}}')"
-        f" where list_contains($files, l.source_file)",
+        "update ingest_log l set"
+        "  rows_quarantined = (select count(*) from quarantine q where q.source_file = l.source_file),"
+        "  quarantined_by_reason = coalesce((select json_group_object(reason, n)::varchar from"
+        "    (select reason, count(*) as n from quarantine q where q.source_file = l.source_file"
+        "     group by reason order by reason)), '{}')"
+        " where list_contains($files, l.source_file)",
         {"files": files},
     )
     store.execute(

@@ -10,6 +10,7 @@ import datetime as dt
 import re
 from collections.abc import Iterator
 from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -39,9 +40,43 @@ def sql_text(name: str) -> str:
     return path.read_text()
 
 
+@dataclass(frozen=True)
+class DuckDBSettings:
+    """DuckDB's resources for a connection (``Config.duckdb``); they shape no result."""
+
+    threads: int = 0
+    """Threads DuckDB may use; 0 leaves its default (one per core)."""
+    memory_limit: str = ""
+    """Memory DuckDB may hold before spilling to disk ("4GB", "512MiB", "50%"); empty leaves its default."""
+    preserve_insertion_order: bool = True
+    """Whether rows keep the order they were read in where a query does not sort."""
+
+
+def apply_settings(con: duckdb.DuckDBPyConnection, settings: DuckDBSettings) -> None:
+    """Set (or reset to DuckDB's default) the connection's threads, memory limit and insertion order."""
+    try:
+        if settings.threads:
+            execute(con, "set threads = $v", {"v": settings.threads})
+        else:
+            execute(con, "reset threads")
+        if settings.memory_limit:
+            execute(con, "set memory_limit = $v", {"v": settings.memory_limit})
+        else:
+            execute(con, "reset memory_limit")
+        execute(con, "set preserve_insertion_order = $v", {"v": settings.preserve_insertion_order})
+    except duckdb.Error as exc:
+        detail = str(exc).splitlines()[0]
+        raise StoreError(
+            f"DuckDB refused duckdb_threads = {settings.threads}, duckdb_memory_limit ="
+            f" {settings.memory_limit!r}: {detail}"
+        ) from None
+
+
 @contextmanager
-def warehouse(path: Path, read_only: bool = False) -> Iterator[duckdb.DuckDBPyConnection]:
-    """Open the warehouse with UTC as the session time zone; closes on exit."""
+def warehouse(
+    path: Path, read_only: bool = False, settings: DuckDBSettings | None = None
+) -> Iterator[duckdb.DuckDBPyConnection]:
+    """Open the warehouse with UTC as the session time zone and DuckDB's ``settings``; closes on exit."""
     path = Path(path)
     if read_only and not path.exists():
         raise StoreError(f"warehouse {path} does not exist: run the ingest stage first")
@@ -49,6 +84,7 @@ def warehouse(path: Path, read_only: bool = False) -> Iterator[duckdb.DuckDBPyCo
     con = duckdb.connect(str(path), read_only=read_only)
     try:
         execute(con, "set TimeZone = 'UTC'")
+        apply_settings(con, settings or DuckDBSettings())
         yield con
     finally:
         con.close()
@@ -142,13 +178,28 @@ def write_ledger(ledger: Path, table: str, frame: pl.DataFrame, run_id: str, run
     return path
 
 
-def connect_ledger(ledger: Path) -> duckdb.DuckDBPyConnection:
+def connect_ledger(ledger: Path, settings: DuckDBSettings | None = None) -> duckdb.DuckDBPyConnection:
     """An in-memory DuckDB connection with the analyst views of ``sql/views.sql`` over the ledger."""
     con = duckdb.connect()
     execute(con, "set TimeZone = 'UTC'")
+    apply_settings(con, settings or DuckDBSettings())
     execute(con, "set variable ledger_root = $root", {"root": str(Path(ledger).resolve())})
     run_sql(con, "views")
     return con
+
+
+@contextmanager
+def insertion_order_kept(con: duckdb.DuckDBPyConnection) -> Iterator[duckdb.DuckDBPyConnection]:
+    """Statements inside keep rows in the order they were read, whatever the connection's setting.
+
+    For tables whose ``rowid`` numbers records by their place in a file.
+    """
+    before = execute(con, "select current_setting('preserve_insertion_order')")[0][0]
+    execute(con, "set preserve_insertion_order = true")
+    try:
+        yield con
+    finally:
+        execute(con, "set preserve_insertion_order = $kept", {"kept": before})
 
 
 @contextmanager

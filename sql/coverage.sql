@@ -13,16 +13,29 @@ hours as (
     select premise_id, hour_utc, minutes_read
     from meter_hours()
 ),
+-- Per premise and interval length first (a few groups per premise on a narrow key), then
+-- per premise: the most common length (the shorter on a tie) without a per-value count map.
+lengths as (
+    select
+        premise_id,
+        interval_minutes,
+        min(interval_start_utc) as first_start,
+        max(interval_start_utc) as last_start,
+        count(*) as n,
+        sum(kwh) as kwh
+    from reads
+    group by all
+),
 spans as (
     select
         premise_id,
-        min(interval_start_utc) as first_interval_utc,
-        max(interval_start_utc + to_minutes(interval_minutes)) as last_interval_end_utc,
-        mode(interval_minutes) as interval_minutes,
-        count(*) as intervals_present,
-        sum(interval_minutes) as minutes_present,
+        min(first_start) as first_interval_utc,
+        max(last_start + to_minutes(interval_minutes)) as last_interval_end_utc,
+        arg_max(interval_minutes, n * 100 - interval_minutes) as interval_minutes,
+        sum(n)::bigint as intervals_present,
+        sum(n * interval_minutes)::hugeint as minutes_present,
         sum(kwh) as kwh
-    from reads
+    from lengths
     group by all
 ),
 hour_counts as (

@@ -2,4 +2,4 @@
 -- row_number), its text kept as the raw row.
 insert into quarantine (source_file, row_number, reason, raw)
 select $f, source_row, 'malformed_row', line
-from landing_rejects_lines
+from landing_rejected

@@ -107,9 +107,10 @@ create or replace macro local_time_ambiguous(txt, tz) as
         timezone(tz, timezone(tz, try_cast(trim(txt) as timestamp)) - interval 1 hour) = try_cast(trim(txt) as timestamp)
         or timezone(tz, timezone(tz, try_cast(trim(txt) as timestamp)) + interval 1 hour) = try_cast(trim(txt) as timestamp)
     );
--- The UTC hour a timestamp falls in: whole-hour arithmetic on microseconds since the epoch,
--- equal to date_trunc('hour', ts) in UTC but without a calendar lookup per row.
--- (The remainder is taken twice so times before 1970 round down too.)
+-- The UTC hour an instant falls in (date_trunc('hour', ts) in a UTC session), by integer
+-- arithmetic on epoch microseconds: date_trunc on timestamptz goes through the calendar and
+-- was most of the cost of the meter hours. The remainder is taken as a floor, so instants
+-- before 1970 fall in their own hour too.
 create or replace macro utc_hour(ts) as
     make_timestamptz(epoch_us(ts) - ((epoch_us(ts) % 3600000000) + 3600000000) % 3600000000);
 -- Meter kWh and minutes read per premise and UTC hour. A read lies inside one UTC hour

@@ -173,3 +173,11 @@ def test_reference_lists_every_setting_with_its_meaning():
     } <= rows.keys()
     assert rows["confidence"].allowed == "number, > 0, < 1"
     assert rows["decision_points"].allowed == '"fixed" / "anchored"'
+
+
+@pytest.mark.parametrize("value", ["lots", "100", "-1GB"])
+def test_a_memory_limit_that_is_not_a_size_is_refused_in_one_line(value):
+    """duckdb_memory_limit takes a size with its unit ("4GB", "512MiB", "50%") or nothing."""
+    with pytest.raises(ConfigError, match=r"duckdb_memory_limit.*must be .* such as \"4GB\""):
+        config_module.load(overrides={"duckdb_memory_limit": value})
+    assert config_module.load(overrides={"duckdb_memory_limit": "4 GiB"}).duckdb.memory_limit == "4 GiB"

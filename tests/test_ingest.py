@@ -256,6 +256,17 @@ REASON_CASES = [
         "premise_id,changed_at,mode,cool_setpoint_c,heat_setpoint_c\nP1,2026-06-01T12:00:00Z,warm,24,20\n",
         "bad_code",
     ),
+    # The same two wall-clock times as for the meter, in a thermostat log (IANA tz database).
+    (
+        "thermostat/t.csv",
+        "premise_id,changed_at,mode,cool_setpoint_c,heat_setpoint_c\nP1,2026-03-08 02:30,cool,24,20\n",
+        "nonexistent_local_time",
+    ),
+    (
+        "thermostat/t.csv",
+        "premise_id,changed_at,mode,cool_setpoint_c,heat_setpoint_c\nP1,2026-11-01 01:30,cool,24,20\n",
+        "ambiguous_local_time",
+    ),
     (
         "premises/q.csv",
         "premise_id,timezone,weather_station_id,rate_plan_id,comfort_cool_c,comfort_heat_c\n"
@@ -406,6 +417,171 @@ def test_gzip_bom_crlf_csv_and_parquet_all_load(tmp_path):
         ("14", 3.0, "actual"),
         ("15", 4.0, "actual"),
     ]
+
+
+# Rows of one meter file as (premise_id, interval_start, interval_minutes, kwh), with the reason
+# each row must get; the same rows go into a CSV (text) and a Parquet file (typed columns).
+_UTC = dt.UTC
+METER_CASES = [
+    ("P1", dt.datetime(2026, 6, 1, 12, tzinfo=_UTC), 60, 1.0, None),
+    ("P1", dt.datetime(2026, 6, 1, 12, tzinfo=_UTC), 60, 1.0, "exact_duplicate"),
+    ("P1", dt.datetime(2026, 6, 1, 13, tzinfo=_UTC), 60, 1.0, "conflicting_duplicate"),
+    ("P1", dt.datetime(2026, 6, 1, 13, tzinfo=_UTC), 60, 1.5, "conflicting_duplicate"),
+    ("P1", None, 60, 1.0, "missing_timestamp"),
+    ("P1", dt.datetime(2026, 6, 1, 14, tzinfo=_UTC), 20, 1.0, "bad_interval_length"),
+    ("P1", dt.datetime(2026, 6, 1, 14, 15, tzinfo=_UTC), 30, 1.0, "interval_not_aligned"),
+    ("P1", dt.datetime(2026, 6, 1, 15, tzinfo=_UTC), 60, None, "bad_number"),
+    # 61 kWh in one hour is a 61 kW mean draw, beyond residential service (common practice).
+    ("P1", dt.datetime(2026, 6, 1, 16, tzinfo=_UTC), 60, 61.0, "kwh_out_of_range"),
+    ("P9", dt.datetime(2026, 6, 1, 17, tzinfo=_UTC), 60, 1.0, "unknown_premise"),
+    ("P1", dt.datetime(2026, 6, 1, 18, tzinfo=_UTC), None, 1.0, "bad_interval_length"),
+    ("P1", dt.datetime(2026, 6, 1, 19, tzinfo=_UTC), 15, 0.1, None),
+]
+
+
+def _meter_csv(cases) -> str:
+    def text(value):
+        if value is None:
+            return ""
+        return value.strftime("%Y-%m-%dT%H:%M:%SZ") if isinstance(value, dt.datetime) else str(value)
+
+    return "premise_id,interval_start,interval_minutes,kwh\n" + "".join(
+        ",".join(text(v) for v in case[:4]) + "\n" for case in cases
+    )
+
+
+def _meter_parquet(cases, path: Path, minutes: pl.DataType, kwh: pl.DataType, compression="zstd") -> None:
+    pl.DataFrame(
+        {
+            "premise_id": [c[0] for c in cases],
+            "interval_start": pl.Series([c[1] for c in cases], dtype=pl.Datetime("us", "UTC")),
+            "interval_minutes": pl.Series([c[2] for c in cases], dtype=minutes),
+            "kwh": pl.Series([c[3] for c in cases], dtype=kwh),
+        }
+    ).write_parquet(path, compression=compression)
+
+
+def _meter_outcome(tmp_path, name, write):
+    root = write_landing(tmp_path, {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES})
+    (root / "landing/meter").mkdir()
+    write(root / "landing/meter" / name)
+    config = lake_config(root)
+    ingest.ingest(config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        _check_accounting(con)
+        loaded = con.execute(
+            "select premise_id, interval_start_utc, interval_minutes, kwh, quality, source_row"
+            " from meter_read order by source_row"
+        ).fetchall()
+        return loaded, _reasons(con, f"landing/meter/{name}")
+
+
+@pytest.mark.parametrize(
+    ("minutes", "kwh"),
+    [(pl.Int32, pl.Float64), (pl.Int64, pl.Float32)],
+    ids=["int32-float64", "int64-float32"],
+)
+def test_a_typed_parquet_meter_file_loads_and_quarantines_exactly_as_its_csv_text(tmp_path, minutes, kwh):
+    """Typed Parquet columns give the rows, values and reasons the same rows give as CSV text.
+
+    FLOAT kWh goes through its text, so 0.1 stored as a 32-bit float loads as 0.1, as in the CSV.
+    """
+    csv_rows = _meter_outcome(tmp_path / "csv", "m.csv", lambda p: p.write_text(_meter_csv(METER_CASES)))
+    parquet_rows = _meter_outcome(
+        tmp_path / "parquet", "m.parquet", lambda p: _meter_parquet(METER_CASES, p, minutes, kwh)
+    )
+    expected = {
+        i: reason for i, (*_, reason) in enumerate(METER_CASES, 1) if reason and reason != "exact_duplicate"
+    }
+    assert csv_rows[1] == expected
+    assert parquet_rows == csv_rows
+    assert [row[3] for row in parquet_rows[0]] == [1.0, 0.1]
+
+
+def test_typed_parquet_columns_skip_their_text_and_others_keep_it(tmp_path):
+    """An absolute instant and integers are taken typed; a naive timestamp and a FLOAT go through text."""
+    path = tmp_path / "m.parquet"
+    pl.DataFrame(
+        {
+            "premise_id": ["P1"],
+            "interval_start": pl.Series([dt.datetime(2026, 6, 1, 12, tzinfo=_UTC)]),
+            "interval_minutes": pl.Series([60], dtype=pl.Int64),
+            "kwh": pl.Series([0.5], dtype=pl.Float32),
+            "wh": pl.Series([500.0], dtype=pl.Float64),
+        }
+    ).write_parquet(path)
+    meter = next(f for f in ingest.FOLDERS if f.name == "meter")
+    with store.warehouse(tmp_path / "w.duckdb") as con:
+        types, _ = ingest._stage(con, path)
+        selected = ingest._select_columns(meter, {}, set(types), "m.parquet")
+        ingest._landing_view(con, meter, selected, types)
+        row = store.frame(con, "select * exclude (source_row) from landing").row(0, named=True)
+    assert row == {
+        "typed_interval_start": dt.datetime(2026, 6, 1, 12, tzinfo=zoneinfo.ZoneInfo("UTC")),
+        "interval_start": None,
+        "typed_interval_minutes": 60,
+        "interval_minutes": None,
+        "typed_kwh": None,
+        "kwh": "0.5",
+        "typed_wh": 500.0,
+        "wh": None,
+        "premise_id": "P1",
+        "quality": None,
+    }
+
+
+def test_a_typed_parquet_weather_file_converts_fahrenheit_and_counts_duplicates(tmp_path):
+    """Typed °F observations become °C, (F - 32) * 5 / 9 (the Fahrenheit scale's definition)."""
+    root = write_landing(
+        tmp_path, {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES, "meter/m.csv": METER_HEAD}
+    )
+    (root / "landing/weather").mkdir()
+    pl.DataFrame(
+        {
+            "station_id": ["S1", "S1", "S1"],
+            "observed_at": pl.Series(
+                [dt.datetime(2026, 6, 1, h, tzinfo=_UTC) for h in (12, 12, 13)],
+                dtype=pl.Datetime("us", "UTC"),
+            ),
+            "dry_bulb_f": [50.0, 50.0, 212.0],
+        }
+    ).write_parquet(root / "landing/weather/w.parquet")
+    config = lake_config(root)
+    results = ingest.results_frame(ingest.ingest(config))
+    weather = results.filter(pl.col("folder") == "weather").row(0, named=True)
+    assert (weather["rows_loaded"], weather["rows_duplicate"], weather["rows_quarantined"]) == (1, 1, 1)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        assert con.execute("select dry_bulb_c from weather_obs").fetchall() == [(10.0,)]
+        assert _reasons(con, "landing/weather/w.parquet") == {3: "temperature_out_of_range"}
+        _check_accounting(con)
+
+
+def test_a_parquet_file_damaged_behind_its_footer_is_refused_and_the_rest_loads(tmp_path):
+    """Damage the footer does not show (a data page) refuses the file when it is read; the others load."""
+    root = write_landing(
+        tmp_path,
+        {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES, "meter/a.csv": METER_HEAD + GOOD_METER},
+    )
+    cases = [
+        ("P1", dt.datetime(2026, 6, 2, tzinfo=_UTC) + dt.timedelta(minutes=15 * i), 15, 0.1, None)
+        for i in range(2000)
+    ]
+    path = root / "landing/meter/b.parquet"
+    _meter_parquet(cases, path, pl.Int32, pl.Float64, compression="snappy")
+    data = bytearray(path.read_bytes())  # the instants' data page starts near byte 100
+    data[200:264] = bytes(b ^ 0xFF for b in data[200:264])
+    path.write_bytes(bytes(data))
+    config = lake_config(root)
+    results = ingest.results_frame(ingest.ingest(config)).filter(pl.col("folder") == "meter")
+    assert results.select("source_file", "status").rows() == [
+        ("landing/meter/a.csv", "loaded"),
+        ("landing/meter/b.parquet", "refused"),
+    ]
+    assert "file cannot be read" in results["message"][1]
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        assert con.execute("select count(*) from meter_read").fetchall() == [(1,)]
+        assert set(_reasons(con, "landing/meter/b.parquet").values()) == {"unreadable_file"}
+        _check_accounting(con)
 
 
 def test_column_mapping_renames_and_converts_units(tmp_path):
@@ -585,6 +761,22 @@ def test_a_file_gone_from_the_lake_is_reported_and_its_rows_stay(tmp_path):
 
 
 # --- coverage -----------------------------------------------------------------------------
+
+
+def test_utc_hour_is_the_hour_an_instant_falls_in_also_before_1970(tmp_path):
+    """utc_hour (integer arithmetic on epoch microseconds) agrees with Python's own truncation."""
+    instants = [
+        dt.datetime(2026, 6, 1, 5, 0, tzinfo=dt.UTC),
+        dt.datetime(2026, 6, 1, 5, 59, 59, 999999, tzinfo=dt.UTC),
+        dt.datetime(2026, 11, 1, 6, 30, tzinfo=dt.UTC),
+        dt.datetime(1970, 1, 1, 0, 0, tzinfo=dt.UTC),
+        dt.datetime(1969, 12, 31, 23, 59, 59, 1, tzinfo=dt.UTC),
+        dt.datetime(1901, 3, 4, 17, 45, tzinfo=dt.UTC),
+    ]
+    with store.warehouse(tmp_path / "w.duckdb") as con:
+        store.run_sql(con, "schema")
+        got = [con.execute("select utc_hour($t::timestamptz)", {"t": t}).fetchall()[0][0] for t in instants]
+    assert got == [t.replace(minute=0, second=0, microsecond=0) for t in instants]
 
 
 def test_coverage_reports_missing_intervals_per_premise_consistently_with_the_hourly_grid(tmp_path):
