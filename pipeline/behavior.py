@@ -118,6 +118,7 @@ class _TypeMixture:
         triple, where = np.unique((premise * n_cells + cell) * n_actions + action, return_inverse=True)
         count = np.bincount(where, weight, triple.size)
         owner, cell_action = triple // (n_cells * n_actions), triple % (n_cells * n_actions)
+        layout = _CountLayout.of(owner, cell_action, count)
         rng = np.random.default_rng(self.seed)
         best = None
         # A few restarts from random memberships: EM finds a local optimum; keep the likeliest.
@@ -125,8 +126,8 @@ class _TypeMixture:
             shares = rng.dirichlet(np.ones(self.n_types), n_premises)
             previous = -np.inf
             for _ in range(iterations):
-                tables = self._tables(owner, cell_action, count, shares, n_cells)
-                shares, loglik = self._memberships(owner, cell_action, count, tables[1], shares, n_premises)
+                tables = self._tables(layout, shares, n_cells)
+                shares, loglik = self._memberships(layout, tables[1], shares, n_premises)
                 if loglik - previous < 1e-7 * max(1.0, abs(loglik)):
                     break
                 previous = loglik
@@ -135,17 +136,13 @@ class _TypeMixture:
         self.loglik_, self.shares_, (self.coarse_tables_, self.tables_, self.counts_) = best
         return self
 
-    def _tables(self, owner, cell_action, count, shares, n_cells):
+    def _tables(self, layout: _CountLayout, shares: np.ndarray, n_cells: int):
         """M step: each type's smoothed tables from the share-weighted counts."""
         k, n_actions, n_types = self.strength, self.n_actions, self.n_types
-        offsets = (np.arange(n_types) * n_cells * n_actions)[None, :]
-        counts = np.bincount(
-            (cell_action[:, None] + offsets).ravel(),
-            (shares[owner] * count[:, None]).ravel(),
-            n_types * n_cells * n_actions,
-        ).reshape(n_types, n_cells, n_actions)
-        coarse_counts = np.zeros((n_types, self.n_coarse, n_actions))
-        np.add.at(coarse_counts, (slice(None), self.cell_coarse_), counts)
+        counts = layout.column_sums(shares.T, n_cells * n_actions).reshape(n_types, n_cells, n_actions)
+        # Summed into coarse states by a (coarse x cell) indicator matrix: one small matrix product.
+        to_coarse = self.cell_coarse_[None, :] == np.arange(self.n_coarse)[:, None]
+        coarse_counts = np.matmul(to_coarse.astype(np.float64), counts)
         coarse_tables = (coarse_counts + k * self.portfolio_coarse_) / (
             coarse_counts.sum(2, keepdims=True) + k
         )
@@ -156,25 +153,76 @@ class _TypeMixture:
         floored = np.maximum(tables, self.floor)
         return floored / floored.sum(-1, keepdims=True)
 
-    def _memberships(self, owner, cell_action, count, tables, shares, n_premises):
+    def _memberships(self, layout: _CountLayout, tables: np.ndarray, shares: np.ndarray, n_premises: int):
         """E step: each premise's posterior type shares, and the total log-likelihood."""
         log_tables = np.log(tables.reshape(self.n_types, -1))
-        log_cell = log_tables[:, cell_action].T * count[:, None]
-        offsets = (np.arange(self.n_types) * n_premises)[None, :]
-        loglik = (
-            np.bincount(
-                (owner[:, None] + offsets).ravel(order="F"),
-                log_cell.ravel(order="F"),
-                self.n_types * n_premises,
-            )
-            .reshape(self.n_types, n_premises)
-            .T
-        )
+        loglik = layout.row_sums(log_tables, n_premises).T
         loglik = loglik + np.log(np.maximum(shares.mean(0), 1e-300))
         top = loglik.max(1, keepdims=True)
         joint = np.exp(loglik - top)
         total = joint.sum(1, keepdims=True)
         return joint / total, float((top + np.log(total)).sum())
+
+
+@dataclass(frozen=True)
+class _CountLayout:
+    """The weighted count of each logged (premise, column) pair, laid out for the two sums EM needs.
+
+    A sparse premise x column matrix N kept as its non-zero entries, once in premise order and
+    once in column order, so that both products are a gather and contiguous segment sums
+    (``np.add.reduceat``) with the types along the first axis: ``row_sums(X)`` is X @ N.T
+    (per type and premise) and ``column_sums(S)`` is S @ N (per type and column).
+    """
+
+    owner: np.ndarray
+    """(m,) premise of each entry, non-decreasing."""
+    column: np.ndarray
+    """(m,) column of each entry (state cell times actions plus action)."""
+    count: np.ndarray
+    """(m,) weighted count of each entry."""
+    owner_first: np.ndarray
+    """Index of the first entry of each premise that has entries."""
+    column_owner: np.ndarray
+    """(m,) premise of each entry, entries in column order."""
+    column_count: np.ndarray
+    """(m,) count of each entry, entries in column order."""
+    column_first: np.ndarray
+    """Index, in column order, of the first entry of each column that has entries."""
+    columns: np.ndarray
+    """The columns that have entries, ascending."""
+
+    @classmethod
+    def of(cls, owner: np.ndarray, column: np.ndarray, count: np.ndarray) -> _CountLayout:
+        """From entries sorted by premise (as ``np.unique`` of premise-major codes leaves them)."""
+        by_column = np.argsort(column, kind="stable")
+        ordered = column[by_column]
+        column_first = np.flatnonzero(np.r_[True, ordered[1:] != ordered[:-1]])
+        return cls(
+            owner,
+            column,
+            count,
+            np.flatnonzero(np.r_[True, owner[1:] != owner[:-1]]),
+            owner[by_column],
+            count[by_column],
+            column_first,
+            ordered[column_first],
+        )
+
+    def row_sums(self, per_column: np.ndarray, n_rows: int) -> np.ndarray:
+        """(Z, n_rows): per premise, the sum over its entries of count * per_column[:, column]; (Z, K) in."""
+        values = np.take(per_column, self.column, axis=1)
+        values *= self.count
+        out = np.zeros((per_column.shape[0], n_rows))
+        out[:, self.owner[self.owner_first]] = np.add.reduceat(values, self.owner_first, axis=1)
+        return out
+
+    def column_sums(self, per_row: np.ndarray, n_columns: int) -> np.ndarray:
+        """(Z, n_columns): per column, the sum over its entries of count * per_row[:, owner]; (Z, P) in."""
+        values = np.take(per_row, self.column_owner, axis=1)
+        values *= self.column_count
+        out = np.zeros((per_row.shape[0], n_columns))
+        out[:, self.columns] = np.add.reduceat(values, self.column_first, axis=1)
+        return out
 
 
 @dataclass(frozen=True)
