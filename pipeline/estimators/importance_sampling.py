@@ -145,11 +145,12 @@ def _in_key_order(terms: _Terms, s: _Steps) -> _Terms:
     )
 
 
-def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> np.ndarray:
-    """Estimates for each row of episode ``multiplicity`` (B, n_episodes), shape (B, n_groups).
+def _sums(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Numerator and denominator sums per row of episode ``multiplicity`` (B, n_episodes), group and cell.
 
-    ``None`` means every episode once (the point estimate, B = 1). A group whose
-    denominator is zero in some cell, i.e. no episode with non-zero weight, gets NaN.
+    ``None`` means every episode once (the point estimate, B = 1). Returns two arrays of
+    shape (B, n_groups, n_cells); carried entries are already added into the later cells'
+    denominators, so sums over disjoint sets of episodes add up.
     """
     key, carry_key = _entry_keys(terms, s)
     n_cells, n_groups = terms.n_cells, s.n_groups
@@ -167,7 +168,11 @@ def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) 
             terms = _in_key_order(terms, s)
             key, carry_key = _entry_keys(terms, s)
         rows = multiplicity.shape[0]
-        u_entries = multiplicity[:, terms.episode]
+        # One entry per episode in episode order (the trajectory-wise estimators) needs no gather.
+        per_episode = terms.episode.size == s.n_episodes and bool(
+            (terms.episode == np.arange(s.n_episodes)).all()
+        )
+        u_entries = multiplicity if per_episode else multiplicity[:, terms.episode]
         numerator = _keyed_sums(key, u_entries * terms.numerator, n_keys)
         denominator = _keyed_sums(key, u_entries * terms.denominator, n_keys)
         carried = None
@@ -178,9 +183,26 @@ def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) 
     denominator = denominator.reshape(rows, n_groups, n_cells)
     if carried is not None:
         denominator += np.cumsum(carried.reshape(rows, n_groups, n_cells), axis=2)
+    return numerator, denominator
+
+
+def _ratios(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
+    """Estimates (B, n_groups) from sums (B, n_groups, n_cells): the sum over cells of their ratios.
+
+    A group whose denominator is zero in some cell, i.e. no episode with non-zero weight, gets NaN.
+    """
     positive = denominator > 0.0
     ratio = np.divide(numerator, denominator, out=np.zeros_like(numerator), where=positive)
     return np.where(positive.all(axis=2), ratio.sum(axis=2), np.nan)
+
+
+def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> np.ndarray:
+    """Estimates for each row of episode ``multiplicity`` (B, n_episodes), shape (B, n_groups).
+
+    ``None`` means every episode once (the point estimate, B = 1). A group whose
+    denominator is zero in some cell, i.e. no episode with non-zero weight, gets NaN.
+    """
+    return _ratios(*_sums(terms, s, multiplicity))
 
 
 def _estimate_frame(s: _Steps, terms: _Terms) -> pl.DataFrame:
