@@ -14,7 +14,8 @@ the same few array passes as ten.
 Modules by job: ``importance_sampling`` (the IS family, doubly robust and the
 on-policy value, written as shared numerator/denominator terms),
 ``monte_carlo`` (first- and every-visit state values), ``bootstrap``
-(per-episode Poisson draws, sums per group that add up across shards, intervals), ``bounds`` (the high-confidence lower bound),
+(per-episode Poisson draws, sums per group that add up across shards, and
+intervals), ``bounds`` (the high-confidence lower bound),
 ``weight_diagnostics`` (weight spread and support) and ``registry`` (the one
 list of published names, ``REGISTRY`` and ``OFF_POLICY_NAMES``).
 """
