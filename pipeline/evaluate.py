@@ -106,6 +106,7 @@ def evaluate_policy(
     table: np.ndarray | None = None,
     refit: tuple[np.ndarray, np.ndarray] | None = None,
     multiplicity: np.ndarray | None = None,
+    behavior_sums: tuple[estimators.ReplicateSums, estimators.ReplicateSums] | None = None,
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Savings rows (one per scope, group and estimator) and diagnostics of one target policy.
 
@@ -141,6 +142,9 @@ def evaluate_policy(
         (bootstrap_replicates, n_episodes) Poisson draws of the steps' episodes; by default
         ``estimators.frame_multiplicity`` of the steps with the configured seed (pass it to
         draw once for several target policies).
+    behavior_sums : tuple of estimators.ReplicateSums, optional
+        ``on_policy_sums`` of the same steps and draws (USD, then kWh): the logged policy's
+        value does not depend on the target, so several targets can share it.
     """
     base = steps.select(
         "episode_id",
@@ -164,15 +168,8 @@ def evaluate_policy(
     # the costliest logged episode (stated in the README beside the bound).
     bounds = (1.5 * float(returns.min()), 0.0)
     usd_premise, kwh_premise = _scoped(usd_base, "premise_id"), _scoped(kwh_base, "premise_id")
-    no_replicates = multiplicity[:0]
-
-    def premise_sums(name: str) -> tuple[estimators.ReplicateSums, estimators.ReplicateSums]:
-        return (
-            estimators.replicate_sums(usd_premise, name, multiplicity),
-            estimators.replicate_sums(kwh_premise, name, no_replicates),
-        )
-
-    sums = {name: premise_sums(name) for name in ("on_policy_value", *names)}
+    sums = {name: _premise_sums(usd_premise, kwh_premise, name, multiplicity) for name in names}
+    sums["on_policy_value"] = behavior_sums or on_policy_sums(steps, multiplicity)
     premise_cohort = steps.select("premise_id", "cohort").unique()
     rows, diags = [], []
     for scope, column in SCOPES:
@@ -217,6 +214,35 @@ def evaluate_policy(
     return _finish_savings(pl.concat(rows), premise_cohort, config), pl.concat(diags)
 
 
+def _premise_sums(
+    usd: pl.DataFrame, kwh: pl.DataFrame, name: str, multiplicity: np.ndarray
+) -> tuple[estimators.ReplicateSums, estimators.ReplicateSums]:
+    """An estimator's sums per premise: USD for the point and every replicate, kWh for the point only."""
+    return (
+        estimators.replicate_sums(usd, name, multiplicity),
+        estimators.replicate_sums(kwh, name, multiplicity[:0]),
+    )
+
+
+def on_policy_sums(
+    steps: pl.DataFrame, multiplicity: np.ndarray
+) -> tuple[estimators.ReplicateSums, estimators.ReplicateSums]:
+    """The logged policy's value sums per premise: USD with replicates, kWh (reward, kwh, recovery_kwh)."""
+    frame = _scoped(
+        steps.select(
+            "episode_id",
+            "t",
+            "reward",
+            "premise_id",
+            (-(pl.col("kwh") + pl.col("recovery_kwh"))).alias("neg_kwh"),
+        ),
+        "premise_id",
+    )
+    return _premise_sums(
+        frame, frame.with_columns(pl.col("neg_kwh").alias("reward")), "on_policy_value", multiplicity
+    )
+
+
 def _scope_key(premise_cohort: pl.DataFrame, column: str | None) -> pl.DataFrame | None:
     """Each premise's group at a scope (columns group, key); None at premise scope (its own group)."""
     if column == "premise_id":
@@ -239,7 +265,7 @@ def _interval_and_bootstrap_bound(
     usable = ~np.isnan(replicates).all(axis=0)
     bound = np.full(replicates.shape[1], np.nan)
     if usable.any():
-        bound[usable] = np.nanquantile(replicates[:, usable], 1.0 - config.confidence, axis=0)
+        bound[usable] = estimators.nan_quantiles(replicates[:, usable], [1.0 - config.confidence])[0]
     return interval.select("group", "ci_low", "ci_high").with_columns(
         pl.Series("lower_bound_bootstrap_usd", bound)
     )
@@ -399,10 +425,11 @@ def evaluate_candidates(
         in_mode = steps.filter(pl.col("mode") == mode)
         refit = behavior_replicates(in_mode, behavior, config) if config.bootstrap_refit_behavior else None
         draws = estimators.frame_multiplicity(in_mode, config.bootstrap_replicates, config.seed)
-        modes[mode] = (in_mode, behavior.probabilities(in_mode), refit, draws)
+        logged = on_policy_sums(in_mode, draws)
+        modes[mode] = (in_mode, behavior.probabilities(in_mode), refit, draws, logged)
     for rule in config.candidates:
         table = rule.table(config.state, config.actions, config.target_epsilon)
-        for mode, (in_mode, b, refit, draws) in modes.items():
+        for mode, (in_mode, b, refit, draws, logged) in modes.items():
             q_model = FittedQ(config.state, config.actions).fit(in_mode, table)
             policies.append(
                 policy_frame(rule.name, table, config, q_model.q_)
@@ -410,7 +437,7 @@ def evaluate_candidates(
                 .join(visits, on=["mode", "state_key"], how="left")
             )
             pi = target_probabilities(in_mode, table, config)
-            s, d = evaluate_policy(in_mode, pi, b, days, config, table, refit, draws)
+            s, d = evaluate_policy(in_mode, pi, b, days, config, table, refit, draws, logged)
             tag = (pl.lit(rule.name).alias("policy_name"), pl.lit(mode).alias("mode"))
             savings.append(s.with_columns(*tag))
             diags.append(d.with_columns(*tag))
