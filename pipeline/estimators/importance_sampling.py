@@ -25,6 +25,7 @@ from pipeline.estimators._steps import (
     EstimatorInputError,
     _discounted,
     _episode_sum,
+    _group_counts,
     _group_sums,
     _keyed_sums,
     _prepare,
@@ -32,6 +33,7 @@ from pipeline.estimators._steps import (
     _returns,
     _Steps,
     _weight_summary,
+    _weighted_episodes,
     _weighted_steps,
 )
 
@@ -77,14 +79,12 @@ def _on_policy_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]
 
 
 def _ordinary_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
-    s, w = _weighted_steps(steps, gamma)
-    rho = w[s.ends]
+    s, rho = _weighted_episodes(steps, gamma)
     return s, _scalar_terms(rho * _returns(s), np.ones(s.n_episodes), rho)
 
 
 def _weighted_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
-    s, w = _weighted_steps(steps, gamma)
-    rho = w[s.ends]
+    s, rho = _weighted_episodes(steps, gamma)
     return s, _scalar_terms(rho * _returns(s), rho, rho)
 
 
@@ -152,9 +152,10 @@ def _sums(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> t
     shape (B, n_groups, n_cells); carried entries are already added into the later cells'
     denominators, so sums over disjoint sets of episodes add up.
     """
-    key, carry_key = _entry_keys(terms, s)
     n_cells, n_groups = terms.n_cells, s.n_groups
     n_keys = n_groups * n_cells
+    # With a single key (one group, one cell) every entry sums into it: no keys to build.
+    key, carry_key = _entry_keys(terms, s) if n_keys > 1 else (None, None)
     if multiplicity is None:
         # Every multiplicity is 1: entries are summed by key in any order, with no sort.
         rows = 1
@@ -164,6 +165,8 @@ def _sums(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> t
         if terms.carry is not None:
             carried = _group_sums(terms.carry[2], carry_key, n_keys)
     else:
+        if key is None:
+            key, carry_key = _entry_keys(terms, s)
         if (key[1:] < key[:-1]).any() or (carry_key[1:] < carry_key[:-1]).any():
             terms = _in_key_order(terms, s)
             key, carry_key = _entry_keys(terms, s)
@@ -211,7 +214,7 @@ def _estimate_frame(s: _Steps, terms: _Terms) -> pl.DataFrame:
         {
             "group": s.labels,
             "estimate": _evaluate(terms, s)[0],
-            "n_episodes": np.bincount(s.group, minlength=s.n_groups).astype(np.int64, copy=False),
+            "n_episodes": _group_counts(s.group, s.n_groups),
             "ess": ess,
             "max_weight_share": share,
         }
