@@ -81,6 +81,8 @@ STRENGTHS_FOR_TYPES: tuple[float, ...] = (2.0, 5.0, 10.0, 20.0)
 """Prior strengths tried for the types model when the strength is chosen by held-out likelihood."""
 BEHAVIOR_TABLES: tuple[str, ...] = ("policy", "type")
 """Names of the frames ``to_tables()`` returns for every model (ledger ``behavior_<name>``)."""
+_ROW_FRAMES = ("premise_", "cohort_", "portfolio_", "types_", "type_coarse_")
+"""The habit-type model's stored rows, built from a fit only when first read."""
 _MEMBERSHIP = {"premise_id": pl.Utf8, "cohort": pl.Utf8, "habit_type": pl.Int64, "share": pl.Float64}
 
 
@@ -118,6 +120,7 @@ class _TypeMixture:
         triple, where = np.unique((premise * n_cells + cell) * n_actions + action, return_inverse=True)
         count = np.bincount(where, weight, triple.size)
         owner, cell_action = triple // (n_cells * n_actions), triple % (n_cells * n_actions)
+        layout = _CountLayout.of(owner, cell_action, count)
         rng = np.random.default_rng(self.seed)
         best = None
         # A few restarts from random memberships: EM finds a local optimum; keep the likeliest.
@@ -125,8 +128,8 @@ class _TypeMixture:
             shares = rng.dirichlet(np.ones(self.n_types), n_premises)
             previous = -np.inf
             for _ in range(iterations):
-                tables = self._tables(owner, cell_action, count, shares, n_cells)
-                shares, loglik = self._memberships(owner, cell_action, count, tables[1], shares, n_premises)
+                tables = self._tables(layout, shares, n_cells)
+                shares, loglik = self._memberships(layout, tables[1], shares, n_premises)
                 if loglik - previous < 1e-7 * max(1.0, abs(loglik)):
                     break
                 previous = loglik
@@ -135,17 +138,13 @@ class _TypeMixture:
         self.loglik_, self.shares_, (self.coarse_tables_, self.tables_, self.counts_) = best
         return self
 
-    def _tables(self, owner, cell_action, count, shares, n_cells):
+    def _tables(self, layout: _CountLayout, shares: np.ndarray, n_cells: int):
         """M step: each type's smoothed tables from the share-weighted counts."""
         k, n_actions, n_types = self.strength, self.n_actions, self.n_types
-        offsets = (np.arange(n_types) * n_cells * n_actions)[None, :]
-        counts = np.bincount(
-            (cell_action[:, None] + offsets).ravel(),
-            (shares[owner] * count[:, None]).ravel(),
-            n_types * n_cells * n_actions,
-        ).reshape(n_types, n_cells, n_actions)
-        coarse_counts = np.zeros((n_types, self.n_coarse, n_actions))
-        np.add.at(coarse_counts, (slice(None), self.cell_coarse_), counts)
+        counts = layout.column_sums(shares.T, n_cells * n_actions).reshape(n_types, n_cells, n_actions)
+        # Summed into coarse states by a (coarse x cell) indicator matrix: one small matrix product.
+        to_coarse = self.cell_coarse_[None, :] == np.arange(self.n_coarse)[:, None]
+        coarse_counts = np.matmul(to_coarse.astype(np.float64), counts)
         coarse_tables = (coarse_counts + k * self.portfolio_coarse_) / (
             coarse_counts.sum(2, keepdims=True) + k
         )
@@ -156,25 +155,76 @@ class _TypeMixture:
         floored = np.maximum(tables, self.floor)
         return floored / floored.sum(-1, keepdims=True)
 
-    def _memberships(self, owner, cell_action, count, tables, shares, n_premises):
+    def _memberships(self, layout: _CountLayout, tables: np.ndarray, shares: np.ndarray, n_premises: int):
         """E step: each premise's posterior type shares, and the total log-likelihood."""
         log_tables = np.log(tables.reshape(self.n_types, -1))
-        log_cell = log_tables[:, cell_action].T * count[:, None]
-        offsets = (np.arange(self.n_types) * n_premises)[None, :]
-        loglik = (
-            np.bincount(
-                (owner[:, None] + offsets).ravel(order="F"),
-                log_cell.ravel(order="F"),
-                self.n_types * n_premises,
-            )
-            .reshape(self.n_types, n_premises)
-            .T
-        )
+        loglik = layout.row_sums(log_tables, n_premises).T
         loglik = loglik + np.log(np.maximum(shares.mean(0), 1e-300))
         top = loglik.max(1, keepdims=True)
         joint = np.exp(loglik - top)
         total = joint.sum(1, keepdims=True)
         return joint / total, float((top + np.log(total)).sum())
+
+
+@dataclass(frozen=True)
+class _CountLayout:
+    """The weighted count of each logged (premise, column) pair, laid out for the two sums EM needs.
+
+    A sparse premise x column matrix N kept as its non-zero entries, once in premise order and
+    once in column order, so that both products are a gather and contiguous segment sums
+    (``np.add.reduceat``) with the types along the first axis: ``row_sums(X)`` is X @ N.T
+    (per type and premise) and ``column_sums(S)`` is S @ N (per type and column).
+    """
+
+    owner: np.ndarray
+    """(m,) premise of each entry, non-decreasing."""
+    column: np.ndarray
+    """(m,) column of each entry (state cell times actions plus action)."""
+    count: np.ndarray
+    """(m,) weighted count of each entry."""
+    owner_first: np.ndarray
+    """Index of the first entry of each premise that has entries."""
+    column_owner: np.ndarray
+    """(m,) premise of each entry, entries in column order."""
+    column_count: np.ndarray
+    """(m,) count of each entry, entries in column order."""
+    column_first: np.ndarray
+    """Index, in column order, of the first entry of each column that has entries."""
+    columns: np.ndarray
+    """The columns that have entries, ascending."""
+
+    @classmethod
+    def of(cls, owner: np.ndarray, column: np.ndarray, count: np.ndarray) -> _CountLayout:
+        """From entries sorted by premise (as ``np.unique`` of premise-major codes leaves them)."""
+        by_column = np.argsort(column, kind="stable")
+        ordered = column[by_column]
+        column_first = np.flatnonzero(np.r_[True, ordered[1:] != ordered[:-1]])
+        return cls(
+            owner,
+            column,
+            count,
+            np.flatnonzero(np.r_[True, owner[1:] != owner[:-1]]),
+            owner[by_column],
+            count[by_column],
+            column_first,
+            ordered[column_first],
+        )
+
+    def row_sums(self, per_column: np.ndarray, n_rows: int) -> np.ndarray:
+        """(Z, n_rows): per premise, the sum over its entries of count * per_column[:, column]; (Z, K) in."""
+        values = np.take(per_column, self.column, axis=1)
+        values *= self.count
+        out = np.zeros((per_column.shape[0], n_rows))
+        out[:, self.owner[self.owner_first]] = np.add.reduceat(values, self.owner_first, axis=1)
+        return out
+
+    def column_sums(self, per_row: np.ndarray, n_columns: int) -> np.ndarray:
+        """(Z, n_columns): per column, the sum over its entries of count * per_row[:, owner]; (Z, P) in."""
+        values = np.take(per_row, self.column_owner, axis=1)
+        values *= self.column_count
+        out = np.zeros((per_row.shape[0], n_columns))
+        out[:, self.columns] = np.add.reduceat(values, self.column_first, axis=1)
+        return out
 
 
 @dataclass(frozen=True)
@@ -199,6 +249,15 @@ class _TypeTables:
     def predict(self, shares: np.ndarray, state: np.ndarray, coarse: np.ndarray) -> np.ndarray:
         """Mixture probabilities (n, n_actions) for steps with type shares ``shares`` (n, n_types)."""
         return np.einsum("nz,zna->na", shares, self.type_probabilities(state, coarse))
+
+    def predict_logged(
+        self, shares: np.ndarray, state: np.ndarray, coarse: np.ndarray, action: np.ndarray
+    ) -> np.ndarray:
+        """Mixture probability (n,) of one action per step (column ``action``), as ``predict`` gives it."""
+        at = np.minimum(np.searchsorted(self.states, state), self.states.size - 1)
+        seen = self.states[at] == state
+        per_type = np.where(seen[None, :], self.fine[:, at, action], self.coarse[:, coarse, action])
+        return np.einsum("nz,zn->n", shares, per_type)
 
 
 def _coarse_code(space: StateSpace, state_key: np.ndarray) -> np.ndarray:
@@ -297,25 +356,48 @@ def held_out_log_likelihood(
         }
     )
     tagged = steps.join(fold_of, on="episode_id")
+    splits = []
+    for fold in range(folds):
+        train = tagged.filter(pl.col("fold") != fold)
+        test = tagged.filter(pl.col("fold") == fold)
+        if not (train.is_empty() or test.is_empty()):
+            splits.append((train, test))
     scores = []
     for label, candidate in candidates.items():
         total, count = 0.0, 0
-        for fold in range(folds):
-            train = tagged.filter(pl.col("fold") != fold)
-            test = tagged.filter(pl.col("fold") == fold)
-            if train.is_empty() or test.is_empty():
-                continue
+        for train, test in splits:
             model = candidate.clone().fit(train)
             total += float(np.log(model.probabilities(test)).sum())
             count += test.height
         scores.append({"model": label, "log_likelihood": total / max(count, 1)})
-    return pl.DataFrame(scores)
+    return pl.DataFrame(scores, schema={"model": pl.Utf8, "log_likelihood": pl.Float64})
 
 
-def _best(steps: pl.DataFrame, candidates: dict[str, BehaviorModel], seed: int) -> str:
-    """Label of the candidate with the best held-out log-likelihood (the first of any tie)."""
-    scores = held_out_log_likelihood(steps, candidates, seed=seed)
-    return str(scores.sort("log_likelihood", descending=True, maintain_order=True)["model"][0])
+def _scores(
+    steps: pl.DataFrame, candidates: dict[str, BehaviorModel], seed: int, known: Mapping[str, float]
+) -> dict[str, float]:
+    """Held-out log-likelihood of each candidate, in candidate order; those in ``known`` are not re-fitted."""
+    todo = {label: model for label, model in candidates.items() if label not in known}
+    scored = dict(known)
+    if todo:
+        found = held_out_log_likelihood(steps, todo, seed=seed)
+        scored |= dict(zip(found["model"], found["log_likelihood"], strict=True))
+    return {label: scored[label] for label in candidates}
+
+
+def _best(
+    steps: pl.DataFrame,
+    candidates: dict[str, BehaviorModel],
+    seed: int,
+    known: Mapping[str, float] | None = None,
+) -> tuple[str, dict[str, float]]:
+    """Label of the candidate with the best held-out log-likelihood (the first of any tie), and every score.
+
+    ``known`` holds scores of candidates already scored on the same steps and seed.
+    """
+    scores = _scores(steps, candidates, seed, known or {})
+    best = max(scores.values())
+    return next(label for label, score in scores.items() if score == best), scores
 
 
 class BehaviorModel(ABC):
@@ -534,7 +616,8 @@ class BehaviorModel(ABC):
         self.membership_ = _empty_membership(self.split_)
 
     def _check_fitted(self) -> None:
-        if not hasattr(self, "premise_"):
+        # membership_ is set last by every fit and by from_table.
+        if not hasattr(self, "membership_"):
             raise BehaviorInputError("call fit() before asking for probabilities")
 
 
@@ -571,7 +654,7 @@ class CohortCounts(BehaviorModel):
         strength, floor, actions = config.behavior_prior_strength, config.behavior_floor, config.actions
         if strength == "auto":
             grid = {str(k): cls(k, floor, actions) for k in STRENGTH_GRID}
-            strength = float(_best(steps, grid, config.seed))
+            strength = float(_best(steps, grid, config.seed)[0])
         return cls(float(strength), floor, actions)
 
     def _fit(self, steps: pl.DataFrame) -> None:
@@ -673,11 +756,15 @@ class HabitTypes(BehaviorModel):
 
         n_types = config.behavior_types
         start = 5.0 if strength == "auto" else float(strength)
+        known: dict[str, float] = {}
         if n_types == "auto":
-            n_types = int(_best(steps, {str(z): model(z, start) for z in TYPES_GRID}, config.seed))
+            label, scores = _best(steps, {str(z): model(z, start) for z in TYPES_GRID}, config.seed)
+            n_types = int(label)
+            # The chosen size at the starting strength was scored already: not fitted again.
+            known = {str(start): scores[label]}
         if strength == "auto":
             grid = {str(k): model(n_types, k) for k in STRENGTHS_FOR_TYPES}
-            strength = float(_best(steps, grid, config.seed))
+            strength = float(_best(steps, grid, config.seed, known)[0])
         return model(int(n_types), float(strength))
 
     @classmethod
@@ -688,16 +775,13 @@ class HabitTypes(BehaviorModel):
         if not (isinstance(self.n_types, int) and self.n_types >= 1):
             raise BehaviorInputError(f"n_types must be a whole number >= 1, got {self.n_types!r}")
         split, n_actions = self.split_, len(self.actions)
-        frames: dict[str, list[pl.DataFrame]] = {
-            name: [] for name in ("premise", "cohort", "portfolio", "types", "coarse", "member")
-        }
+        members: list[pl.DataFrame] = []
         self.type_tables_: dict[tuple, _TypeTables] = {}
         share_parts: dict[tuple, dict[str, pl.DataFrame]] = {}
+        unbuilt: list[tuple[tuple, pl.DataFrame, _TypeMixture, pl.DataFrame]] = []
         # One fit per mode (cool / heat): at most two passes, each over whole arrays.
         for part_key, part in _parts(steps, split).items():
-            mode_cols = _mode_columns(split, part_key)
             premises = part["premise_id"].unique().sort()
-            code_of = dict(zip(premises.to_list(), range(premises.len()), strict=True))
             state = part["state_key"].to_numpy().astype(np.int64)
             mixture = _TypeMixture(
                 self.n_types,
@@ -707,15 +791,17 @@ class HabitTypes(BehaviorModel):
                 _n_coarse(self.space),
                 self.seed,
             ).fit(
-                part["premise_id"].replace_strict(code_of, return_dtype=pl.Int64).to_numpy(),
+                # Dense ranks number the premises in sorted order, as ``premises`` lists them.
+                part.select(pl.col("premise_id").rank("dense").cast(pl.Int64) - 1).to_series().to_numpy(),
                 state,
                 _coarse_code(self.space, state),
                 action_index(part["action"].to_numpy(), self.actions),
                 part["_weight"].to_numpy(),
                 premises.len(),
             )
-            tables = _TypeTables(mixture.states_, mixture.tables_, mixture.coarse_tables_)
-            self.type_tables_[part_key] = tables
+            self.type_tables_[part_key] = _TypeTables(
+                mixture.states_, mixture.tables_, mixture.coarse_tables_
+            )
 
             decisions = part.group_by("premise_id").agg(pl.col("_weight").sum().alias("decisions"))
             member = (
@@ -730,11 +816,37 @@ class HabitTypes(BehaviorModel):
                 .join(decisions, on="premise_id")
                 .sort("premise_id", "habit_type")
             )
-            frames["member"].append(member.with_columns(mode_cols))
+            members.append(member.with_columns(_mode_columns(split, part_key)))
             share_parts[part_key] = self._part_shares(member)
+            unbuilt.append((part_key, part, mixture, member))
+        self.membership_ = pl.concat(members).select(*split, *_MEMBERSHIP, "decisions")
+        self._gather_shares(share_parts)
+        # The stored rows (premise_, cohort_, portfolio_, types_, type_coarse_) are built on first
+        # use: predicting for premises whose shares are known, as held-out scoring does, never needs them.
+        for name in _ROW_FRAMES:
+            self.__dict__.pop(name, None)
+        self._unbuilt = unbuilt
+
+    def __getattr__(self, name: str):
+        # Reached only when normal lookup fails: build a fit's stored rows when one is first read.
+        unbuilt = self.__dict__.get("_unbuilt")
+        if name in _ROW_FRAMES and unbuilt is not None:
+            self._build_rows(unbuilt)
+            return self.__dict__[name]
+        raise AttributeError(f"{type(self).__name__!r} object has no attribute {name!r}")
+
+    def _build_rows(self, unbuilt: list[tuple[tuple, pl.DataFrame, _TypeMixture, pl.DataFrame]]) -> None:
+        """``premise_``, ``cohort_``, ``portfolio_``, ``types_`` and ``type_coarse_`` of the last fit."""
+        split = self.split_
+        frames: dict[str, list[pl.DataFrame]] = {
+            name: [] for name in ("premise", "cohort", "portfolio", "types", "coarse")
+        }
+        for part_key, part, mixture, member in unbuilt:
+            mode_cols = _mode_columns(split, part_key)
+            tables = self.type_tables_[part_key]
             # The premise rows weigh each premise's shares by its decisions, as the cohort's are.
             row_shares = {
-                **share_parts[part_key],
+                **self._part_shares(member),
                 "premise": _level_shares(member, ["premise_id"], self.n_types),
             }
             for name, level in (("premise", ["premise_id"]), ("cohort", ["cohort"]), ("portfolio", [])):
@@ -770,8 +882,7 @@ class HabitTypes(BehaviorModel):
         self.premise_, self.cohort_, self.portfolio_, self.types_, self.type_coarse_ = (
             pl.concat(frames[name]) for name in ("premise", "cohort", "portfolio", "types", "coarse")
         )
-        self.membership_ = pl.concat(frames["member"]).select(*split, *_MEMBERSHIP, "decisions")
-        self._gather_shares(share_parts)
+        del self._unbuilt
 
     def _type_rows(self, keys: np.ndarray, tables: np.ndarray, counts: np.ndarray, schema) -> pl.DataFrame:
         """Long rows (habit_type, state_key, action, probability, count) of (n_types, n_keys, n_actions)."""
@@ -867,7 +978,6 @@ class HabitTypes(BehaviorModel):
         the portfolio's for a new cohort, at every state: the fitted and the
         reloaded model answer alike even where the premise logged nothing.
         """
-        probs = super()._predict(frame)
         split, columns = self.split_, _share_columns(self.n_types)
 
         def renamed(name: str) -> list[pl.Expr]:
@@ -895,6 +1005,8 @@ class HabitTypes(BehaviorModel):
         shares = shares.select(
             pl.coalesce(f"premise_{c}", f"cohort_{c}", f"portfolio_{c}").alias(c) for c in columns
         )
+        probs = np.full(frame.height, np.nan)
+        answered = np.zeros(frame.height, dtype=bool)
         for part_key, tables in self.type_tables_.items():
             in_part = (
                 frame.select(
@@ -908,12 +1020,16 @@ class HabitTypes(BehaviorModel):
                 continue
             rows = frame.filter(pl.Series(in_part))
             keys = rows["state_key"].to_numpy().astype(np.int64)
-            matrix = tables.predict(
-                shares.filter(pl.Series(in_part)).to_numpy(), keys, _coarse_code(self.space, keys)
+            probs[in_part] = tables.predict_logged(
+                shares.filter(pl.Series(in_part)).to_numpy(),
+                keys,
+                _coarse_code(self.space, keys),
+                action_index(rows["action"].to_numpy(), self.actions),
             )
-            probs[in_part] = matrix[
-                np.arange(rows.height), action_index(rows["action"].to_numpy(), self.actions)
-            ]
+            answered |= in_part
+        if not answered.all():
+            # Rows of a mode without shares (or a model reloaded without its membership).
+            probs[~answered] = super()._predict(frame.filter(pl.Series(~answered)))
         return probs
 
 

@@ -75,6 +75,9 @@ def behavior_replicates(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Poisson episode multiplicities and the behaviour model re-fitted on each resample.
 
+    The re-fits are a loop over replicates (each a whole fit of the model); the draws are
+    ``estimators.frame_multiplicity``'s, the ones every other interval uses.
+
     Returns
     -------
     multiplicity : numpy.ndarray, shape (n_replicates, n_episodes)
@@ -83,8 +86,10 @@ def behavior_replicates(
     """
     episode = steps["episode_id"].to_numpy()
     code = np.cumsum(np.r_[True, episode[1:] != episode[:-1]]) - 1
-    rng = np.random.default_rng(config.seed)
-    multiplicity = rng.poisson(1.0, (config.bootstrap_replicates, int(code[-1]) + 1)).astype(float)
+    # The same per-episode draws as the plain bootstrap (seeded by run seed and episode id).
+    multiplicity = estimators.frame_multiplicity(steps, config.bootstrap_replicates, config.seed).astype(
+        float
+    )
     probabilities = np.empty((config.bootstrap_replicates, steps.height))
     # One re-fit per replicate: a bounded loop, each fit a handful of columnar group-bys.
     for r in range(config.bootstrap_replicates):
@@ -100,6 +105,8 @@ def evaluate_policy(
     config: Config,
     table: np.ndarray | None = None,
     refit: tuple[np.ndarray, np.ndarray] | None = None,
+    multiplicity: np.ndarray | None = None,
+    behavior_sums: tuple[estimators.ReplicateSums, estimators.ReplicateSums] | None = None,
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Savings rows (one per scope, group and estimator) and diagnostics of one target policy.
 
@@ -110,6 +117,11 @@ def evaluate_policy(
     by more than its bootstrap interval shows, while the pooled weighted
     estimate's interval covered the truth (see DEVELOPERS.md, "Choosing the
     behaviour model and the estimator").
+
+    Each estimator passes over the episodes once, for the premises: their numerator and
+    denominator sums, for the point estimate and every bootstrap replicate, are added up
+    into each cohort's and the portfolio's (``estimators.combine_sums``), so the pooled
+    figures are what a sum over shards of premises gives.
 
     Parameters
     ----------
@@ -126,6 +138,13 @@ def evaluate_policy(
     refit : tuple of numpy.ndarray, optional
         ``behavior_replicates`` output; when given, weighted IS intervals come
         from a bootstrap that re-fits the behaviour model in every replicate.
+    multiplicity : numpy.ndarray, optional
+        (bootstrap_replicates, n_episodes) Poisson draws of the steps' episodes; by default
+        ``estimators.frame_multiplicity`` of the steps with the configured seed (pass it to
+        draw once for several target policies).
+    behavior_sums : tuple of estimators.ReplicateSums, optional
+        ``on_policy_sums`` of the same steps and draws (USD, then kWh): the logged policy's
+        value does not depend on the target, so several targets can share it.
     """
     base = steps.select(
         "episode_id",
@@ -142,43 +161,47 @@ def evaluate_policy(
         usd_base = pl.concat([base, _model_columns(steps, table, "reward", config)], how="horizontal")
         neg_kwh = steps.with_columns((-(pl.col("kwh") + pl.col("recovery_kwh"))).alias("neg_kwh"))
         kwh_base = pl.concat([kwh_base, _model_columns(neg_kwh, table, "neg_kwh", config)], how="horizontal")
+    if multiplicity is None:
+        multiplicity = estimators.frame_multiplicity(steps, config.bootstrap_replicates, config.seed)
     returns = base.group_by("episode_id").agg(pl.col("reward").sum())["reward"]
     # Returns are costs (<= 0); the floor assumes no policy costs more than half again
     # the costliest logged episode (stated in the README beside the bound).
     bounds = (1.5 * float(returns.min()), 0.0)
+    usd_premise, kwh_premise = _scoped(usd_base, "premise_id"), _scoped(kwh_base, "premise_id")
+    sums = {name: _premise_sums(usd_premise, kwh_premise, name, multiplicity) for name in names}
+    sums["on_policy_value"] = behavior_sums or on_policy_sums(steps, multiplicity)
+    premise_cohort = steps.select("premise_id", "cohort").unique()
     rows, diags = [], []
     for scope, column in SCOPES:
-        usd_frame, kwh_frame = _scoped(usd_base, column), _scoped(kwh_base, column)
-        behavior = estimators.on_policy_value(usd_frame).select(
-            "group", pl.col("estimate").alias("value_behavior_usd")
-        )
-        kwh_behavior = estimators.on_policy_value(kwh_frame).select(
-            "group", (-pl.col("estimate")).alias("kwh_behavior")
-        )
+        key = _scope_key(premise_cohort, column)
+        scoped = {
+            name: tuple(part if key is None else estimators.combine_sums([part], key) for part in pair)
+            for name, pair in sums.items()
+        }
+        usd_frame = _scoped(usd_base, column)
+        behavior_usd, behavior_kwh = scoped["on_policy_value"]
+        behavior_values = behavior_usd.values()
+        behavior = pl.DataFrame({"group": behavior_usd.labels, "value_behavior_usd": behavior_values[0]})
+        kwh_behavior = pl.DataFrame({"group": behavior_kwh.labels, "kwh_behavior": -behavior_kwh.values()[0]})
         bound = estimators.lower_bound(
             usd_frame, return_bounds=bounds, savings=True, level=config.confidence, seed=config.seed
         ).select("group", pl.col("lower_bound").alias("lower_bound_usd"))
         scope_days = _scoped(days, column).group_by("group").agg(pl.col("days_observed").sum())
         diag = estimators.diagnostics(usd_frame)
         for name in names:
-            fn = estimators.REGISTRY[name].function
-            point = fn(usd_frame)
+            usd, kwh = scoped[name]
+            point = usd.frame()
+            savings = usd.values() - behavior_values
+            labels, point_savings, replicates = usd.labels, savings[0], savings[1:]
             if refit is not None and name == "weighted_is":
                 labels, replicates = estimators.refit_weighted_is_replicates(usd_frame, *refit)
-                saving = point.join(behavior, on="group").select(
-                    "group", pl.col("estimate") - pl.col("value_behavior_usd")
-                )
-                by_label = dict(zip(saving["group"].to_list(), saving["estimate"].to_list(), strict=True))
+                by_label = dict(zip(usd.labels.to_list(), savings[0].tolist(), strict=True))
                 point_savings = np.array([by_label[g] for g in labels])
-            else:
-                labels, point_savings, replicates = estimators.bootstrap_replicates(
-                    usd_frame, name, savings=True, n_replicates=config.bootstrap_replicates, seed=config.seed
-                )
             interval = _interval_and_bootstrap_bound(labels, point_savings, replicates, config)
             joined = (
                 point.rename({"estimate": "value_policy_usd"})
                 .join(behavior, on="group")
-                .join(fn(kwh_frame).select("group", (-pl.col("estimate")).alias("kwh_policy")), on="group")
+                .join(pl.DataFrame({"group": kwh.labels, "kwh_policy": -kwh.values()[0]}), on="group")
                 .join(kwh_behavior, on="group")
                 .join(interval, on="group")
                 .join(bound, on="group")
@@ -188,8 +211,44 @@ def evaluate_policy(
             )
             rows.append(_with_scope(joined, scope))
         diags.append(_with_scope(diag, scope))
-    premise_cohort = steps.select("premise_id", "cohort").unique()
     return _finish_savings(pl.concat(rows), premise_cohort, config), pl.concat(diags)
+
+
+def _premise_sums(
+    usd: pl.DataFrame, kwh: pl.DataFrame, name: str, multiplicity: np.ndarray
+) -> tuple[estimators.ReplicateSums, estimators.ReplicateSums]:
+    """An estimator's sums per premise: USD for the point and every replicate, kWh for the point only."""
+    return (
+        estimators.replicate_sums(usd, name, multiplicity),
+        estimators.replicate_sums(kwh, name, multiplicity[:0]),
+    )
+
+
+def on_policy_sums(
+    steps: pl.DataFrame, multiplicity: np.ndarray
+) -> tuple[estimators.ReplicateSums, estimators.ReplicateSums]:
+    """The logged policy's value sums per premise: USD with replicates, kWh (reward, kwh, recovery_kwh)."""
+    frame = _scoped(
+        steps.select(
+            "episode_id",
+            "t",
+            "reward",
+            "premise_id",
+            (-(pl.col("kwh") + pl.col("recovery_kwh"))).alias("neg_kwh"),
+        ),
+        "premise_id",
+    )
+    return _premise_sums(
+        frame, frame.with_columns(pl.col("neg_kwh").alias("reward")), "on_policy_value", multiplicity
+    )
+
+
+def _scope_key(premise_cohort: pl.DataFrame, column: str | None) -> pl.DataFrame | None:
+    """Each premise's group at a scope (columns group, key); None at premise scope (its own group)."""
+    if column == "premise_id":
+        return None
+    key = pl.col(column) if column else pl.lit("portfolio")
+    return premise_cohort.select(pl.col("premise_id").alias("group"), key.cast(pl.Utf8).alias("key"))
 
 
 def _interval_and_bootstrap_bound(
@@ -206,7 +265,7 @@ def _interval_and_bootstrap_bound(
     usable = ~np.isnan(replicates).all(axis=0)
     bound = np.full(replicates.shape[1], np.nan)
     if usable.any():
-        bound[usable] = np.nanquantile(replicates[:, usable], 1.0 - config.confidence, axis=0)
+        bound[usable] = estimators.nan_quantiles(replicates[:, usable], [1.0 - config.confidence])[0]
     return interval.select("group", "ci_low", "ci_high").with_columns(
         pl.Series("lower_bound_bootstrap_usd", bound)
     )
@@ -360,26 +419,25 @@ def evaluate_candidates(
     """Evaluate every configured candidate rule, per mode (cooling and heating never mix)."""
     visits = steps.group_by("mode", "state_key").agg(pl.len().alias("visits"))
     savings, diags, policies = [], [], []
-    refits: dict[str, tuple[np.ndarray, np.ndarray] | None] = {}
+    # What every candidate of a mode shares: its steps, behaviour probabilities and bootstrap draws.
+    modes = {}
+    for mode in sorted(steps["mode"].unique()):
+        in_mode = steps.filter(pl.col("mode") == mode)
+        refit = behavior_replicates(in_mode, behavior, config) if config.bootstrap_refit_behavior else None
+        draws = estimators.frame_multiplicity(in_mode, config.bootstrap_replicates, config.seed)
+        logged = on_policy_sums(in_mode, draws)
+        modes[mode] = (in_mode, behavior.probabilities(in_mode), refit, draws, logged)
     for rule in config.candidates:
         table = rule.table(config.state, config.actions, config.target_epsilon)
-        for mode in sorted(steps["mode"].unique()):
-            in_mode = steps.filter(pl.col("mode") == mode)
+        for mode, (in_mode, b, refit, draws, logged) in modes.items():
             q_model = FittedQ(config.state, config.actions).fit(in_mode, table)
             policies.append(
                 policy_frame(rule.name, table, config, q_model.q_)
                 .with_columns(pl.lit(mode).alias("mode"))
                 .join(visits, on=["mode", "state_key"], how="left")
             )
-            if mode not in refits:
-                refits[mode] = (
-                    behavior_replicates(in_mode, behavior, config)
-                    if config.bootstrap_refit_behavior
-                    else None
-                )
-            b = behavior.probabilities(in_mode)
             pi = target_probabilities(in_mode, table, config)
-            s, d = evaluate_policy(in_mode, pi, b, days, config, table, refits[mode])
+            s, d = evaluate_policy(in_mode, pi, b, days, config, table, refit, draws, logged)
             tag = (pl.lit(rule.name).alias("policy_name"), pl.lit(mode).alias("mode"))
             savings.append(s.with_columns(*tag))
             diags.append(d.with_columns(*tag))

@@ -389,3 +389,41 @@ def test_stored_tables_that_cannot_rebuild_a_model_are_refused():
         load_behavior(tables, (-1, 0, 1), StateSpace(offset_max=2))
     with pytest.raises(BehaviorInputError, match=r"\['type'\] are missing"):
         load_behavior({"policy": tables["policy"]}, (-1, 0, 1))
+
+
+def test_stored_rows_are_the_same_whether_built_before_or_after_predicting():
+    """A fit answers alike before and after its stored rows are built, and a second fit replaces them."""
+    from polars.testing import assert_frame_equal
+
+    steps, grid = _two_modes(), _every_pair((-1, 0, 1))
+    cool_only = steps.filter(pl.col("mode") == "cool")
+    predicted_first = HabitTypes(5.0, 0.02, (-1, 0, 1), n_types=2).fit(cool_only)
+    probabilities = predicted_first.probabilities(grid)  # heat rows fall back to the stored rows
+    tabled_first = HabitTypes(5.0, 0.02, (-1, 0, 1), n_types=2).fit(cool_only)
+    table = tabled_first.table()
+    np.testing.assert_array_equal(tabled_first.probabilities(grid), probabilities)
+    assert_frame_equal(predicted_first.table(), table)
+    refitted = tabled_first.fit(steps)
+    assert_frame_equal(refitted.table(), HabitTypes(5.0, 0.02, (-1, 0, 1), n_types=2).fit(steps).table())
+
+
+def test_auto_settings_take_the_best_held_out_score_of_each_grid_in_turn():
+    """'auto' picks the number of types at strength 5, then the strength at that number, each the best
+    held-out log-likelihood of its grid (scored here over the whole grids, nothing reused)."""
+    from pipeline.behavior import STRENGTHS_FOR_TYPES, TYPES_GRID, held_out_log_likelihood
+    from pipeline.config import Config
+
+    config = Config(actions=(-1, 0, 1), behavior_types="auto", behavior_prior_strength="auto", seed=3)
+    steps = _two_modes()
+
+    def best(candidates: dict[str, HabitTypes]) -> str:
+        scores = held_out_log_likelihood(steps, candidates, seed=config.seed)
+        return scores.sort("log_likelihood", descending=True, maintain_order=True)["model"][0]
+
+    def model(n_types: int, k: float) -> HabitTypes:
+        return HabitTypes(k, config.behavior_floor, config.actions, n_types=n_types, seed=config.seed)
+
+    n_types = int(best({str(z): model(z, 5.0) for z in TYPES_GRID}))
+    strength = float(best({str(k): model(n_types, k) for k in STRENGTHS_FOR_TYPES}))
+    tuned = HabitTypes.tuned(steps, config)
+    assert (tuned.n_types, tuned.prior_strength) == (n_types, strength)

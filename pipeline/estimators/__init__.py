@@ -14,17 +14,24 @@ the same few array passes as ten.
 Modules by job: ``importance_sampling`` (the IS family, doubly robust and the
 on-policy value, written as shared numerator/denominator terms),
 ``monte_carlo`` (first- and every-visit state values), ``bootstrap``
-(intervals), ``bounds`` (the high-confidence lower bound),
+(per-episode Poisson draws, sums per group that add up across shards, and
+intervals), ``bounds`` (the high-confidence lower bound),
 ``weight_diagnostics`` (weight spread and support) and ``registry`` (the one
 list of published names, ``REGISTRY`` and ``OFF_POLICY_NAMES``).
 """
 
 from pipeline.estimators._steps import ALL_GROUP, EstimatorInputError
 from pipeline.estimators.bootstrap import (
+    ReplicateSums,
     bootstrap_interval,
     bootstrap_replicates,
+    combine_sums,
+    frame_multiplicity,
+    nan_quantiles,
     percentile_interval,
+    poisson_multiplicity,
     refit_weighted_is_replicates,
+    replicate_sums,
 )
 from pipeline.estimators.bounds import lower_bound
 from pipeline.estimators.importance_sampling import (
@@ -45,19 +52,25 @@ __all__ = [
     "REGISTRY",
     "Estimator",
     "EstimatorInputError",
+    "ReplicateSums",
     "bootstrap_interval",
     "bootstrap_replicates",
+    "combine_sums",
     "diagnostics",
     "doubly_robust",
     "effective_sample_size",
     "every_visit_mc",
     "first_visit_mc",
+    "frame_multiplicity",
     "lower_bound",
+    "nan_quantiles",
     "on_policy_value",
     "ordinary_is",
     "per_decision_is",
     "percentile_interval",
+    "poisson_multiplicity",
     "refit_weighted_is_replicates",
+    "replicate_sums",
     "weighted_is",
     "weighted_per_decision_is",
 ]

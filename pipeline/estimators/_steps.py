@@ -22,6 +22,8 @@ _PROB_COLUMNS = ("pi", "b")
 # exp(709.8) is the largest finite float64; beyond this a weight cannot be represented.
 _MAX_LOG_WEIGHT = 700.0
 _MAX_WEIGHT = float(np.exp(_MAX_LOG_WEIGHT))
+# Below this a weight would be a subnormal float64 and lose precision.
+_MIN_LOG_WEIGHT = float(np.log(np.finfo(np.float64).tiny))
 
 
 class EstimatorInputError(ValueError):
@@ -64,7 +66,10 @@ class _Steps:
     @cached_property
     def episode(self) -> np.ndarray:
         """(n_steps,) episode code of each step, 0 .. n_episodes - 1 in frame order."""
-        return np.cumsum(self.t == 0) - 1
+        # A running count of episode starts; integer marks add faster than a boolean cumsum.
+        marks = np.zeros(self.t.size, dtype=np.int64)
+        marks[self.starts[1:]] = 1
+        return np.cumsum(marks, out=marks)
 
     @cached_property
     def discount(self) -> np.ndarray:
@@ -106,23 +111,28 @@ def _prepare(
             raise EstimatorInputError(f"column {name!r} has {nulls} null value(s); drop or fill them first")
 
     episode_id = steps["episode_id"].to_numpy()
-    if (episode_id[1:] < episode_id[:-1]).any():  # no diff: unsigned ids would wrap
-        row = int(np.argmax(episode_id[1:] < episode_id[:-1])) + 1
+    t = steps["t"].to_numpy()
+    new_episode = episode_id[1:] != episode_id[:-1]
+    starts = np.empty(np.count_nonzero(new_episode) + 1, dtype=np.int64)
+    starts[0] = 0
+    np.add(np.flatnonzero(new_episode), 1, out=starts[1:])
+    # Sorted exactly when each episode's id is above the one before (ids are constant within).
+    first_ids = episode_id[starts]
+    if (first_ids[1:] < first_ids[:-1]).any():  # no diff: unsigned ids would wrap
+        row = int(starts[1:][np.argmax(first_ids[1:] < first_ids[:-1])])
         raise EstimatorInputError(
             f"steps must be sorted by (episode_id, t): row {row} has episode_id {episode_id[row]} "
             f"after {episode_id[row - 1]}; call steps.sort(['episode_id', 't'])"
         )
-    t = steps["t"].to_numpy().astype(np.int64, copy=False)
-    new_episode = episode_id[1:] != episode_id[:-1]
-    # t counts 0, 1, 2, ... within episodes exactly when it is 0 at the first row and, further
-    # on, 0 where the id changes and one more than the row before where it does not.
-    expected = np.add(t[:-1], 1)
-    np.multiply(expected, ~new_episode, out=expected)
-    if t[0] != 0 or not np.array_equal(t[1:], expected):
+    lengths = np.empty_like(starts)
+    np.subtract(starts[1:], starts[:-1], out=lengths[:-1])
+    lengths[-1] = t.size - starts[-1]
+    # t counts 0, 1, 2, ... within each episode exactly when it starts at 0, ends at length - 1
+    # and rises at every step in between: integer rises of at least 1 adding up to length - 1
+    # are all 1. Rising is checked as "t goes up exactly where the id stays the same".
+    rises = np.greater(t[1:], t[:-1])
+    if t[starts].any() or (t[starts + lengths - 1] != lengths - 1).any() or (rises == new_episode).any():
         _raise_t_error(episode_id, t, new_episode)
-    starts = np.flatnonzero(t == 0)
-    lengths = np.diff(np.append(starts, t.size))
-
     if "group" in steps.columns:
         column = steps["group"]
         if column.null_count():
@@ -177,18 +187,27 @@ def _check_finite(values: np.ndarray, name: str) -> None:
 
 def _probabilities(steps: pl.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     """``pi`` in [0, 1] and ``b`` in (0, 1], as float arrays (n_steps,)."""
-    pi = steps["pi"].to_numpy().astype(np.float64, copy=False)
-    b = steps["b"].to_numpy().astype(np.float64, copy=False)
-    _check_range(pi, "pi", "target", allow_zero=True)
-    _check_range(b, "b", "behaviour", allow_zero=False)
+    pi, b, _ = _checked_probabilities(steps)
     return pi, b
 
 
-def _check_range(p: np.ndarray, name: str, role: str, allow_zero: bool) -> None:
+def _checked_probabilities(steps: pl.DataFrame) -> tuple[np.ndarray, np.ndarray, tuple[float, ...]]:
+    """``pi`` and ``b`` as ``_probabilities`` gives them, and (min pi, max pi, min b, max b)."""
+    pi = steps["pi"].to_numpy().astype(np.float64, copy=False)
+    b = steps["b"].to_numpy().astype(np.float64, copy=False)
+    ranges = (
+        *_check_range(pi, "pi", "target", allow_zero=True),
+        *_check_range(b, "b", "behaviour", allow_zero=False),
+    )
+    return pi, b, ranges
+
+
+def _check_range(p: np.ndarray, name: str, role: str, allow_zero: bool) -> tuple[float, float]:
+    """Refuse values outside [0, 1] (or (0, 1]); return the smallest and largest."""
     # min and max pass over the array once each; NaN fails both comparisons and reaches the search.
     low, high = p.min(), p.max()
     if ((low >= 0.0) if allow_zero else (low > 0.0)) and high <= 1.0:
-        return
+        return float(low), float(high)
     inside = ((p >= 0.0) if allow_zero else (p > 0.0)) & (p <= 1.0)
     bad = np.flatnonzero(~inside)
     if bad.size:
@@ -204,6 +223,7 @@ def _check_range(p: np.ndarray, name: str, role: str, allow_zero: bool) -> None:
             f"column {name!r} must hold {role} probabilities in {interval}; {bad.size} row(s) fall "
             f"outside, first at row {row} ({name}={p[row]}).{hint}"
         )
+    return float(low), float(high)
 
 
 def _check_level(level: float) -> float:
@@ -232,12 +252,20 @@ def _episode_sum(values: np.ndarray, s: _Steps) -> np.ndarray:
     return np.bincount(s.episode, weights=values, minlength=s.n_episodes)
 
 
-def _group_sums(values: np.ndarray, group: np.ndarray, n_groups: int) -> np.ndarray:
+def _group_sums(values: np.ndarray, group: np.ndarray | None, n_groups: int) -> np.ndarray:
     """Sums of ``values`` (m,) by ``group`` code (m,), shape (n_groups,).
 
-    One group is a plain sum: a bincount into a single bin waits on every add in turn.
+    One group is a plain sum (``group`` may then be None): a bincount into a single bin
+    waits on every add in turn.
     """
     return np.array([values.sum()]) if n_groups == 1 else np.bincount(group, values, n_groups)
+
+
+def _group_counts(group: np.ndarray, n_groups: int) -> np.ndarray:
+    """How many of the codes ``group`` fall in each group, shape (n_groups,), int64."""
+    if n_groups == 1:
+        return np.array([group.size], dtype=np.int64)
+    return np.bincount(group, minlength=n_groups).astype(np.int64, copy=False)
 
 
 def _discounted(values: np.ndarray, s: _Steps) -> np.ndarray:
@@ -254,12 +282,37 @@ def _keyed_sums(key: np.ndarray, values: np.ndarray, n_keys: int) -> np.ndarray:
     return out
 
 
-def _cumulative_weights(pi: np.ndarray, b: np.ndarray, s: _Steps) -> np.ndarray:
+def _products_stay_normal(s: _Steps, ranges: tuple[float, ...]) -> bool:
+    """Whether no running product of pi / b can leave the normal float64 range, from the ranges alone.
+
+    Every ratio lies in [min pi / max b, max pi / min b], so every running product lies
+    between min(1, low) ** L and max(1, high) ** L, L the longest episode's length.
+    """
+    pi_low, pi_high, b_low, b_high = ranges
+    if not (pi_low > 0.0 and b_low > 0.0):
+        return False
+    longest = float(s.lengths.max())
+    with np.errstate(over="ignore"):
+        low, high = pi_low / b_high, pi_high / b_low
+    return bool(
+        np.isfinite(high)
+        and longest * np.log(max(1.0, high)) <= _MAX_LOG_WEIGHT
+        and longest * np.log(min(1.0, low)) >= _MIN_LOG_WEIGHT
+    )
+
+
+def _cumulative_weights(
+    pi: np.ndarray, b: np.ndarray, s: _Steps, ranges: tuple[float, ...] | None = None
+) -> np.ndarray:
     """rho_{0:t} = prod_{k <= t} pi_k / b_k within each episode, shape (n_steps,).
 
     Multiplied directly when every pi is positive and no product leaves the
     normal float64 range; otherwise summed in log space (``_log_space_weights``).
+    ``ranges`` (min pi, max pi, min b, max b), when known, can show that without a look
+    at the products.
     """
+    if ranges is not None and _products_stay_normal(s, ranges):
+        return _segment_cumprod(np.divide(pi, b), s, in_place=True)
     if pi.min() > 0.0:
         weights = _segment_cumprod(np.divide(pi, b), s, in_place=True)
         if np.finfo(np.float64).tiny <= weights.min() and weights.max() <= _MAX_WEIGHT:
@@ -267,28 +320,36 @@ def _cumulative_weights(pi: np.ndarray, b: np.ndarray, s: _Steps) -> np.ndarray:
     return _log_space_weights(pi, b, s)
 
 
+def _trajectory_weights(
+    pi: np.ndarray, b: np.ndarray, s: _Steps, ranges: tuple[float, ...] | None = None
+) -> np.ndarray:
+    """rho_i = prod_t pi_t / b_t over each whole episode, shape (n_episodes,).
+
+    One segment product per episode when no running product can leave the normal float64
+    range (``_products_stay_normal``); otherwise the last of ``_cumulative_weights``.
+    ``ranges`` (min pi, max pi, min b, max b), when known, saves passes over the arrays.
+    """
+    if _products_stay_normal(s, ranges or (pi.min(), pi.max(), b.min(), b.max())):
+        return np.multiply.reduceat(np.divide(pi, b), s.starts)
+    return _cumulative_weights(pi, b, s)[s.ends]
+
+
 def _segment_cumprod(values: np.ndarray, s: _Steps, in_place: bool = False) -> np.ndarray:
     """Inclusive cumulative product of ``values`` (n_steps,) restarting at each episode.
 
-    A log-step scan (Hillis and Steele 1986): after the pass with offset k each
-    row holds the product of its last 2k values within the episode, so a frame
-    whose longest episode has L steps takes ceil(log2 L) whole-array passes.
-    ``in_place`` overwrites ``values`` instead of copying them.
+    A scan over decision indices: pass k multiplies step k of every episode that reaches
+    it by its running product at step k - 1, so the products are formed left to right as
+    a plain loop forms them, and pass k touches only the episodes still running (the
+    passes together touch each step once). ``in_place`` overwrites ``values``.
     """
     out = values if in_place else values.copy()
-    offset, longest = 1, int(s.lengths.max())
-    # Three scratch arrays reused by every pass: fresh step-sized temporaries each cost page faults.
-    same, rest, factor = np.empty(out.size), np.empty(out.size), np.empty(out.size)
-    while offset < longest:
-        m = out.size - offset
-        # same is 1 where the row offset back is in the same episode; x * 1 + 0 == x and
-        # x * 0 + 1 == 1 exactly, and plain arithmetic runs faster than a masked multiply.
-        np.greater_equal(s.t[offset:], offset, out=same[:m])
-        np.subtract(1.0, same[:m], out=rest[:m])
-        np.multiply(out[:-offset], same[:m], out=factor[:m])
-        np.add(factor[:m], rest[:m], out=factor[:m])
-        out[offset:] *= factor[:m]
-        offset *= 2
+    running = np.flatnonzero(s.lengths > 1)
+    k = 1
+    while running.size:
+        rows = s.starts[running] + k
+        out[rows] *= out[rows - 1]
+        k += 1
+        running = running[s.lengths[running] > k]
     return out
 
 
@@ -342,5 +403,12 @@ def _weighted_steps(
 ) -> tuple[_Steps, np.ndarray]:
     """Validated steps with reward, pi and b (and ``extra`` columns), and their weights rho_{0:t}."""
     s = _prepare(steps, _STEP_COLUMNS + _PROB_COLUMNS + extra, gamma)
-    pi, b = _probabilities(steps)
-    return s, _cumulative_weights(pi, b, s)
+    pi, b, ranges = _checked_probabilities(steps)
+    return s, _cumulative_weights(pi, b, s, ranges)
+
+
+def _weighted_episodes(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, np.ndarray]:
+    """Validated steps with reward, pi and b, and each episode's trajectory weight rho_i (n_episodes,)."""
+    s = _prepare(steps, _STEP_COLUMNS + _PROB_COLUMNS, gamma)
+    pi, b, ranges = _checked_probabilities(steps)
+    return s, _trajectory_weights(pi, b, s, ranges)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import polars as pl
 
-from pipeline.estimators._steps import EstimatorInputError, _check_level, _returns, _weighted_steps
+from pipeline.estimators._steps import EstimatorInputError, _check_level, _returns, _weighted_episodes
 
 # Clipping thresholds tried per group, as fractions of the largest held-out weighted return.
 _CLIP_GRID = np.geomspace(1e-3, 1.0, 48)
@@ -121,7 +121,7 @@ def lower_bound(
         uses) and ``clip_threshold`` (c, in the scaled units of X).
     """
     level = _check_level(level)
-    s, w = _weighted_steps(steps, gamma)
+    s, rho = _weighted_episodes(steps, gamma)
     low, high = (float(v) for v in return_bounds)
     if not (np.isfinite(low) and np.isfinite(high) and low < high):
         raise EstimatorInputError(
@@ -137,7 +137,6 @@ def lower_bound(
             f"{returns[i]:.4g} USD (episode code {i}); widen the bounds, they must hold for every episode"
         )
     z = np.clip((returns - low) / (high - low), 0.0, 1.0)
-    rho = w[s.ends]
     x = rho * z + (1.0 - z) if savings else rho * z
     # A threshold no lower than the largest possible mean keeps c sensible when it cannot be tuned.
     default_clip = 2.0 if savings else 1.0

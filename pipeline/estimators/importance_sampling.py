@@ -25,6 +25,7 @@ from pipeline.estimators._steps import (
     EstimatorInputError,
     _discounted,
     _episode_sum,
+    _group_counts,
     _group_sums,
     _keyed_sums,
     _prepare,
@@ -32,6 +33,7 @@ from pipeline.estimators._steps import (
     _returns,
     _Steps,
     _weight_summary,
+    _weighted_episodes,
     _weighted_steps,
 )
 
@@ -77,14 +79,12 @@ def _on_policy_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]
 
 
 def _ordinary_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
-    s, w = _weighted_steps(steps, gamma)
-    rho = w[s.ends]
+    s, rho = _weighted_episodes(steps, gamma)
     return s, _scalar_terms(rho * _returns(s), np.ones(s.n_episodes), rho)
 
 
 def _weighted_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
-    s, w = _weighted_steps(steps, gamma)
-    rho = w[s.ends]
+    s, rho = _weighted_episodes(steps, gamma)
     return s, _scalar_terms(rho * _returns(s), rho, rho)
 
 
@@ -145,15 +145,17 @@ def _in_key_order(terms: _Terms, s: _Steps) -> _Terms:
     )
 
 
-def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> np.ndarray:
-    """Estimates for each row of episode ``multiplicity`` (B, n_episodes), shape (B, n_groups).
+def _sums(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Numerator and denominator sums per row of episode ``multiplicity`` (B, n_episodes), group and cell.
 
-    ``None`` means every episode once (the point estimate, B = 1). A group whose
-    denominator is zero in some cell, i.e. no episode with non-zero weight, gets NaN.
+    ``None`` means every episode once (the point estimate, B = 1). Returns two arrays of
+    shape (B, n_groups, n_cells); carried entries are already added into the later cells'
+    denominators, so sums over disjoint sets of episodes add up.
     """
-    key, carry_key = _entry_keys(terms, s)
     n_cells, n_groups = terms.n_cells, s.n_groups
     n_keys = n_groups * n_cells
+    # With a single key (one group, one cell) every entry sums into it: no keys to build.
+    key, carry_key = _entry_keys(terms, s) if n_keys > 1 else (None, None)
     if multiplicity is None:
         # Every multiplicity is 1: entries are summed by key in any order, with no sort.
         rows = 1
@@ -163,11 +165,17 @@ def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) 
         if terms.carry is not None:
             carried = _group_sums(terms.carry[2], carry_key, n_keys)
     else:
+        if key is None:
+            key, carry_key = _entry_keys(terms, s)
         if (key[1:] < key[:-1]).any() or (carry_key[1:] < carry_key[:-1]).any():
             terms = _in_key_order(terms, s)
             key, carry_key = _entry_keys(terms, s)
         rows = multiplicity.shape[0]
-        u_entries = multiplicity[:, terms.episode]
+        # One entry per episode in episode order (the trajectory-wise estimators) needs no gather.
+        per_episode = terms.episode.size == s.n_episodes and bool(
+            (terms.episode == np.arange(s.n_episodes)).all()
+        )
+        u_entries = multiplicity if per_episode else multiplicity[:, terms.episode]
         numerator = _keyed_sums(key, u_entries * terms.numerator, n_keys)
         denominator = _keyed_sums(key, u_entries * terms.denominator, n_keys)
         carried = None
@@ -178,9 +186,26 @@ def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) 
     denominator = denominator.reshape(rows, n_groups, n_cells)
     if carried is not None:
         denominator += np.cumsum(carried.reshape(rows, n_groups, n_cells), axis=2)
+    return numerator, denominator
+
+
+def _ratios(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
+    """Estimates (B, n_groups) from sums (B, n_groups, n_cells): the sum over cells of their ratios.
+
+    A group whose denominator is zero in some cell, i.e. no episode with non-zero weight, gets NaN.
+    """
     positive = denominator > 0.0
     ratio = np.divide(numerator, denominator, out=np.zeros_like(numerator), where=positive)
     return np.where(positive.all(axis=2), ratio.sum(axis=2), np.nan)
+
+
+def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> np.ndarray:
+    """Estimates for each row of episode ``multiplicity`` (B, n_episodes), shape (B, n_groups).
+
+    ``None`` means every episode once (the point estimate, B = 1). A group whose
+    denominator is zero in some cell, i.e. no episode with non-zero weight, gets NaN.
+    """
+    return _ratios(*_sums(terms, s, multiplicity))
 
 
 def _estimate_frame(s: _Steps, terms: _Terms) -> pl.DataFrame:
@@ -189,7 +214,7 @@ def _estimate_frame(s: _Steps, terms: _Terms) -> pl.DataFrame:
         {
             "group": s.labels,
             "estimate": _evaluate(terms, s)[0],
-            "n_episodes": np.bincount(s.group, minlength=s.n_groups).astype(np.int64, copy=False),
+            "n_episodes": _group_counts(s.group, s.n_groups),
             "ess": ess,
             "max_weight_share": share,
         }

@@ -9,9 +9,9 @@ from pipeline.estimators._steps import (
     _PROB_COLUMNS,
     EstimatorInputError,
     _check_range,
-    _cumulative_weights,
     _episode_sum,
     _prepare,
+    _trajectory_weights,
     _weight_summary,
 )
 
@@ -68,10 +68,10 @@ def diagnostics(steps: pl.DataFrame) -> pl.DataFrame:
     missing = np.isnan(b)
     _check_range(np.where(missing, 1.0, b), "b", "behaviour", allow_zero=True)
     unsupported = (pi > 0.0) & (missing | (b == 0.0))
-    w = _cumulative_weights(pi, np.where(unsupported | missing, 1.0, b), s)
+    w = _trajectory_weights(pi, np.where(unsupported | missing, 1.0, b), s)
     bad_episode = _episode_sum(unsupported.astype(np.float64), s) > 0
     supported = ~bad_episode
-    rho = np.where(supported, w[s.ends], 0.0)
+    rho = np.where(supported, w, 0.0)
 
     n_groups = s.n_groups
     total, ess, share = _weight_summary(rho, s.group, n_groups)
