@@ -14,7 +14,8 @@ the same few array passes as ten.
 Modules by job: ``importance_sampling`` (the IS family, doubly robust and the
 on-policy value, written as shared numerator/denominator terms),
 ``monte_carlo`` (first- and every-visit state values), ``bootstrap``
-(intervals), ``bounds`` (the high-confidence lower bound),
+(intervals), ``bounds`` (the high-confidence lower bound), ``safety`` (the safety test's
+bound on held-out episodes, Thomas, Theocharous and Ghavamzadeh 2015),
 ``weight_diagnostics`` (weight spread and support) and ``registry`` (the one
 list of published names, ``REGISTRY`` and ``OFF_POLICY_NAMES``).
 """
@@ -37,6 +38,7 @@ from pipeline.estimators.importance_sampling import (
 )
 from pipeline.estimators.monte_carlo import every_visit_mc, first_visit_mc
 from pipeline.estimators.registry import OFF_POLICY_NAMES, REGISTRY, Estimator
+from pipeline.estimators.safety import improvement_lower_bound, truncated_bound, value_lower_bound
 from pipeline.estimators.weight_diagnostics import diagnostics, effective_sample_size
 
 __all__ = [
@@ -52,12 +54,15 @@ __all__ = [
     "effective_sample_size",
     "every_visit_mc",
     "first_visit_mc",
+    "improvement_lower_bound",
     "lower_bound",
     "on_policy_value",
     "ordinary_is",
     "per_decision_is",
     "percentile_interval",
     "refit_weighted_is_replicates",
+    "truncated_bound",
+    "value_lower_bound",
     "weighted_is",
     "weighted_per_decision_is",
 ]
