@@ -401,6 +401,9 @@ def test_the_moving_mass_goes_to_the_best_well_sampled_action():
     assert_allclose(baseline_bootstrapped(q, counts, base, 5), [[0.1, 0.0, 0.3, 0.6, 0.0]])
     # epsilon 0.3 spreads 0.18 over the three well-sampled supported actions (0.06 each).
     assert_allclose(baseline_bootstrapped(q, counts, base, 5, epsilon=0.3), [[0.1, 0.06, 0.3, 0.48, 0.06]])
+    # An action the behaviour never takes gets no softening mass: 0.18 goes to actions 3 and 4 only.
+    never = np.array([[0.1, 0.0, 0.3, 0.35, 0.25]])
+    assert_allclose(baseline_bootstrapped(q, counts, never, 5, epsilon=0.3), [[0.1, 0.0, 0.3, 0.51, 0.09]])
 
 
 def test_min_count_zero_is_greedy_and_a_huge_min_count_is_the_behaviour():
@@ -445,6 +448,22 @@ def test_allowed_actions_on_a_hand_computed_cooling_premise():
         mask[keys[1]], [True, False, False, False, False]
     )  # 3 - 2 = 1: as near as one move gets
     assert_array_equal(mask[keys[2]], [False, True, True, False, False])
+
+
+def test_conflicting_comfort_setpoints_and_empty_masks_are_refused():
+    """Heating comfort above cooling comfort leaves no legal return setpoint; a row allowing nothing fails."""
+    with pytest.raises(ControlInputError, match="no setpoint satisfies"):
+        allowed_mask(
+            StateSpace(),
+            (-1, 0, 1),
+            heating=np.array([False, False]),
+            comfort_cool_c=np.array([24.0, 21.0]),
+            comfort_heat_c=np.array([20.0, 22.0]),
+            cool_band_c=(18, 30),
+            heat_band_c=(13, 23),
+        )
+    with pytest.raises(ControlInputError, match="at least one action"):
+        restrict(np.full((2, 3), 1 / 3), np.array([[True, False, False], [False, False, False]]))
 
 
 def _setpoint(offset, heating, cool_c, heat_c):
