@@ -16,6 +16,9 @@ bias such a model leaves, as long as the behaviour probabilities are right.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+from functools import cached_property
+
 import numpy as np
 import polars as pl
 
@@ -25,6 +28,74 @@ from pipeline.policies import DEFAULT_ACTIONS, action_index
 
 class QModelInputError(ValueError):
     """Steps that cannot be used to fit the Q model."""
+
+
+@dataclass(frozen=True)
+class Transitions:
+    """Logged decision steps as the flat arrays of a tabular regression, each (n_steps,), frame order.
+
+    Shared by fitted Q evaluation here and the learners of ``pipeline.control``, so
+    every tabular model reads (state, action) pairs and next states the same way.
+    """
+
+    state: np.ndarray
+    """State key of each step."""
+    pair: np.ndarray
+    """Cell of each step in a flattened (n_states, n_actions) table: state * n_actions + action column."""
+    reward: np.ndarray
+    """Reward of each step, USD (or any unit)."""
+    last: np.ndarray
+    """True at each episode's last step."""
+    next_state: np.ndarray
+    """State key of the step after; 0 at a last step, where it is never read."""
+    n_states: int
+    n_actions: int
+
+    @classmethod
+    def from_arrays(
+        cls,
+        episode: np.ndarray,
+        state: np.ndarray,
+        action_column: np.ndarray,
+        reward: np.ndarray,
+        n_states: int,
+        n_actions: int,
+    ) -> Transitions:
+        """From steps sorted by episode, then time: episode ids, state keys, action columns, rewards."""
+        episode = np.asarray(episode)
+        state = np.asarray(state, dtype=np.int64)
+        last = np.append(episode[1:] != episode[:-1], True)
+        next_state = np.where(last, 0, np.roll(state, -1))
+        pair = state * n_actions + np.asarray(action_column, dtype=np.int64)
+        return cls(state, pair, np.asarray(reward, dtype=float), last, next_state, n_states, n_actions)
+
+    @classmethod
+    def from_steps(cls, steps: pl.DataFrame, n_states: int, actions: tuple[int, ...]) -> Transitions:
+        """From a frame sorted by (episode_id, t) with episode_id, state_key, action (°C) and reward."""
+        missing = [c for c in ("episode_id", "state_key", "action", "reward") if c not in steps.columns]
+        if missing:
+            raise QModelInputError(f"steps lack columns {missing}")
+        return cls.from_arrays(
+            steps["episode_id"].to_numpy(),
+            steps["state_key"].to_numpy(),
+            action_index(steps["action"].to_numpy(), actions),
+            steps["reward"].to_numpy(),
+            n_states,
+            len(actions),
+        )
+
+    @cached_property
+    def pair_count(self) -> np.ndarray:
+        """Logged steps per (state, action) cell, flattened, shape (n_states * n_actions,)."""
+        return np.bincount(self.pair, minlength=self.n_states * self.n_actions)
+
+    def targets(self, next_value: np.ndarray, gamma: float = 1.0) -> np.ndarray:
+        """One-step targets r + gamma * V(s'), with V = 0 after each episode's last step, shape (n_steps,)."""
+        return self.reward + gamma * np.where(self.last, 0.0, next_value[self.next_state])
+
+    def pair_mean(self, y: np.ndarray) -> np.ndarray:
+        """Mean of ``y`` (n_steps,) per cell, flattened; 0 where a cell was never logged."""
+        return _safe_ratio(np.bincount(self.pair, y, self.n_states * self.n_actions), self.pair_count)
 
 
 class FittedQ:
@@ -51,20 +122,11 @@ class FittedQ:
         ``steps`` needs episode_id, state_key, action and reward (USD). Sets ``q_``
         (n_states, n_actions) and ``v_`` (n_states,), both in USD.
         """
-        missing = [c for c in ("episode_id", "state_key", "action", "reward") if c not in steps.columns]
-        if missing:
-            raise QModelInputError(f"steps lack columns {missing}")
         n_states, n_actions = self.space.n_states, len(self.actions)
+        moves = Transitions.from_steps(steps, n_states, self.actions)
         if target.shape != (n_states, n_actions):
             raise QModelInputError(f"target table has shape {target.shape}, expected {(n_states, n_actions)}")
-        state = steps["state_key"].to_numpy().astype(np.int64)
-        pair = state * n_actions + action_index(steps["action"].to_numpy(), self.actions)
-        reward = steps["reward"].to_numpy().astype(float)
-        episode = steps["episode_id"].to_numpy()
-        last = np.append(episode[1:] != episode[:-1], True)
-        next_state = np.where(last, 0, np.roll(state, -1))
-
-        pair_count = np.bincount(pair, minlength=n_states * n_actions)
+        state = moves.state
         state_count = np.bincount(state, minlength=n_states)
         left = self.space.decode(np.arange(n_states))["steps_left"]
         step_left = left[state]
@@ -72,13 +134,12 @@ class FittedQ:
 
         q = np.zeros((n_states, n_actions))
         for _ in range(self.sweeps):
-            v = (target * q).sum(axis=1)
-            y = reward + np.where(last, 0.0, v[next_state])
-            pair_mean = _safe_ratio(np.bincount(pair, y, n_states * n_actions), pair_count)
+            y = moves.targets((target * q).sum(axis=1))
+            pair_mean = moves.pair_mean(y)
             state_mean = _safe_ratio(np.bincount(state, y, n_states), state_count)
             left_mean = _safe_ratio(np.bincount(step_left, y, left.max() + 1), left_count)
             fallback = np.where(state_count > 0, state_mean, left_mean[left])
-            q = np.where(pair_count > 0, pair_mean, np.repeat(fallback, n_actions)).reshape(
+            q = np.where(moves.pair_count > 0, pair_mean, np.repeat(fallback, n_actions)).reshape(
                 n_states, n_actions
             )
         self.q_ = q

@@ -15,7 +15,8 @@ Modules by job: ``importance_sampling`` (the IS family, doubly robust and the
 on-policy value, written as shared numerator/denominator terms),
 ``monte_carlo`` (first- and every-visit state values), ``bootstrap``
 (per-episode Poisson draws, sums per group that add up across shards, and
-intervals), ``bounds`` (the high-confidence lower bound),
+intervals), ``bounds`` (the high-confidence lower bound), ``safety`` (the safety test's
+bound on held-out episodes, Thomas, Theocharous and Ghavamzadeh 2015),
 ``weight_diagnostics`` (weight spread and support) and ``registry`` (the one
 list of published names, ``REGISTRY`` and ``OFF_POLICY_NAMES``).
 """
@@ -44,6 +45,7 @@ from pipeline.estimators.importance_sampling import (
 )
 from pipeline.estimators.monte_carlo import every_visit_mc, first_visit_mc
 from pipeline.estimators.registry import OFF_POLICY_NAMES, REGISTRY, Estimator
+from pipeline.estimators.safety import improvement_lower_bound, truncated_bound, value_lower_bound
 from pipeline.estimators.weight_diagnostics import diagnostics, effective_sample_size
 
 __all__ = [
@@ -62,6 +64,7 @@ __all__ = [
     "every_visit_mc",
     "first_visit_mc",
     "frame_multiplicity",
+    "improvement_lower_bound",
     "lower_bound",
     "nan_quantiles",
     "on_policy_value",
@@ -71,6 +74,8 @@ __all__ = [
     "poisson_multiplicity",
     "refit_weighted_is_replicates",
     "replicate_sums",
+    "truncated_bound",
+    "value_lower_bound",
     "weighted_is",
     "weighted_per_decision_is",
 ]
