@@ -125,7 +125,7 @@ def build_shard(config: Config, shard: Shard, params: Mapping[str, object]) -> S
     staging.mkdir(parents=True)
     rows: dict[str, int] = {}
     try:
-        with store.warehouse(config.warehouse_path, read_only=True) as con:
+        with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
             database = store.quote_identifier(con.execute("select current_database()").fetchone()[0])
             within = f"premise_id between {_literal(shard.first_premise)} and {_literal(shard.last_premise)}"
             for table in PREMISE_TABLES:

@@ -148,7 +148,7 @@ def _checked(config: Config, stage: str) -> None:
     """Refuse ``stage`` unless the warehouse holds current inputs built with this run's settings."""
     _require_warehouse(config, stage)
     upstream = _upstream(stage)
-    with store.warehouse(config.warehouse_path) as con:
+    with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
         lineage.check(con, stage, upstream, _settings_of(config, upstream))
 
 
@@ -161,10 +161,10 @@ def ingest(config: Config, run: Run, progress: ingestion.Progress | None = None)
     started = time.perf_counter()
     reread = False
     if config.warehouse_path.exists():
-        with store.warehouse(config.warehouse_path) as con:
+        with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
             reread = bool(lineage.changed(con, "ingest", config.stage_settings("ingest")))
     results = ingestion.results_frame(ingestion.ingest(config, progress=progress, reread=reread))
-    with store.warehouse(config.warehouse_path) as con, store.transaction(con):
+    with store.warehouse(config.warehouse_path, settings=config.duckdb) as con, store.transaction(con):
         loaded = store.execute(
             con,
             "select coalesce(string_agg(concat_ws(':', source_file, content_hash, status, rows_loaded),"
@@ -179,7 +179,7 @@ def ingest(config: Config, run: Run, progress: ingestion.Progress | None = None)
 def plan_episodes(config: Config) -> tuple[shards.Shard, ...]:
     """The episode stage's shards of premises, each with the fingerprint of its inputs."""
     _checked(config, "episodes")
-    with store.warehouse(config.warehouse_path, read_only=True) as con:
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
         return shards.plan(con, config, sql_params(config))
 
 
@@ -194,7 +194,7 @@ def finish_episodes(
     """Publish the shards as the warehouse's ``hourly``, ``episode`` and ``step``; write the ledger rows."""
     started = time.perf_counter()
     inputs = ";".join(shard.fingerprint for shard in plan)
-    with store.warehouse(config.warehouse_path) as con:
+    with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
         with store.transaction(con):
             shards.combine(con, plan, sql_params(config))
             store.replace_table(con, "state_lookup", config.state.lookup())
@@ -228,7 +228,7 @@ def episodes(config: Config, run: Run) -> EpisodeSummary:
 
 
 def _steps(config: Config) -> pl.DataFrame:
-    with store.warehouse(config.warehouse_path, read_only=True) as con:
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
         steps = load_steps(con)
     if steps.is_empty():
         raise StageError("no usable decision steps: check the episode stage's exclusions (episode_summary)")
@@ -260,16 +260,16 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
     _checked(config, "learn")
     build_id = _build_id(config, "learn")
     if build_id is not None:
-        with store.warehouse(config.warehouse_path, read_only=True) as con:
+        with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
             model = _load_behavior(con, "behavior", config)
     else:
         steps = _steps(config)
         model = fit_behavior(steps, config)
         other = other_choice(config)
-        with store.warehouse(config.warehouse_path, read_only=True) as con:
+        with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
             other_steps = load_steps(con, "step_alternate")
         other_model = model.clone().fit(other_steps)
-        with store.warehouse(config.warehouse_path) as con, store.transaction(con):
+        with store.warehouse(config.warehouse_path, settings=config.duckdb) as con, store.transaction(con):
             _store_behavior(con, model, "behavior")
             _store_behavior(con, other_model, f"behavior_{other.decision_points}")
             lineage.record(con, "learn", config.stage_settings("learn"), _upstream("learn"), run.run_id)
@@ -300,7 +300,7 @@ EVALUATION_TABLES: tuple[str, ...] = ("horizon", "state_value", "savings", "poli
 
 def _build_id(config: Config, stage: str) -> str | None:
     """The current build's id of ``stage`` if this run would build it the same, else None."""
-    with store.warehouse(config.warehouse_path) as con:
+    with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
         build_id = lineage.build_id_for(con, stage, config.stage_settings(stage), _upstream(stage))
         return build_id if lineage.reusable(con, stage, build_id) else None
 
@@ -309,7 +309,7 @@ def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
     """Every frame the evaluate stage publishes, computed from the warehouse's steps and behaviour model."""
     steps = _steps(config)
     other = other_choice(config)
-    with store.warehouse(config.warehouse_path, read_only=True) as con:
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
         behavior = _load_behavior(con, "behavior", config)
         fitted = {
             config.decision_points: behavior,
@@ -342,14 +342,14 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     _checked(config, "evaluate")
     build_id = _build_id(config, "evaluate")
     if build_id is not None:
-        with store.warehouse(config.warehouse_path, read_only=True) as con:
+        with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
             frames = {
                 name: store.frame(con, f"select * from {store.quote_identifier(f'evaluation_{name}')}")
                 for name in EVALUATION_TABLES
             }
     else:
         frames = _evaluation_tables(config)
-        with store.warehouse(config.warehouse_path) as con, store.transaction(con):
+        with store.warehouse(config.warehouse_path, settings=config.duckdb) as con, store.transaction(con):
             for name in EVALUATION_TABLES:
                 store.replace_table(con, f"evaluation_{name}", frames[name])
             lineage.record(
@@ -368,7 +368,7 @@ def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
     for result in results.values():
         row_counts |= dict(result.tables)
     row_counts |= run.write("stage_work", stage_work_frame([result.work for result in results.values()]))
-    with store.warehouse(config.warehouse_path, read_only=True) as con:
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
         return str(run.finish(row_counts, con))
 
 

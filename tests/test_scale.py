@@ -12,6 +12,7 @@ the work (``run_id``, ``run_date``, ``seconds``) and the run record are left out
 
 from __future__ import annotations
 
+import contextlib
 import shutil
 from pathlib import Path
 
@@ -137,3 +138,22 @@ def test_a_rerun_reuses_every_shard_and_a_new_file_recomputes_only_its_shards(tm
     work = _work(config, grown.run_id)
     assert work.filter(pl.col("status") == "computed")["shard_id"].to_list() == [0]
     assert work.filter(pl.col("status") == "reused")["shard_id"].to_list() == [1, 2, 3, 4, 5]
+
+
+def test_every_stage_opens_the_warehouse_with_the_configured_duckdb_settings(tmp_path, monkeypatch):
+    """duckdb_threads reaches every connection a run opens (shards included), read back from DuckDB."""
+    from pipeline import store
+
+    opened = store.warehouse
+    seen: list[int] = []
+
+    @contextlib.contextmanager
+    def recording(*args, **kwargs):
+        with opened(*args, **kwargs) as con:
+            seen.append(int(store.execute(con, "select current_setting('threads')")[0][0]))
+            yield con
+
+    monkeypatch.setattr(store, "warehouse", recording)
+    config = config_module.load(overrides={**SETTINGS, "out": str(tmp_path), "duckdb_threads": 1})
+    stages.run_all(config)
+    assert len(seen) > 10 and set(seen) == {1}
