@@ -20,6 +20,7 @@ import polars as pl
 
 from pipeline import estimators
 from pipeline.bench import reference_per_decision_is, reference_weighted_is
+from pipeline.cli import _keep_freed_memory
 
 
 def synthetic_steps(n_episodes: int, groups: int, seed: int) -> pl.DataFrame:
@@ -63,6 +64,7 @@ def main() -> None:
     parser.add_argument("--repeat", type=int, default=7)
     parser.add_argument("--seed", type=int, default=11)
     args = parser.parse_args()
+    _keep_freed_memory()  # as the thermal-ledger command does before any work
     steps = synthetic_steps(args.episodes, args.groups, args.seed)
     episode, t, reward, pi, b = (steps[c].to_numpy() for c in ("episode_id", "t", "reward", "pi", "b"))
     loops = {

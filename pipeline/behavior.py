@@ -1048,9 +1048,26 @@ def _model_class(kind: str) -> type[BehaviorModel]:
         ) from None
 
 
+def tuning_steps(steps: pl.DataFrame, config) -> pl.DataFrame:
+    """The steps 'auto' settings are chosen on: all of them, or those of ``behavior_tuning_premises``
+    premises drawn with the seed when there are more.
+
+    Choosing among a few numbers of types and strengths needs far fewer premises than a
+    large portfolio has, and every candidate costs five fits (one per fold); the chosen
+    model is then fitted on every premise.
+    """
+    premises = steps["premise_id"].unique().sort()
+    limit = config.behavior_tuning_premises
+    if premises.len() <= limit:
+        return steps
+    chosen = np.sort(np.random.default_rng(config.seed).choice(premises.len(), limit, replace=False))
+    return steps.filter(pl.col("premise_id").is_in(premises.gather(chosen).implode()))
+
+
 def fit_behavior(steps: pl.DataFrame, config) -> BehaviorModel:
-    """Fit the model ``config.behavior_model`` names; 'auto' settings take the best held-out likelihood."""
-    return _model_class(config.behavior_model).tuned(steps, config).fit(steps)
+    """Fit the model ``config.behavior_model`` names on every step; 'auto' settings take the best
+    held-out likelihood on ``tuning_steps``."""
+    return _model_class(config.behavior_model).tuned(tuning_steps(steps, config), config).fit(steps)
 
 
 def load_behavior(

@@ -255,6 +255,8 @@ class Config:
         0.01, stages=("learn",), unit="probability"
     )
     """Smallest behaviour probability assigned to any allowed action (below 1 / number of actions)."""
+    behavior_tuning_premises: Count = _setting(1000, stages=("learn",), unit="premises")
+    """Premises (drawn with the seed) whose episodes choose the 'auto' behaviour settings; all are fitted."""
     target_epsilon: Annotated[float, Strict(), Field(ge=0, le=1)] = _setting(
         0.05, stages=("evaluate",), unit="probability"
     )

@@ -427,3 +427,24 @@ def test_auto_settings_take_the_best_held_out_score_of_each_grid_in_turn():
     strength = float(best({str(k): model(n_types, k) for k in STRENGTHS_FOR_TYPES}))
     tuned = HabitTypes.tuned(steps, config)
     assert (tuned.n_types, tuned.prior_strength) == (n_types, strength)
+
+
+def test_auto_settings_are_chosen_on_the_drawn_premises_and_the_model_fitted_on_all():
+    """With more premises than behavior_tuning_premises, 'auto' is scored on that many premises drawn
+    with the seed (the same choice as tuning on exactly their steps), and every premise is fitted."""
+    from dataclasses import replace
+
+    from pipeline.behavior import fit_behavior, tuning_steps
+    from pipeline.config import Config
+
+    steps = _two_modes()
+    config = Config(actions=(-1, 0, 1), behavior_types="auto", behavior_prior_strength=5.0, seed=3)
+    assert tuning_steps(steps, config).equals(steps)  # three premises, limit 1,000: all of them
+    small = replace(config, behavior_tuning_premises=2)
+    drawn = tuning_steps(steps, small)
+    assert drawn["premise_id"].n_unique() == 2 and drawn.equals(tuning_steps(steps, small))
+    assert set(drawn["premise_id"]) <= set(steps["premise_id"])
+    assert drawn.equals(steps.filter(pl.col("premise_id").is_in(drawn["premise_id"].unique().implode())))
+    fitted = fit_behavior(steps, small)
+    assert fitted.n_types == HabitTypes.tuned(drawn, small).n_types
+    assert set(fitted.membership()["premise_id"]) == {"A", "B", "C"}
