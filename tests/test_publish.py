@@ -147,3 +147,29 @@ def test_every_stage_command_takes_the_lock(stage, tmp_path, capsys):
     finally:
         holder.kill()
         holder.wait()
+
+
+def test_an_analyst_reading_in_a_loop_while_a_run_writes_never_sees_part_of_a_run(sample_lake_run, tmp_path):
+    out = tmp_path / "out"
+    shutil.copytree(sample_lake_run.config.out, out)
+    args = ["--lake", str(sample_lake_run.config.lake), "--out", str(out)]
+    args += ["--set", 'presence_sources=["occupancy_flag"]', "--set", "seed=11"]
+    con = store.connect_ledger(out / "ledger")
+    query = """
+        select r.run_id,
+            (select count(*) from savings s where s.run_id = r.run_id),
+            (select count(*) from policy p where p.run_id = r.run_id),
+            (select count(*) from stage_work w where w.run_id = r.run_id)
+        from run r order by all
+    """
+    seen: list[list[tuple]] = []
+    writer = subprocess.Popen(_cli("run", "--no-prefect", *args), cwd=ROOT, stdout=subprocess.DEVNULL)
+    while writer.poll() is None:
+        seen.append(con.execute(query).fetchall())
+    assert writer.returncode == 0
+    final = {row[0]: row for row in store.connect_ledger(out / "ledger").execute(query).fetchall()}
+    assert len(final) == len(seen[0]) + 1, "the writer published one new run"
+    # Every observation holds whole runs only: each run it shows has all of its final rows.
+    for rows in seen:
+        assert all(row == final[row[0]] for row in rows)
+    assert len(seen) > 5
