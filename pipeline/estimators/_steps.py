@@ -273,15 +273,6 @@ def _discounted(values: np.ndarray, s: _Steps) -> np.ndarray:
     return values if s.gamma == 1.0 else s.discount * values
 
 
-def _keyed_sums(key: np.ndarray, values: np.ndarray, n_keys: int) -> np.ndarray:
-    """Sums of ``values`` (B, m) by ``key`` (m,), shape (B, n_keys); ``key`` must be non-decreasing."""
-    out = np.zeros((values.shape[0], n_keys))
-    if key.size:
-        first = np.flatnonzero(np.concatenate(([True], key[1:] != key[:-1])))
-        out[:, key[first]] = np.add.reduceat(values, first, axis=1)
-    return out
-
-
 def _products_stay_normal(s: _Steps, ranges: tuple[float, ...]) -> bool:
     """Whether no running product of pi / b can leave the normal float64 range, from the ranges alone.
 
