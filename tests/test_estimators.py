@@ -767,6 +767,28 @@ def test_poisson_multiplicities_follow_poisson_one_and_depend_only_on_the_episod
     assert not np.array_equal(est.poisson_multiplicity(ids, 50, seed=10), draws[:50])
 
 
+def test_poisson_multiplicities_are_the_inverse_distribution_function_of_each_episodes_stream():
+    """Each draw is the smallest k with P(K <= k) above the uniform (bits >> 11) * 2**-53, bits the
+    SplitMix64 stream (Steele, Lea and Flood 2014) seeded by the episode's output of the run's stream;
+    the Poisson(1) distribution function summed from e^-1 / k! with Python floats, so the fast lookup
+    by top bits must agree with a plain inverse-CDF draw on every uniform."""
+    from math import exp, factorial
+
+    ids = np.array([1, 2, 5, 17, 40, 99])
+    n_replicates = 1_500
+    draws = est.poisson_multiplicity(ids, n_replicates, seed=3)
+    key = est.bootstrap.seed_key(3)
+    cdf, total = [], 0.0
+    for k in range(20):
+        total += exp(-1.0) / factorial(k)
+        cdf.append(total)
+    for column, episode in enumerate(ids):
+        episode_seed = int(est.bootstrap.splitmix64(key, int(episode))[-1])
+        bits = est.bootstrap.splitmix64(episode_seed, n_replicates).tolist()
+        expected = [next(k for k, c in enumerate(cdf) if (b >> 11) * 2.0**-53 < c) for b in bits]
+        assert draws[:, column].tolist() == expected, episode
+
+
 def test_nan_quantiles_equal_numpy_nanquantile():
     """The vectorised quantiles equal numpy.nanquantile (linear method) bit for bit, NaNs included."""
     rng = np.random.default_rng(4)
