@@ -21,15 +21,23 @@ import numpy as np
 import polars as pl
 
 from pipeline.estimators._steps import (
+    _PROB_COLUMNS,
     _STEP_COLUMNS,
     EstimatorInputError,
+    _by_decision,
+    _checked_probabilities,
+    _cumulative_weights,
     _discounted,
     _episode_sum,
     _group_counts,
     _group_sums,
     _prepare,
     _previous_weights,
+    _products_stay_normal,
+    _ratios_by_decision,
     _returns,
+    _row_cumprod,
+    _row_sums,
     _Steps,
     _weight_summary,
     _weighted_episodes,
@@ -88,8 +96,17 @@ def _weighted_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Term
 
 
 def _per_decision_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
-    s, w = _weighted_steps(steps, gamma)
-    # Same expression as the doubly robust term with a zero model, so the two agree bit for bit.
+    s = _prepare(steps, _STEP_COLUMNS + _PROB_COLUMNS, gamma)
+    pi, b, ranges = _checked_probabilities(steps)
+    # The products and sums of the doubly robust term with a zero model, in the same order, so
+    # the two agree bit for bit whichever layout each uses.
+    if s.by_decision is not None and _products_stay_normal(s, ranges):
+        w = _row_cumprod(_ratios_by_decision(pi, b, s))
+        step_terms = w * _by_decision(s.reward, s, 0.0)
+        if gamma != 1.0:
+            step_terms *= np.power(gamma, np.arange(w.shape[0], dtype=np.float64))[:, None]
+        return s, _scalar_terms(_row_sums(step_terms), np.ones(s.n_episodes), w[-1])
+    w = _cumulative_weights(pi, b, s, ranges)
     per_episode = _episode_sum(_discounted(w * s.reward, s), s)
     return s, _scalar_terms(per_episode, np.ones(s.n_episodes), w[s.ends])
 
@@ -228,14 +245,15 @@ def _evaluate(terms: _Terms, s: _Steps) -> np.ndarray:
 
 def _estimate_frame(s: _Steps, terms: _Terms) -> pl.DataFrame:
     _, ess, share = _weight_summary(terms.weights, s.group, s.n_groups)
+    # From named series: a dict of arrays costs polars more per call.
     return pl.DataFrame(
-        {
-            "group": s.labels,
-            "estimate": _evaluate(terms, s)[0],
-            "n_episodes": _group_counts(s.group, s.n_groups),
-            "ess": ess,
-            "max_weight_share": share,
-        }
+        [
+            s.labels,
+            pl.Series("estimate", _evaluate(terms, s)[0]),
+            pl.Series("n_episodes", _group_counts(s.group, s.n_groups)),
+            pl.Series("ess", ess),
+            pl.Series("max_weight_share", share),
+        ]
     )
 
 
