@@ -82,6 +82,7 @@ def build_parser() -> argparse.ArgumentParser:
         "episodes": "build the hourly grid, away episodes and decision steps",
         "learn": "estimate the residents' behaviour policy from the logged steps",
         "evaluate": "estimate each candidate policy's value and savings off-policy",
+        "improve": "learn setpoint policies per scope and test them on later, held-out episodes",
         "run": "all stages in order as one Prefect flow, then print a summary",
     }
     sim = sub.add_parser(
@@ -343,6 +344,31 @@ def print_evaluation(
     )
 
 
+def print_improvement(result: stages.ImprovementSummary, console: Console | None = None) -> None:
+    """The safety test's outcome of every scope that had enough evidence, and a count of the rest."""
+    console = console or _console()
+    tested = result.safety_test.filter(pl.col("learner").is_not_null())
+    rows = tested.select(
+        "mode",
+        "scope",
+        "key",
+        "learner",
+        "n_held_out_episodes",
+        pl.col("savings_estimate_usd").round(3),
+        pl.col("lower_bound_usd").round(3),
+        "outcome",
+        "reason",
+    ).rows()
+    console.print(
+        _table(
+            "learned policies: safety test on held-out episodes (USD per episode)",
+            ("mode", "scope", "key", "learner", "held-out", "savings", "lower bound", "outcome", "why"),
+            rows,
+        )
+    )
+    console.print(result.describe(), markup=False)
+
+
 def print_summary(
     summary: stages.RunSummary, confidence: float = 0.95, console: Console | None = None
 ) -> None:
@@ -352,6 +378,8 @@ def print_summary(
     print_episodes(summary.episodes, console)
     console.print(summary.behavior.describe(), markup=False)
     print_evaluation(summary.evaluation, confidence, console)
+    if summary.improvement is not None:
+        print_improvement(summary.improvement, console)
     console.print(
         "Estimates only: local codes, program rules and licensed practice govern what is sent to a device."
     )
@@ -446,6 +474,8 @@ def _run_stage(args: argparse.Namespace) -> int:
         _console().print(f"{result.describe()}; behaviour policy rows: {result.rows:,}", markup=False)
     elif args.stage == "evaluate":
         print_evaluation(result, config.confidence)
+    elif args.stage == "improve":
+        print_improvement(result)
     stages.finish(config, run, {args.stage: result})
     return EXIT_OK
 

@@ -41,11 +41,14 @@ class Run:
         """Partition date of this run's ledger files."""
         return self.started_at.date()
 
-    def write(self, table: str, frame: pl.DataFrame) -> dict[str, int]:
-        """Write one ledger table stamped with this run's id; return ``{table: rows}``."""
+    def write(self, table: str, frame: pl.DataFrame, part: str = "") -> dict[str, int]:
+        """Write one ledger table stamped with this run's id; return ``{table: rows}`` (``{table-part: rows}``).
+
+        ``part`` writes a second file of the table for this run (see ``store.write_ledger``).
+        """
         stamped = frame.select(pl.lit(self.run_id).alias("run_id"), pl.all())
-        store.write_ledger(self.config.ledger_path, table, stamped, self.run_id, self.run_date)
-        return {table: stamped.height}
+        store.write_ledger(self.config.ledger_path, table, stamped, self.run_id, self.run_date, part)
+        return {f"{table}-{part}" if part else table: stamped.height}
 
     def finish(self, row_counts: dict[str, int], con: duckdb.DuckDBPyConnection | None = None) -> Path:
         """Write the ``run`` table: configuration, code version, data watermark and row counts."""
