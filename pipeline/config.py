@@ -323,17 +323,17 @@ class Config:
     improve_learner: Annotated[Name, AfterValidator(_OneOf(("auto", "mc_control", "fitted_q_iteration")))] = (
         _setting("auto", stages=("improve",))
     )
-    """Learner of setpoint policies; 'auto' picks by the safety bound on the last third of the learning part."""
+    """Learner of setpoint policies; 'auto' picks by the bound on the learning part's last third."""
     improve_holdout_share: Annotated[float, Strict(), Field(gt=0, lt=1)] = _setting(
         0.4, stages=("improve",), unit="share"
     )
     """Share of each mode's latest episodes held out for the safety test (the learners never see them)."""
     improve_min_count: Annotated[int, Strict(), Field(ge=0)] = _setting(10, stages=("improve",), unit="steps")
-    """Baseline bootstrapping: a (state, action) logged fewer times in the scope keeps the home's own habit."""
+    """Baseline bootstrapping: a pair logged fewer times in the scope keeps the home's own habit."""
     improve_epsilon: Annotated[float, Strict(), Field(ge=0, le=1)] = _setting(
         0.0, stages=("improve",), unit="probability"
     )
-    """Share of the moved probability spread over the other well-sampled allowed actions the residents take."""
+    """Share of the moved probability spread over well-sampled allowed actions the residents take."""
     improve_min_episodes: Count = _setting(200, stages=("improve",), unit="episodes")
     """Fewest learning and held-out episodes a scope needs for a policy to be learned and tested."""
     improve_scopes: Annotated[

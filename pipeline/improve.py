@@ -288,8 +288,9 @@ def _prepare_mode(
     start = episodes["start"].to_numpy()
     rank = _episode_rank(start)
     n_learn = int(round((1.0 - config.improve_holdout_share) * n_ep))
-    held = rank >= n_learn
+    # Held out: every episode starting at or after the start of the (n_learn + 1)-th, ties included.
     cut = episodes["start"].sort()[min(n_learn, n_ep - 1)]
+    held = (episodes["start"] >= cut).to_numpy()
     feats = episodes.join(exogenous, on="episode_id", how="left", maintain_order="left")
     x = np.c_[
         feats["price_hours"].fill_null(0.0).to_numpy(), feats["price_degree_hours"].fill_null(0.0).to_numpy()
@@ -337,7 +338,8 @@ def _prepare_mode(
 
 def _rho(m: _Mode, pi: np.ndarray, rows: np.ndarray, n_ep: int) -> np.ndarray:
     """Per episode importance ratio over the steps ``rows`` (all steps of the episodes concerned)."""
-    log_ratio = np.log(pi[rows]) - np.log(m.b[rows])
+    with np.errstate(divide="ignore"):  # a logged action the policy forbids: ratio 0
+        log_ratio = np.log(pi[rows]) - np.log(m.b[rows])
     return np.exp(np.bincount(m.code[rows], log_ratio, n_ep))
 
 
@@ -365,7 +367,7 @@ def _policy_name(scope: str, key: str) -> str:
 
 
 def _choose_learner(m: _Mode, rows: np.ndarray, config: Config) -> str:
-    """'auto': each learner on the earliest two thirds of the learning rows, scored by the bound on the rest."""
+    """'auto': each learner on the learning rows' earliest two thirds, scored by the bound on the rest."""
     if config.improve_learner != "auto":
         return config.improve_learner
     episodes = np.unique(m.code[rows])
@@ -516,7 +518,8 @@ def improve_mode(
                     row
                     | {
                         "outcome": NOT_FOUND,
-                        "reason": f"too little evidence: {learn_eps.size} learning and {held_eps.size} held-out"
+                        "reason": f"too little evidence: {learn_eps.size} learning and"
+                        f" {held_eps.size} held-out"
                         f" episodes, fewer than improve_min_episodes ({config.improve_min_episodes})",
                     }
                 )

@@ -42,7 +42,7 @@ class Run:
         return self.started_at.date()
 
     def write(self, table: str, frame: pl.DataFrame, part: str = "") -> dict[str, int]:
-        """Write one ledger table stamped with this run's id; return ``{table: rows}`` (``{table-part: rows}``).
+        """Write one ledger table stamped with this run's id; return ``{table: rows}``.
 
         ``part`` writes a second file of the table for this run (see ``store.write_ledger``).
         """

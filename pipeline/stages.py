@@ -385,7 +385,8 @@ class ImprovementSummary:
         tested = self.safety_test.filter(pl.col("learner").is_not_null())
         proposed = tested.filter(pl.col("outcome") == improvement.PROPOSED)
         return (
-            f"learned policies: {tested.height} scopes tested on held-out episodes, {proposed.height} proposed;"
+            f"learned policies: {tested.height} scopes tested on held-out episodes,"
+            f" {proposed.height} proposed;"
             f" {self.safety_test.height - tested.height} with too little evidence"
         )
 

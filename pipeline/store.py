@@ -192,6 +192,8 @@ def connect_ledger(ledger: Path, settings: DuckDBSettings | None = None) -> duck
     apply_settings(con, settings or DuckDBSettings())
     execute(con, "set variable ledger_root = $root", {"root": str(Path(ledger).resolve())})
     run_sql(con, "views")
+    if (Path(ledger) / "policy_truth").is_dir():
+        run_sql(con, "views_truth")
     return con
 
 

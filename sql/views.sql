@@ -65,4 +65,28 @@ create or replace view savings_by_premise as
         round(shrunk_savings_kwh_annual, 1) as shrunk_savings_kwh_annual
     from savings_latest
     where scope = 'premise' and recommended
-    order by premise_id, policy_name, mode
+    order by premise_id, policy_name, mode;
+-- ---- learned policies and their safety test (the improve stage) ----
+create or replace view safety_test as
+    select * from read_parquet(getvariable('ledger_root') || '/safety_test/*/*.parquet', hive_partitioning = true, union_by_name = true);
+-- Per mode and scope of the latest run: was a learned policy proposed, and why (not).
+create or replace view safety_test_latest as
+    select
+        policy_name,
+        mode,
+        scope,
+        key,
+        outcome,
+        reason,
+        learner,
+        bound_method,
+        n_held_out_episodes,
+        round(savings_estimate_usd, 3) as savings_estimate_usd,
+        round(lower_bound_usd, 3) as lower_bound_usd,
+        round(comfort_change_usd, 3) as comfort_change_usd
+    from safety_test semi join latest_run using (run_id)
+    order by mode, scope, key;
+-- The learned policies a recommendation may send: the latest run's policy rows with proposed = true.
+create or replace view proposed_policy as
+    select p.* from policy p semi join latest_run using (run_id)
+    where p.proposed;
