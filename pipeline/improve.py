@@ -175,6 +175,7 @@ def improvement_bound(
     level: float,
     method: str,
     residual_range: tuple[float, float],
+    paired: np.ndarray | None = None,
     pre_share: float = PRE_SHARE,
 ) -> dict[str, float]:
     """One-sided lower bound on v_pi - v_b (USD per episode) from held-out episodes of one scope.
@@ -190,17 +191,19 @@ def improvement_bound(
       any distribution as long as every residual lies in the range (an episode outside it
       voids the bound: NaN, counted in ``outside``).
     * ``student_t``: the approximate bound of Thomas, Theocharous and Ghavamzadeh (ICML
-      2015, "High confidence policy improvement", their Student's t form) on
-      Y = (rho - 1) residual: mean(Y) - t_{level, n-1} sd(Y) / sqrt(n). It assumes the
-      mean of Y is close to normal, which heavy-tailed weights can break.
+      2015, "High confidence policy improvement", their Student's t form) on per-episode
+      unbiased improvement terms Y (``paired``; default (rho - 1) residual):
+      mean(Y) - t_{level, n-1} sd(Y) / sqrt(n). It assumes the mean of Y is close to
+      normal, which heavy-tailed weights can break. The stage passes the doubly robust
+      terms of ``doubly_robust_terms``.
 
-    Returns bound, estimate (mean of (rho - 1) residual on D_post), n_bound, outside.
+    Returns bound, estimate (mean of the method's terms on D_post), n_bound, outside.
     """
     rho, residual, rank = (np.asarray(a) for a in (rho, residual, rank))
     n = rho.size
     n_pre = int(np.ceil(pre_share * n))
     post = rank >= n_pre
-    y = (rho - 1.0) * residual
+    y = (rho - 1.0) * residual if (paired is None or method == "exact") else np.asarray(paired, dtype=float)
     estimate = float(y[post].mean()) if post.any() else float("nan")
     low, high = residual_range
     outside = int(((residual < low) | (residual > high)).sum())
@@ -220,6 +223,43 @@ def improvement_bound(
     else:
         raise ValueError(f"unknown safety bound {method!r}; one of {SAFETY_BOUNDS}")
     return {"bound": bound, "estimate": estimate, "n_bound": n - n_pre, "outside": outside}
+
+
+def doubly_robust_terms(
+    code: np.ndarray,
+    n_episodes: int,
+    reward: np.ndarray,
+    ratio: np.ndarray,
+    q_logged: np.ndarray,
+    v_state: np.ndarray,
+) -> np.ndarray:
+    """Per-episode doubly robust estimate of v_pi minus the episode's own return, (n_episodes,).
+
+    Jiang and Li (2016), the step-wise form: with w_t = prod_{k <= t} pi(a_k|s_k) /
+    b(a_k|s_k) (w_{-1} = 1) and a model Q fixed in advance (V(s) = sum_a pi(a|s) Q(s, a)),
+
+        DR_i = sum_t [ w_t r_t - (w_t Q(s_t, a_t) - w_{t-1} V(s_t)) ],
+
+    unbiased for v_pi whatever Q is when b is the logging policy; DR_i - G_i is then an
+    unbiased term of v_pi - v_b per episode, whose spread shrinks as Q nears the truth.
+    ``code`` (n_steps,) are episode codes 0 .. n_episodes - 1, sorted, steps in time order;
+    ``ratio`` pi/b of each logged action (0 where pi forbids it).
+    """
+    code = np.asarray(code)
+    ratio = np.asarray(ratio, dtype=float)
+    zero = ratio <= 0.0
+    log_r = np.log(np.where(zero, 1.0, ratio))
+    first = np.r_[True, code[1:] != code[:-1]]
+    starts = np.flatnonzero(first)
+    cs = np.cumsum(log_r)
+    log_w = np.minimum(cs - (cs - log_r)[starts][np.cumsum(first) - 1], 700.0)
+    zeros = np.cumsum(zero)
+    dead = zeros - (zeros - zero)[starts][np.cumsum(first) - 1] > 0
+    w = np.where(dead, 0.0, np.exp(log_w))
+    w_prev = np.r_[1.0, w[:-1]]
+    w_prev[first] = 1.0
+    term = w * reward - w * q_logged + w_prev * v_state
+    return np.bincount(code, term, n_episodes) - np.bincount(code, reward, n_episodes)
 
 
 def _episode_rank(start: np.ndarray) -> np.ndarray:
@@ -263,6 +303,10 @@ class _Mode:
     penalty: np.ndarray
     """Per episode: comfort penalty, USD."""
     cut: object
+    to_go: np.ndarray
+    """Per step: the logged return from the step to the episode's end, less the exogenous prediction."""
+    rw_cv: np.ndarray
+    """Per step: the reward, less the episode's exogenous prediction at its last step."""
 
 
 def _prepare_mode(
@@ -297,6 +341,12 @@ def _prepare_mode(
     ]
     premise_code = np.unique(episodes["premise_id"].to_numpy(), return_inverse=True)[1].reshape(-1)
     fitted = control_variate(premise_code, x, returns, ~held)
+    # Rewards with the exogenous prediction taken off each episode's last step: what the learners
+    # and the test's model see (the same action values up to terms no action moves).
+    last = np.r_[first[1:], True]
+    rw_cv = rw - np.where(last, fitted[code], 0.0)
+    before = np.cumsum(rw_cv) - rw_cv
+    to_go = (returns - fitted)[code] - (before - before[np.flatnonzero(first)][code])
     # Allowed actions per premise, then per step.
     own = premises.filter(pl.col("premise_id").is_in(steps["premise_id"].unique().implode())).sort(
         "premise_id"
@@ -333,6 +383,8 @@ def _prepare_mode(
         returns - fitted,
         penalty,
         cut,
+        to_go,
+        rw_cv,
     )
 
 
@@ -355,7 +407,7 @@ def _scope_keys(m: _Mode, membership: pl.DataFrame, mode: str) -> dict[str, np.n
     )
     typed = m.steps.select("premise_id").join(top_type, on="premise_id", how="left", maintain_order="left")
     return {
-        "portfolio": np.full(m.st.size, "all", dtype=object),
+        "portfolio": np.full(m.st.size, "portfolio", dtype=object),
         "habit_type": typed["_type"].to_numpy().astype(object),
         "cohort": m.steps["cohort"].cast(pl.Utf8).to_numpy().astype(object),
         "premise": m.steps["premise_id"].to_numpy().astype(object),
@@ -377,7 +429,6 @@ def _choose_learner(m: _Mode, rows: np.ndarray, config: Config) -> str:
     fit_rows, check_rows = rows[train], rows[~train]
     if check_rows.size == 0 or fit_rows.size == 0:
         return LEARNERS[0]
-    n_ep = m.returns.size
     check_eps = np.unique(m.code[check_rows])
     scores = {}
     for learner in LEARNERS:
@@ -386,30 +437,61 @@ def _choose_learner(m: _Mode, rows: np.ndarray, config: Config) -> str:
             m.ep[fit_rows],
             m.st[fit_rows],
             m.ac[fit_rows],
-            m.rw[fit_rows],
+            m.rw_cv[fit_rows],
             m.b[fit_rows],
             config.state.n_states,
             len(config.actions),
         )
-        pi = _pi_rows(m, learned, check_rows, config)
-        full = np.zeros(m.st.size)
-        full[check_rows] = pi
-        rho = _rho(m, full, check_rows, n_ep)[check_eps]
+        _, rho, terms = _test_terms(m, learned, check_rows, fit_rows, config)
         result = improvement_bound(
-            rho,
+            rho[check_eps],
             m.residual[check_eps],
             _episode_rank(m.rank[check_eps]),
             level=config.confidence,
             method="student_t",
             residual_range=(-np.inf, np.inf),
+            paired=terms[check_eps],
         )
         scores[learner] = result["bound"] if np.isfinite(result["bound"]) else -np.inf
     return max(LEARNERS, key=lambda name: (scores[name], name == LEARNERS[0]))
 
 
+def _test_terms(
+    m: _Mode, learned: control.LearnedQ, rows: np.ndarray, fit_rows: np.ndarray, config: Config
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The policy's probability of each logged action (all steps; 1 outside ``rows``), and per episode
+    its importance ratio and doubly robust improvement term.
+
+    The doubly robust model is the learner's own Q from ``fit_rows``; pairs it has no value
+    for take the state's mean logged return-to-go there, else the mean over ``fit_rows``.
+    """
+    n_states = learned.q.shape[0]
+    to_go = m.to_go[fit_rows]
+    count = np.bincount(m.st[fit_rows], minlength=n_states)
+    state_mean = np.where(
+        count > 0, np.bincount(m.st[fit_rows], to_go, n_states) / np.maximum(count, 1), to_go.mean()
+    )
+    q_hat = np.where(np.isfinite(learned.q), learned.q, state_mean[:, None])
+    table = _pi_rows(m, learned, rows, config)
+    pi = np.ones(m.st.size)
+    pi[rows] = table[np.arange(rows.size), m.ac[rows]]
+    n_ep = m.returns.size
+    rho = _rho(m, pi, rows, n_ep)
+    q_rows = q_hat[m.st[rows]]
+    terms = doubly_robust_terms(
+        m.code[rows],
+        n_ep,
+        m.rw_cv[rows],
+        pi[rows] / m.b[rows],
+        q_rows[np.arange(rows.size), m.ac[rows]],
+        (table * q_rows).sum(axis=1),
+    )
+    return pi, rho, terms
+
+
 def _pi_rows(m: _Mode, learned: control.LearnedQ, rows: np.ndarray, config: Config) -> np.ndarray:
-    """The learned policy's probability of the logged action at ``rows``, each home keeping its own habit."""
-    table = premise_policy(
+    """The learned policy's probabilities at ``rows`` (n_rows, A), each home keeping its own habit."""
+    return premise_policy(
         learned.q[m.st[rows]],
         learned.visits[m.st[rows]],
         m.bvec[rows],
@@ -417,7 +499,6 @@ def _pi_rows(m: _Mode, learned: control.LearnedQ, rows: np.ndarray, config: Conf
         config.improve_min_count,
         config.improve_epsilon,
     )
-    return table[np.arange(rows.size), m.ac[rows]]
 
 
 def _scope_table(m: _Mode, learned: control.LearnedQ, rows: np.ndarray, config: Config) -> pl.DataFrame:
@@ -475,7 +556,6 @@ def improve_mode(
     """Learn, test and describe the policies of one mode's steps (sorted by episode_id, t)."""
     m = _prepare_mode(steps, behavior, exogenous, premises, config, mode)
     keys = _scope_keys(m, behavior.membership(), mode)
-    n_ep = m.returns.size
     n_states, n_actions = config.state.n_states, len(config.actions)
     held_step = m.held[m.code]
     # Residual range for the exact bound, stated from the learning part: half as wide again each side.
@@ -531,14 +611,12 @@ def improve_mode(
                 m.ep[learn_rows],
                 m.st[learn_rows],
                 m.ac[learn_rows],
-                m.rw[learn_rows],
+                m.rw_cv[learn_rows],
                 m.b[learn_rows],
                 n_states,
                 n_actions,
             )
-            pi = np.ones(m.st.size)
-            pi[rows] = _pi_rows(m, learned, rows, config)
-            rho = _rho(m, pi, rows, n_ep)
+            pi, rho, terms = _test_terms(m, learned, rows, learn_rows, config)
             held_rows = rows[held_step[rows]]
             result = improvement_bound(
                 rho[held_eps],
@@ -547,6 +625,7 @@ def improve_mode(
                 level=config.confidence,
                 method=config.safety_bound,
                 residual_range=(low, high),
+                paired=terms[held_eps],
             )
             comfort = float(np.mean((rho[held_eps] - 1.0) * m.penalty[held_eps]))
             bound = result["bound"]

@@ -306,7 +306,20 @@ def read_run(ledger_path: Path, run_id: str | None = None) -> tuple[str, date, d
         raise TruthError(f"no ledger at {ledger_path}: run `thermal-ledger run` on the lake first")
     con = store.connect_ledger(Path(ledger_path))
     try:
-        runs = store.frame(con, "select run_id, run_date from run order by finished_at desc")
+        # Whole runs only: the latest whose savings, safety test and episodes are all in the ledger.
+        runs = store.frame(
+            con,
+            "select run_id, run_date from run"
+            " where run_id in (select run_id from safety_test)"
+            " and run_id in (select run_id from episode_summary)"
+            " and run_id in (select run_id from savings)"
+            " order by finished_at desc",
+        )
+        if runs.is_empty():
+            raise TruthError(
+                f"no run in the ledger at {ledger_path} has savings, a safety test and episodes:"
+                " score a whole `thermal-ledger run`"
+            )
         if run_id is None:
             run_id = runs["run_id"][0]
         found = runs.filter(pl.col("run_id") == run_id)
@@ -331,7 +344,7 @@ def summary_line(truth: pl.DataFrame) -> str:
     if truth.is_empty():
         return "truth: no rows"
     supported = truth.filter(pl.col("covered").is_not_null())
-    covered = supported["covered"].sum()
+    covered = int(supported["covered"].sum() or 0)
     bounds = truth.filter(pl.col("bound_held").is_not_null())
     tests = truth.filter(pl.col("estimator").str.starts_with("safety_test"))
     passed = tests.filter(pl.col("outcome") == improvement.PROPOSED)
@@ -344,7 +357,7 @@ def summary_line(truth: pl.DataFrame) -> str:
     parts = [
         f"truth: {supported.height} intervals covered the true savings in {covered}"
         f" ({covered / max(supported.height, 1):.0%})",
-        f"bounds held in {bounds['bound_held'].sum()} of {bounds.height}",
+        f"bounds held in {int(bounds['bound_held'].sum() or 0)} of {bounds.height}",
         f"safety test passed {passed.height} of {tests.height} scopes ({truly} truly better)",
     ]
     if learned.height:
