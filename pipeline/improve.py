@@ -130,6 +130,45 @@ def premise_policy(
     )
 
 
+def premise_tables(
+    policy_rows: pl.DataFrame,
+    premises: pl.DataFrame,
+    mode: str,
+    behavior: BehaviorModel,
+    config: Config,
+    min_count: int,
+    epsilon: float,
+) -> np.ndarray:
+    """Each premise's full table (n_premises, S, A) of a learned scope policy, from its ledger rows.
+
+    ``policy_rows`` are one policy's ``policy`` rows (q_value, visits per state and action);
+    ``premises`` (premise_id, cohort, comfort_cool_c, comfort_heat_c) in the order wanted.
+    The same rule as the stage's (``premise_policy``) over every state, so what the stage
+    evaluated is what a thermostat of that home would run.
+    """
+    space, actions = config.state, config.actions
+    n_states, n_actions = space.n_states, len(actions)
+    rows = policy_rows.sort("state_key", "action")
+    q = rows["q_value"].to_numpy().reshape(n_states, n_actions)
+    visits = rows["visits"].to_numpy().reshape(n_states, n_actions)
+    grid = premises.select("premise_id", "cohort").join(
+        pl.DataFrame({"state_key": np.arange(n_states, dtype=np.int64)}), how="cross"
+    )
+    bvec = behavior_vectors(grid.with_columns(pl.lit(mode).alias("mode")), behavior, actions)
+    mask = control.allowed_mask(
+        space,
+        actions,
+        heating=mode == "heat",
+        comfort_cool_c=premises["comfort_cool_c"].to_numpy(),
+        comfort_heat_c=premises["comfort_heat_c"].to_numpy(),
+        cool_band_c=config.cool_band_c,
+        heat_band_c=config.heat_band_c,
+    ).reshape(-1, n_actions)
+    n = premises.height
+    table = premise_policy(np.tile(q, (n, 1)), np.tile(visits, (n, 1)), bvec, mask, min_count, epsilon)
+    return table.reshape(n, n_states, n_actions)
+
+
 def control_variate(
     premise: np.ndarray,
     features: np.ndarray,
@@ -142,7 +181,8 @@ def control_variate(
     ``premise`` (n,) integer codes, ``features`` (n, k), ``returns`` (n,), ``learning`` (n,)
     bool. Each premise's coefficients are pulled toward the pooled ones by
     ``prior_episodes`` pseudo-episodes (ridge toward the pooled fit), so a home with few
-    learning episodes gets the pooled line. Returns the prediction for every episode.
+    learning episodes leans on the pooled line, and one with fewer learning episodes than
+    features takes it. Returns the prediction for every episode.
     """
     x, y = features[learning], returns[learning]
     n_premises = int(premise.max()) + 1 if premise.size else 0
@@ -156,7 +196,12 @@ def control_variate(
         for j in range(k):
             xx[:, i, j] = np.bincount(p, x[:, i] * x[:, j], n_premises)
     scale = prior_episodes * (x.T @ x) / max(x.shape[0], 1)
-    coef = np.linalg.solve(xx + scale[None], (xy + (scale @ pooled)[None])[..., None])[..., 0]
+    # Premises with fewer learning episodes than features take the pooled line (no system to solve).
+    few = np.bincount(p, minlength=n_premises) < k
+    xx[few], xy[few] = np.eye(k), pooled
+    lhs = xx + np.where(few[:, None, None], 0.0, scale[None])
+    rhs = xy + np.where(few[:, None], 0.0, (scale @ pooled)[None])
+    coef = np.linalg.solve(lhs, rhs[..., None])[..., 0]
     return np.einsum("nk,nk->n", features, coef[premise])
 
 

@@ -25,8 +25,8 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from pipeline import control, store
 from pipeline import improve as improvement
+from pipeline import store
 from pipeline.behavior import BehaviorModel
 from pipeline.config import Config
 from pipeline.simulate import SimParams, simulate_policy
@@ -121,40 +121,17 @@ def _learned_tables(
     config: Config,
 ) -> np.ndarray:
     """Per-home tables (n_homes, S, A) of one scope kind's policies; homes outside every scope get uniform."""
-    space, actions = config.state, config.actions
-    n_states, n_actions = space.n_states, len(actions)
+    n_states, n_actions = config.state.n_states, len(config.actions)
     out = np.full((homes.height, n_states, n_actions), 1.0 / n_actions)
     for test in tests.iter_rows(named=True):
-        rows = policy.filter(pl.col("policy_name") == test["policy_name"]).sort("state_key", "action")
-        q = rows["q_value"].to_numpy().reshape(n_states, n_actions)
-        visits = rows["visits"].to_numpy().reshape(n_states, n_actions)
-        members = test["premises"]
-        own = premises.filter(pl.col("premise_id").is_in(members)).sort("premise_id")
-        grid = own.select("premise_id", "cohort").join(
-            pl.DataFrame({"state_key": np.arange(n_states, dtype=np.int64)}), how="cross"
+        rows = policy.filter(pl.col("policy_name") == test["policy_name"])
+        own = premises.filter(pl.col("premise_id").is_in(test["premises"])).sort("premise_id")
+        table = improvement.premise_tables(
+            rows, own, test["mode"], behavior, config, int(test["min_count"]), float(test["epsilon"])
         )
-        bvec = improvement.behavior_vectors(
-            grid.with_columns(pl.lit(test["mode"]).alias("mode")), behavior, actions
-        )
-        mask = control.allowed_mask(
-            space,
-            actions,
-            heating=test["mode"] == "heat",
-            comfort_cool_c=own["comfort_cool_c"].to_numpy(),
-            comfort_heat_c=own["comfort_heat_c"].to_numpy(),
-            cool_band_c=config.cool_band_c,
-            heat_band_c=config.heat_band_c,
-        ).reshape(-1, n_actions)
-        n_own = own.height
-        table = improvement.premise_policy(
-            np.tile(q, (n_own, 1)),
-            np.tile(visits, (n_own, 1)),
-            bvec,
-            mask,
-            int(test["min_count"]),
-            float(test["epsilon"]),
-        ).reshape(n_own, n_states, n_actions)
-        at = homes.with_row_index("_i").join(own.select("premise_id"), on="premise_id", how="inner")["_i"]
+        at = own.select("premise_id").join(
+            homes.with_row_index("_i"), on="premise_id", how="left", maintain_order="left"
+        )["_i"]
         out[at.to_numpy()] = table
     return out
 
