@@ -22,7 +22,7 @@ from rich.table import Table
 
 from pipeline import config as config_module
 from pipeline import ingest as ingestion
-from pipeline import stages
+from pipeline import stages, store
 from pipeline.behavior import BehaviorInputError
 from pipeline.config import Config, ConfigError
 from pipeline.estimators import EstimatorInputError
@@ -30,7 +30,9 @@ from pipeline.ingest import IngestError
 from pipeline.ledger import OutputInUseError, Run, exclusive_output
 from pipeline.policies import PolicyError
 from pipeline.simulate.lake import CHUNK_PREMISES
+from pipeline.simulate.params import SimulationError
 from pipeline.store import StoreError
+from pipeline.truth import TruthError
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE, EXIT_BUSY = 0, 1, 2, 3
 
@@ -82,6 +84,7 @@ def build_parser() -> argparse.ArgumentParser:
         "episodes": "build the hourly grid, away episodes and decision steps",
         "learn": "estimate the residents' behaviour policy from the logged steps",
         "evaluate": "estimate each candidate policy's value and savings off-policy",
+        "improve": "learn setpoint policies per scope and test them on later, held-out episodes",
         "run": "all stages in order as one Prefect flow, then print a summary",
     }
     sim = sub.add_parser(
@@ -108,6 +111,24 @@ def build_parser() -> argparse.ArgumentParser:
         action="store_true",
         help="residents also react to a daily state no file records (shows what confounding does)",
     )
+    truth = sub.add_parser(
+        "truth",
+        help="on a simulated lake, roll every policy of a run out in the simulator and score its estimates",
+        description="For a lake `thermal-ledger simulate` wrote: roll every candidate and learned policy of"
+        " the run (default the latest) out on the lake's own weather, prices, occupancy and base load, and"
+        " write ledger/policy_truth with each estimate, its interval and bound, the true savings and whether"
+        " the interval covered them and the bound held.",
+        epilog=SETTINGS_HINT,
+    )
+    _common(truth)
+    truth.add_argument("--run", help="run id to score (default: the ledger's latest run)")
+    truth.add_argument(
+        "--sim-seed", type=int, help="seed the lake was simulated with (default: the seed setting)"
+    )
+    truth.add_argument(
+        "--sim-start", type=dt.date.fromisoformat, help="the lake's first day (default 2026-06-01)"
+    )
+    truth.add_argument("--sim-days", type=int, help="the lake's number of days (default 92)")
     sim.add_argument("--manifest", action="store_true", help="write MANIFEST.sha256 of the generated files")
     sim.add_argument(
         "--policy-values",
@@ -343,6 +364,31 @@ def print_evaluation(
     )
 
 
+def print_improvement(result: stages.ImprovementSummary, console: Console | None = None) -> None:
+    """The safety test's outcome of every scope that had enough evidence, and a count of the rest."""
+    console = console or _console()
+    tested = result.safety_test.filter(pl.col("learner").is_not_null())
+    rows = tested.select(
+        "mode",
+        "scope",
+        "key",
+        "learner",
+        "n_held_out_episodes",
+        pl.col("savings_estimate_usd").round(3),
+        pl.col("lower_bound_usd").round(3),
+        "outcome",
+        "reason",
+    ).rows()
+    console.print(
+        _table(
+            "learned policies: safety test on held-out episodes (USD per episode)",
+            ("mode", "scope", "key", "learner", "held-out", "savings", "lower bound", "outcome", "why"),
+            rows,
+        )
+    )
+    console.print(result.describe(), markup=False)
+
+
 def print_summary(
     summary: stages.RunSummary, confidence: float = 0.95, console: Console | None = None
 ) -> None:
@@ -352,6 +398,8 @@ def print_summary(
     print_episodes(summary.episodes, console)
     console.print(summary.behavior.describe(), markup=False)
     print_evaluation(summary.evaluation, confidence, console)
+    if summary.improvement is not None:
+        print_improvement(summary.improvement, console)
     console.print(
         "Estimates only: local codes, program rules and licensed practice govern what is sent to a device."
     )
@@ -453,7 +501,29 @@ def _stage_locked(
         _console().print(f"{result.describe()}; behaviour policy rows: {result.rows:,}", markup=False)
     elif args.stage == "evaluate":
         print_evaluation(result, config.confidence)
+    elif args.stage == "improve":
+        print_improvement(result)
     stages.finish(config, run, {args.stage: result})
+    return EXIT_OK
+
+
+def _truth(args: argparse.Namespace) -> int:
+    """Score a run's estimates against the simulator's roll-outs; write ledger/policy_truth; one line."""
+    from pipeline import truth
+
+    config = config_module.load(args.config, overrides_from(args), flags_from(args))
+    stages._require_warehouse(config, "truth")
+    run_id, run_date, ledger = truth.read_run(config.ledger_path, args.run)
+    params = truth.lake_params(
+        config.lake, config.seed if args.sim_seed is None else args.sim_seed, args.sim_start, args.sim_days
+    )
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
+        behavior = stages._load_behavior(con, "behavior", config)
+        premises = store.frame(con, "select premise_id, cohort, comfort_cool_c, comfort_heat_c from premise")
+    rows = truth.policy_truth(config, ledger, behavior, premises, params)
+    stamped = rows.select(pl.lit(run_id).alias("run_id"), pl.all())
+    path = store.write_ledger(config.ledger_path, "policy_truth", stamped, run_id, run_date)
+    _console().print(f"{truth.summary_line(rows)} (run {run_id}; {path})", markup=False)
     return EXIT_OK
 
 
@@ -510,7 +580,7 @@ def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     _keep_freed_memory()
     if args.stage == "simulate":
-        from pipeline.simulate import SimulationError, main_simulate
+        from pipeline.simulate import main_simulate
 
         try:
             summary = main_simulate(args)
@@ -527,11 +597,13 @@ def main(argv: list[str] | None = None) -> int:
         print_settings(args.markdown)
         return EXIT_OK
     try:
+        if args.stage == "truth":
+            return _truth(args)
         return _serve(args) if args.stage == "serve" else _run_stage(args)
     except OutputInUseError as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)
         return EXIT_BUSY
-    except USER_ERRORS as exc:
+    except (*USER_ERRORS, TruthError, SimulationError) as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)
         return EXIT_USAGE
 

@@ -22,6 +22,7 @@ from typing import Any
 import polars as pl
 
 from pipeline import evaluate as evaluation
+from pipeline import improve as improvement
 from pipeline import ingest as ingestion
 from pipeline import ledger, lineage, shards, store
 from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
@@ -43,13 +44,14 @@ __all__ = [
     "BehaviorSummary",
     "EpisodeCounts",
     "EvaluationSummary",
+    "ImprovementSummary",
     "IngestSummary",
     "RunSummary",
     "StageError",
     "run_all",
 ]
 
-STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "evaluate")
+STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "evaluate", "improve")
 """The stages of a run, in order; each reads what the ones before it left in the warehouse."""
 
 
@@ -125,6 +127,7 @@ class RunSummary:
     episodes: EpisodeCounts
     behavior: BehaviorSummary
     evaluation: EvaluationSummary
+    improvement: ImprovementSummary | None = None
 
 
 def _settings_of(config: Config, names: tuple[str, ...]) -> dict[str, dict[str, Any]]:
@@ -362,6 +365,75 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     return EvaluationSummary(frames["savings"], frames["horizon"], tables, work)
 
 
+# ---- improve: learned policies and their safety test (pipeline/improve.py) ----
+
+IMPROVEMENT_TABLES: tuple[str, ...] = ("policy", "savings", "safety_test")
+"""Frames the improve stage publishes, kept in the warehouse as ``improvement_<name>``."""
+
+
+@dataclass(frozen=True)
+class ImprovementSummary:
+    """The safety test's outcome per scope, and the learned policies' held-out savings rows."""
+
+    safety_test: pl.DataFrame
+    savings: pl.DataFrame
+    tables: Mapping[str, int] = field(default_factory=dict)
+    work: StageWork = field(default_factory=lambda: StageWork("improve"))
+
+    def describe(self) -> str:
+        """One line for the run summary."""
+        tested = self.safety_test.filter(pl.col("learner").is_not_null())
+        proposed = tested.filter(pl.col("outcome") == improvement.PROPOSED)
+        return (
+            f"learned policies: {tested.height} scopes tested on held-out episodes,"
+            f" {proposed.height} proposed;"
+            f" {self.safety_test.height - tested.height} with too little evidence"
+        )
+
+
+def _improvement_tables(config: Config) -> dict[str, pl.DataFrame]:
+    steps = _steps(config)
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
+        behavior = _load_behavior(con, "behavior", config)
+        exogenous = store.query(con, "episode_exogenous")
+        premises = store.frame(con, "select premise_id, cohort, comfort_cool_c, comfort_heat_c from premise")
+        days = store.query(con, "held_out_days", {"share": config.improve_holdout_share})
+    result = improvement.improve(steps, behavior, exogenous, premises, days, config)
+    return {"policy": result.policy, "savings": result.savings, "safety_test": result.safety_test}
+
+
+def improve(config: Config, run: Run) -> ImprovementSummary:
+    """Learn setpoint policies per scope, test them on held-out episodes; write policy, savings, safety_test.
+
+    Learned rows go into the run's ``policy`` and ``savings`` tables as a second file
+    (``<run_id>-learned.parquet``), beside the candidates' rows, in the same columns (plus
+    ``bootstrapped``, ``learner`` and ``proposed`` in ``policy``). Reused like evaluate's
+    frames when nothing it reads changed.
+    """
+    started = time.perf_counter()
+    _checked(config, "improve")
+    build_id = _build_id(config, "improve")
+    if build_id is not None:
+        with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
+            frames = {
+                name: store.frame(con, f"select * from {store.quote_identifier(f'improvement_{name}')}")
+                for name in IMPROVEMENT_TABLES
+            }
+    else:
+        frames = _improvement_tables(config)
+        with store.warehouse(config.warehouse_path, settings=config.duckdb) as con, store.transaction(con):
+            for name in IMPROVEMENT_TABLES:
+                store.replace_table(con, f"improvement_{name}", frames[name])
+            lineage.record(con, "improve", config.stage_settings("improve"), _upstream("improve"), run.run_id)
+    tables: dict[str, int] = {}
+    tables |= run.write("policy", frames["policy"], part="learned")
+    if frames["savings"].height:
+        tables |= run.write("savings", frames["savings"], part="learned")
+    tables |= run.write("safety_test", frames["safety_test"])
+    work = StageWork("improve", build_id is not None, time.perf_counter() - started)
+    return ImprovementSummary(frames["safety_test"], frames["savings"], tables, work)
+
+
 def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
     """Write the run record with the row counts the stages' results report; return its file's path."""
     row_counts: dict[str, int] = {}
@@ -390,6 +462,7 @@ STAGE_FUNCTIONS: dict[str, Callable[[Config, Run], Any]] = {
     "episodes": episodes,
     "learn": learn,
     "evaluate": evaluate,
+    "improve": improve,
 }
 """Each stage's function, keyed as in ``STAGES``."""
 
@@ -397,7 +470,12 @@ STAGE_FUNCTIONS: dict[str, Callable[[Config, Run], Any]] = {
 def summary(run: Run, results: Mapping[str, Any]) -> RunSummary:
     """The run summary from every stage's result."""
     return RunSummary(
-        run.run_id, results["ingest"], results["episodes"].counts, results["learn"], results["evaluate"]
+        run.run_id,
+        results["ingest"],
+        results["episodes"].counts,
+        results["learn"],
+        results["evaluate"],
+        results.get("improve"),
     )
 
 
