@@ -262,8 +262,8 @@ def _greedy_paths(
     if config.decision_points == "anchored":
         decision = (h == 0) | (h == away[:, None] - 1) | ((h > 0) & (tier > previous))
     else:
-        decision = h % config.step_hours == 0
-    decision &= in_absence
+        decision = (h % config.step_hours == 0) & in_absence
+    decision = decision & in_absence
     step = np.cumsum(decision, axis=1) - 1
     steps_left = decision.sum(axis=1)[:, None] - step
 
