@@ -25,6 +25,7 @@ mode x day type x degree bin), one pass over the hours of the longest absence.
 from __future__ import annotations
 
 import re
+import shutil
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -262,7 +263,7 @@ def _greedy_paths(
     if config.decision_points == "anchored":
         decision = (h == 0) | (h == away[:, None] - 1) | ((h > 0) & (tier > previous))
     else:
-        decision = (h % config.step_hours == 0) & in_absence
+        decision = h % config.step_hours == 0
     decision = decision & in_absence
     step = np.cumsum(decision, axis=1) - 1
     steps_left = decision.sum(axis=1)[:, None] - step
@@ -344,13 +345,23 @@ def _file_name(program: str | None) -> str:
 
 
 def write_program_files(schedule: pl.DataFrame, folder: Path) -> list[Path]:
-    """One CSV per program (the premises of one rate plan) for operations teams; return the paths."""
-    folder.mkdir(parents=True, exist_ok=True)
-    paths = []
+    """One CSV per program (the premises of one rate plan) for operations teams; return the paths.
+
+    The files are written into a sibling folder that is renamed to ``folder`` when all are
+    whole, so a reader never sees part of a run's files.
+    """
+    scratch = folder.with_name(folder.name + ".tmp")
+    if scratch.exists():
+        shutil.rmtree(scratch)
+    scratch.mkdir(parents=True)
+    names = []
     for (program,), part in schedule.sort("rate_plan_id", "premise_id").group_by(
         ["rate_plan_id"], maintain_order=True
     ):
-        path = folder / _file_name(program)
-        part.drop("rate_plan_id").write_csv(path)
-        paths.append(path)
-    return paths
+        name = _file_name(program)
+        part.drop("rate_plan_id").write_csv(scratch / name)
+        names.append(name)
+    if folder.exists():
+        shutil.rmtree(folder)
+    scratch.rename(folder)
+    return [folder / name for name in names]

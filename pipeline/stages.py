@@ -24,7 +24,7 @@ import polars as pl
 
 from pipeline import evaluate as evaluation
 from pipeline import ingest as ingestion
-from pipeline import lineage, rules, schedule, shards, store
+from pipeline import ledger, lineage, rules, schedule, shards, store
 from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
 from pipeline.config import Config
 from pipeline.episodes import (
@@ -380,13 +380,12 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     tables: dict[str, int] = {}
     for name in EVALUATION_TABLES:
         tables |= run.write(name, frames[name])
-    schedule.write_program_files(frames["schedule"], schedule_folder(config, run))
     work = StageWork("evaluate", build_id is not None, time.perf_counter() - started)
     return EvaluationSummary(frames["savings"], frames["horizon"], tables, work)
 
 
 def schedule_folder(config: Config, run: Run) -> Path:
-    """Where a run's schedule files for operations teams go: one CSV per rate plan."""
+    """Where a published run's schedule files for operations teams go: one CSV per rate plan."""
     return config.out / "schedules" / f"run_date={run.run_date:%Y-%m-%d}" / run.run_id
 
 
@@ -396,8 +395,16 @@ def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
     for result in results.values():
         row_counts |= dict(result.tables)
     row_counts |= run.write("stage_work", stage_work_frame([result.work for result in results.values()]))
+    row_counts |= run.write("abandoned_run", ledger.sweep_abandoned(config.ledger_path, run.run_id))
     with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
-        return str(run.finish(row_counts, con))
+        record = str(run.finish(row_counts, con))
+    if "evaluate" in results:
+        # Operations teams' files appear only once the run record has published the run.
+        written = (
+            config.ledger_path / "schedule" / f"run_date={run.run_date:%Y-%m-%d}" / f"{run.run_id}.parquet"
+        )
+        schedule.write_program_files(pl.read_parquet(written).drop("run_id"), schedule_folder(config, run))
+    return record
 
 
 def stage_work_frame(work: list[StageWork]) -> pl.DataFrame:
@@ -430,7 +437,8 @@ def summary(run: Run, results: Mapping[str, Any]) -> RunSummary:
 
 def run_all(config: Config) -> RunSummary:
     """Every stage in order, without Prefect."""
-    run = Run(config)
-    results = {name: STAGE_FUNCTIONS[name](config, run) for name in STAGES}
-    finish(config, run, results)
+    with ledger.exclusive_output(config.out, "(thermal-ledger run)"):
+        run = Run(config)
+        results = {name: STAGE_FUNCTIONS[name](config, run) for name in STAGES}
+        finish(config, run, results)
     return summary(run, results)
