@@ -170,17 +170,23 @@ def setpoint_plans(
     if base.height == 0:
         return pl.DataFrame(schema=_SCHEMA)
     n_bands = len(space.degree_bin_edges_c) + 1
-    setpoint, offset, occupied, tier = _greedy_paths(base, tiers, tables, keys, n_bands, config)
-    # Plans are (group, band) with the band innermost: a group depends on the weather when any band differs.
-    groups = base.height
-    depends = (
-        setpoint.reshape(groups, n_bands, HOURS) != setpoint.reshape(groups, n_bands, HOURS)[:, :1]
-    ).any(axis=(1, 2))
-    bands_of = np.where(depends, n_bands, 1)
-    plan = np.flatnonzero(
-        (np.arange(groups * n_bands) % n_bands) < np.repeat(bands_of, n_bands)
-    )  # plans kept: every band of a dependent group, band 0 of the others
-    group_of, band = plan // n_bands, plan % n_bands
+    # A table whose greedy action never depends on the degree bin gives one plan for any weather;
+    # the others are followed in every bin, and kept per bin where the paths differ.
+    greedy = np.stack([np.argmax(tables[k], axis=1) for k in keys])  # (n_tables, n_states)
+    by_bin = greedy.reshape(len(keys), space.sizes[0], n_bands, -1)
+    weather = (by_bin != by_bin[:, :, :1]).any(axis=(1, 2, 3))
+    table = base["table"].to_numpy()
+    bands_of = np.where(weather[table], n_bands, 1)
+    group_of = np.repeat(np.arange(base.height), bands_of)
+    band = np.arange(group_of.size) - np.repeat(np.cumsum(bands_of) - bands_of, bands_of)
+    setpoint, offset, occupied, tier = _greedy_paths(base, tiers, greedy, group_of, band, config)
+    depends = np.zeros(base.height, dtype=bool)
+    many = np.flatnonzero(bands_of > 1)
+    if many.size:
+        blocks = setpoint[np.isin(group_of, many)].reshape(many.size, n_bands, HOURS)
+        depends[many] = (blocks != blocks[:, :1]).any(axis=(1, 2))
+    plan = np.flatnonzero(depends[group_of] | (band == 0))  # every bin of a dependent group, else one
+    group_of, band = group_of[plan], band[plan]
     edges = np.asarray(space.degree_bin_edges_c, dtype=float)
     lower = np.r_[np.nan, edges][band]
     upper = np.r_[edges, np.nan][band]
@@ -231,26 +237,27 @@ def _tier_matrix(base: pl.DataFrame, tiers: pl.DataFrame) -> np.ndarray:
 def _greedy_paths(
     base: pl.DataFrame,
     tiers: pl.DataFrame,
-    tables: dict[tuple[str, str], np.ndarray],
-    keys: list[tuple[str, str]],
-    n_bands: int,
+    greedy: np.ndarray,
+    group_of: np.ndarray,
+    band: np.ndarray,
     config: Config,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Setpoint, offset, occupied and tier (n_plans, 24) by local hour, plans = groups x bands."""
+    """Setpoint, offset, occupied and tier (n_plans, 24) by local hour; plan i is group_of[i] in band[i].
+
+    ``greedy`` (n_tables, n_states) holds each table's most probable action column.
+    """
     space, actions = config.state, np.asarray(config.actions, dtype=np.int64)
-    greedy = np.stack([np.argmax(tables[k], axis=1) for k in keys])  # (n_tables, n_states)
-    rep = lambda a: np.repeat(np.asarray(a), n_bands)  # noqa: E731  one value per band of each group
-    table = rep(base["table"].to_numpy())
-    heat = rep(base["mode"].to_numpy() == "heat")
-    comfort = np.where(heat, rep(base["comfort_heat_c"].to_numpy()), rep(base["comfort_cool_c"].to_numpy()))
+    table = base["table"].to_numpy()[group_of]
+    heating = base["mode"].to_numpy() == "heat"
+    comfort = np.where(heating, base["comfort_heat_c"], base["comfort_cool_c"])[group_of]
+    heat = heating[group_of]
     sign = np.where(heat, -1.0, 1.0)
     low = np.where(heat, config.heat_band_c[0], config.cool_band_c[0])
     high = np.where(heat, config.heat_band_c[1], config.cool_band_c[1])
-    depart = rep(base["depart_hour"].fill_null(0).to_numpy()).astype(np.int64)
-    away = np.minimum(rep(base["away_hours"].fill_null(0).to_numpy()).astype(np.int64), HOURS)
-    band = np.tile(np.arange(n_bands), base.height)
+    depart = base["depart_hour"].fill_null(0).to_numpy().astype(np.int64)[group_of]
+    away = np.minimum(base["away_hours"].fill_null(0).to_numpy().astype(np.int64), HOURS)[group_of]
     degrees = np.r_[0.0, np.asarray(space.degree_bin_edges_c, dtype=float)][band]
-    tier_by_hour = np.repeat(_tier_matrix(base, tiers), n_bands, axis=0)  # (n_plans, 24)
+    tier_by_hour = _tier_matrix(base, tiers)[group_of]  # (n_plans, 24)
     n_plans = table.shape[0]
     rows = np.arange(n_plans)
 
@@ -265,7 +272,7 @@ def _greedy_paths(
     else:
         decision = h % config.step_hours == 0
     decision = decision & in_absence
-    step = np.cumsum(decision, axis=1) - 1
+    step = np.cumsum(decision, axis=1, dtype=np.int32) - 1
     steps_left = decision.sum(axis=1)[:, None] - step
 
     setpoint = np.repeat(comfort[:, None], HOURS, axis=1)
