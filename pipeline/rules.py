@@ -10,7 +10,8 @@ A rule file is TOML holding ``[[rule]]`` tables (the format is the project's own
 - ``precool``: below comfort by ``precool_c`` at decisions in a tier from ``precool_tier``
   up to (not including) ``peak_tier``, then drifting up to ``drift_c`` above comfort at
   decisions in the peak tier or above, ``drift_per_decision_c`` at a time; comfort elsewhere.
-  Offsets are in the setback direction, so in heating the same rule pre-heats.
+  ``restore_before_return`` ends the drift; a pre-cooled setpoint is within comfort and may
+  stay to the return. Offsets are in the setback direction, so in heating it pre-heats.
 - ``hold``: bring the setpoint to ``offset_c`` from comfort and hold it; with
   ``restore_before_return`` it is back at comfort that many decisions before the return.
 
