@@ -294,7 +294,9 @@ class Config:
     candidates: Annotated[
         tuple[SetbackRule, ...], BeforeValidator(_no_booleans("candidate")), Field(min_length=1)
     ] = _setting(stages=("evaluate",), factory=_default_candidates)
-    """Candidate setback rules evaluated in every run ([[candidate]] tables)."""
+    """Candidate setback rules evaluated in every run ([[candidate]] tables; candidate_file replaces them)."""
+    candidate_file: Path | None = _setting(None, stages=("evaluate",), unit="file")
+    """Rule file of candidate policies ([[rule]] tables; README), found beside the settings file naming it."""
     columns: dict[str, dict[str, str]] = _setting(stages=("ingest",), factory=dict)
     """Per landing folder, canonical column name -> the name used in the files ([columns.<folder>])."""
     shard_premises: Count = _setting(250, stages=(), execution=True, unit="premises")
@@ -438,6 +440,12 @@ def _check_rules(c: Config) -> None:
     for key, ok, allowed in state_rules:
         if not ok:
             raise _Rule((f"state.{key}",), f"must be {allowed}")
+    if c.candidate_file is not None and c.candidates != _default_candidates():
+        raise _Rule(
+            ("candidate_file", "candidate"),
+            "replaces the [[candidate]] tables: give the rules in one place (move them into the rule file)",
+            "tables cannot be given with candidate_file, which replaces them: move them into the rule file",
+        )
     names = [rule.name for rule in c.candidates]
     for i, rule in enumerate(c.candidates):
         for key in ("depth_c", "lead_steps"):
@@ -468,6 +476,8 @@ def _show(value: Any, quote: Callable[[str], str] = repr) -> str:
     """A value as the user would write it in TOML (strings in single quotes unless ``quote`` says)."""
     if isinstance(value, bool):
         return "true" if value else "false"
+    if value is None:
+        return "(unset)"
     if isinstance(value, str | Path):
         return quote(str(value))
     if isinstance(value, list | tuple):
@@ -527,6 +537,9 @@ def _normalise(source: str, key: str, value: Any) -> tuple[str, Any]:
                 if sub not in known:
                     raise _unknown(f"[[candidate]] {i}: unknown key {{}}", sub, known)
         return "candidates", tuple(value)
+    if head == "candidate_file" and isinstance(value, str) and source not in ("--set", "flag", "settings"):
+        # A rule file named in a settings file is found beside it, wherever the command runs from.
+        return head, str(Path(source).parent / value)
     if head == "columns":
         folders = _folders()
         for folder, mapping in _table(source, head, value, "landing folders").items():
@@ -789,6 +802,7 @@ _RULES = {
     "presence_sources": "no repeats",
     "estimators": "no repeats",
     "recommended_estimator": "one of estimators",
+    "candidate_file": "a TOML rule file; not together with [[candidate]] tables",
     "serve_cron": "5 fields (minute hour day-of-month month day-of-week) or @hourly ... @yearly",
     "serve_timezone": "an IANA time zone name",
     "serve_name": "no / % & < >",

@@ -32,6 +32,7 @@ from pipeline.config import Config
 from pipeline.estimators.registry import off_policy_estimator
 from pipeline.policies import action_index
 from pipeline.qmodel import FittedQ
+from pipeline.rules import Candidate, candidates_for
 
 SCOPES = (("premise", "premise_id"), ("cohort", "cohort"), ("portfolio", None))
 STATUS_OK, STATUS_THIN = "ok", "insufficient_evidence"
@@ -413,10 +414,46 @@ COLUMNS = [
 ]
 
 
+def applicable_premises(candidate: Candidate, days: pl.DataFrame) -> pl.Series | None:
+    """Premise ids a candidate applies to, from ``days`` (premise_id, cohort, rate_plan_id); None: all."""
+    if not candidate.scoped:
+        return None
+    return days.filter(pl.Series(candidate.applies(days)))["premise_id"]
+
+
+def _restricted(bundle: tuple, premises: pl.Series) -> tuple:
+    """A mode's shared inputs (steps, b, refit, draws, logged sums) kept to the steps of ``premises``.
+
+    The draws are per episode (seeded by the episode id), so keeping an episode's column keeps
+    exactly the draws a frame of the kept episodes alone would get.
+    """
+    in_mode, b, refit, draws, _ = bundle
+    keep = in_mode["premise_id"].is_in(premises.implode()).to_numpy()
+    steps = in_mode.filter(pl.Series(keep))
+    if steps.height == 0:
+        return (steps, b[keep], None, draws[:, :0], None)
+    episode = in_mode["episode_id"].to_numpy()
+    kept_episodes = keep[np.r_[True, episode[1:] != episode[:-1]]]
+    kept_draws = draws[:, kept_episodes]
+    kept_refit = None if refit is None else (refit[0][:, kept_episodes], refit[1][:, keep])
+    return steps, b[keep], kept_refit, kept_draws, on_policy_sums(steps, kept_draws)
+
+
 def evaluate_candidates(
-    steps: pl.DataFrame, behavior: BehaviorModel, days: pl.DataFrame, config: Config
+    steps: pl.DataFrame,
+    behavior: BehaviorModel,
+    days: pl.DataFrame,
+    config: Config,
+    candidates: tuple[Candidate, ...] | None = None,
 ) -> Evaluation:
-    """Evaluate every configured candidate rule, per mode (cooling and heating never mix)."""
+    """Evaluate every candidate, per mode (cooling and heating never mix).
+
+    ``candidates`` default to the run's (``rules.candidates_for``). A candidate that applies
+    to some cohorts or rate plans only is scored on the episodes of the premises it applies
+    to (``applicable_premises``; ``days`` then needs rate_plan_id when it names rate plans):
+    its cohort and portfolio rows pool those premises alone.
+    """
+    candidates = candidates_for(config) if candidates is None else candidates
     visits = steps.group_by("mode", "state_key").agg(pl.len().alias("visits"))
     savings, diags, policies = [], [], []
     # What every candidate of a mode shares: its steps, behaviour probabilities and bootstrap draws.
@@ -427,9 +464,14 @@ def evaluate_candidates(
         draws = estimators.frame_multiplicity(in_mode, config.bootstrap_replicates, config.seed)
         logged = on_policy_sums(in_mode, draws)
         modes[mode] = (in_mode, behavior.probabilities(in_mode), refit, draws, logged)
-    for rule in config.candidates:
-        table = rule.table(config.state, config.actions, config.target_epsilon)
-        for mode, (in_mode, b, refit, draws, logged) in modes.items():
+    for rule in candidates:
+        table = rule.table
+        premises = applicable_premises(rule, days)
+        rule_days = days if premises is None else days.filter(pl.col("premise_id").is_in(premises.implode()))
+        for mode, bundle in modes.items():
+            in_mode, b, refit, draws, logged = bundle if premises is None else _restricted(bundle, premises)
+            if in_mode.height == 0:
+                continue
             q_model = FittedQ(config.state, config.actions).fit(in_mode, table)
             policies.append(
                 policy_frame(rule.name, table, config, q_model.q_)
@@ -437,7 +479,7 @@ def evaluate_candidates(
                 .join(visits, on=["mode", "state_key"], how="left")
             )
             pi = target_probabilities(in_mode, table, config)
-            s, d = evaluate_policy(in_mode, pi, b, days, config, table, refit, draws, logged)
+            s, d = evaluate_policy(in_mode, pi, b, rule_days, config, table, refit, draws, logged)
             tag = (pl.lit(rule.name).alias("policy_name"), pl.lit(mode).alias("mode"))
             savings.append(s.with_columns(*tag))
             diags.append(d.with_columns(*tag))
@@ -513,7 +555,11 @@ def state_values(steps: pl.DataFrame) -> pl.DataFrame:
 
 
 def horizon_report(
-    steps_by_choice: dict[str, pl.DataFrame], config: Config, fitted: dict[str, BehaviorModel]
+    steps_by_choice: dict[str, pl.DataFrame],
+    config: Config,
+    fitted: dict[str, BehaviorModel],
+    candidates: tuple[Candidate, ...] | None = None,
+    days: pl.DataFrame | None = None,
 ) -> pl.DataFrame:
     """Weight spread of each candidate under each decision-point choice (the curse of horizon).
 
@@ -523,6 +569,8 @@ def horizon_report(
         Decision steps built with each choice of decision points ('fixed', 'anchored').
     fitted : dict of str to BehaviorModel
         The behaviour model fitted (by the learn stage) on each choice's steps.
+    candidates : tuple of Candidate, optional
+        Default: the run's. With ``days``, a scoped candidate is weighed on its premises only.
 
     Returns
     -------
@@ -530,6 +578,7 @@ def horizon_report(
         decision_points, mode, policy_name, mean_decisions, n_episodes, ess, ess_share,
         max_weight_share and weight_max over the whole portfolio.
     """
+    candidates = candidates_for(config) if candidates is None else candidates
     rows = []
     for choice, steps in steps_by_choice.items():
         behavior = fitted[choice]
@@ -537,10 +586,16 @@ def horizon_report(
             in_mode = steps.filter(pl.col("mode") == mode)
             b = behavior.probabilities(in_mode)
             decisions = in_mode.group_by("episode_id").len()["len"].mean()
-            for rule in config.candidates:
-                table = rule.table(config.state, config.actions, config.target_epsilon)
-                frame = in_mode.select("episode_id", "t").with_columns(
-                    pl.Series("pi", target_probabilities(in_mode, table, config)), pl.Series("b", b)
+            for rule in candidates:
+                premises = None if days is None else applicable_premises(rule, days)
+                keep = np.ones(in_mode.height, dtype=bool)
+                if premises is not None:
+                    keep = in_mode["premise_id"].is_in(premises.implode()).to_numpy()
+                if not keep.any():
+                    continue
+                kept = in_mode.filter(pl.Series(keep))
+                frame = kept.select("episode_id", "t").with_columns(
+                    pl.Series("pi", target_probabilities(kept, rule.table, config)), pl.Series("b", b[keep])
                 )
                 diag = estimators.diagnostics(frame).row(0, named=True)
                 rows.append(

@@ -17,6 +17,7 @@ from __future__ import annotations
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import polars as pl
@@ -24,7 +25,7 @@ import polars as pl
 from pipeline import evaluate as evaluation
 from pipeline import improve as improvement
 from pipeline import ingest as ingestion
-from pipeline import ledger, lineage, shards, store
+from pipeline import ledger, lineage, rules, schedule, shards, store
 from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
 from pipeline.config import Config
 from pipeline.episodes import (
@@ -297,18 +298,25 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
     )
 
 
-EVALUATION_TABLES: tuple[str, ...] = ("horizon", "state_value", "savings", "policy", "diagnostics")
+EVALUATION_TABLES: tuple[str, ...] = (
+    "horizon",
+    "state_value",
+    "savings",
+    "policy",
+    "diagnostics",
+    "schedule",
+)
 """The ledger tables the evaluate stage writes, also kept in the warehouse as ``evaluation_<name>``."""
 
 
-def _build_id(config: Config, stage: str) -> str | None:
+def _build_id(config: Config, stage: str, inputs: str = "") -> str | None:
     """The current build's id of ``stage`` if this run would build it the same, else None."""
     with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
-        build_id = lineage.build_id_for(con, stage, config.stage_settings(stage), _upstream(stage))
+        build_id = lineage.build_id_for(con, stage, config.stage_settings(stage), _upstream(stage), inputs)
         return build_id if lineage.reusable(con, stage, build_id) else None
 
 
-def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
+def _evaluation_tables(config: Config, candidates: tuple[rules.Candidate, ...]) -> dict[str, pl.DataFrame]:
     """Every frame the evaluate stage publishes, computed from the warehouse's steps and behaviour model."""
     steps = _steps(config)
     other = other_choice(config)
@@ -320,18 +328,25 @@ def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
         }
         days = store.frame(
             con,
-            "select premise_id, p.cohort, count(distinct h.local_date) as days_observed"
+            "select premise_id, p.cohort, p.rate_plan_id, count(distinct h.local_date) as days_observed"
             " from hourly h join premise p using (premise_id) group by all",
         )
         by_choice = {config.decision_points: steps, other.decision_points: load_steps(con, "step_alternate")}
-    result = evaluation.evaluate_candidates(steps, behavior, days, config)
-    return {
-        "horizon": evaluation.horizon_report(by_choice, config, fitted),
+    result = evaluation.evaluate_candidates(steps, behavior, days, config, candidates)
+    frames = {
+        "horizon": evaluation.horizon_report(by_choice, config, fitted, candidates, days),
         "state_value": evaluation.state_values(steps),
         "savings": result.savings,
         "policy": result.policy,
         "diagnostics": result.diagnostics,
     }
+    # Schedules: for the recommended premises once a recommendation frame is published beside
+    # these, until then for every premise with every candidate that applies to it.
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
+        frames["schedule"] = schedule.for_run(
+            con, config, candidates, result.policy, frames.get("recommendation")
+        )
+    return frames
 
 
 def evaluate(config: Config, run: Run) -> EvaluationSummary:
@@ -342,8 +357,10 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     evaluating again.
     """
     started = time.perf_counter()
+    # The rule file is read first, so a mistake in it is reported before any work.
+    candidates = rules.candidates_for(config)
     _checked(config, "evaluate")
-    build_id = _build_id(config, "evaluate")
+    build_id = _build_id(config, "evaluate", rules.digest(candidates))
     if build_id is not None:
         with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
             frames = {
@@ -351,12 +368,17 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
                 for name in EVALUATION_TABLES
             }
     else:
-        frames = _evaluation_tables(config)
+        frames = _evaluation_tables(config, candidates)
         with store.warehouse(config.warehouse_path, settings=config.duckdb) as con, store.transaction(con):
             for name in EVALUATION_TABLES:
                 store.replace_table(con, f"evaluation_{name}", frames[name])
             lineage.record(
-                con, "evaluate", config.stage_settings("evaluate"), _upstream("evaluate"), run.run_id
+                con,
+                "evaluate",
+                config.stage_settings("evaluate"),
+                _upstream("evaluate"),
+                run.run_id,
+                rules.digest(candidates),
             )
     tables: dict[str, int] = {}
     for name in EVALUATION_TABLES:
@@ -434,6 +456,11 @@ def improve(config: Config, run: Run) -> ImprovementSummary:
     return ImprovementSummary(frames["safety_test"], frames["savings"], tables, work)
 
 
+def schedule_folder(config: Config, run: Run) -> Path:
+    """Where a published run's schedule files for operations teams go: one CSV per rate plan."""
+    return config.out / "schedules" / f"run_date={run.run_date:%Y-%m-%d}" / run.run_id
+
+
 def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
     """Write the run record with the row counts the stages' results report; return its file's path."""
     row_counts: dict[str, int] = {}
@@ -442,7 +469,14 @@ def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
     row_counts |= run.write("stage_work", stage_work_frame([result.work for result in results.values()]))
     row_counts |= run.write("abandoned_run", ledger.sweep_abandoned(config.ledger_path, run.run_id))
     with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
-        return str(run.finish(row_counts, con))
+        record = str(run.finish(row_counts, con))
+    if "evaluate" in results:
+        # Operations teams' files appear only once the run record has published the run.
+        written = (
+            config.ledger_path / "schedule" / f"run_date={run.run_date:%Y-%m-%d}" / f"{run.run_id}.parquet"
+        )
+        schedule.write_program_files(pl.read_parquet(written).drop("run_id"), schedule_folder(config, run))
+    return record
 
 
 def stage_work_frame(work: list[StageWork]) -> pl.DataFrame:
