@@ -315,10 +315,12 @@ def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
             config.decision_points: behavior,
             other.decision_points: _load_behavior(con, f"behavior_{other.decision_points}", config),
         }
+        # Days the thermostat was in each mode: a mode's episodes are annualised over its season.
         days = store.frame(
             con,
-            "select premise_id, p.cohort, count(distinct h.local_date) as days_observed"
-            " from hourly h join premise p using (premise_id) group by all",
+            "select premise_id, p.cohort, h.mode_end as mode, count(distinct h.local_date) as days_observed"
+            " from hourly h join premise p using (premise_id) where h.mode_end in ('cool', 'heat')"
+            " group by all",
         )
         by_choice = {config.decision_points: steps, other.decision_points: load_steps(con, "step_alternate")}
     result = evaluation.evaluate_candidates(steps, behavior, days, config)
