@@ -34,6 +34,11 @@ from pipeline.store import StoreError
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE = 0, 1, 2
 
+SAVINGS_BASELINE = (
+    "Savings are measured against the residents' current behaviour (their logged setpoint habits).\n"
+    "Annual figures: episodes per observed day times the season length (days_observed, season_days)."
+)
+
 USER_ERRORS: tuple[type[Exception], ...] = (
     ConfigError,
     stages.StageError,
@@ -341,6 +346,42 @@ def print_evaluation(
         " see the ledger's savings table (scope = 'premise')"
         " or the analyst view savings_by_premise (sql/views.sql)."
     )
+    print_recommendation(evaluation.recommendation_total, level, console)
+
+
+def print_recommendation(totals: pl.DataFrame, level: str, console: Console) -> None:
+    """The program's recommendation: homes per policy (or kept, by reason) and their annual bill and kWh."""
+    if totals.is_empty():
+        return
+    rows = (
+        totals.filter(pl.col("scope") == "program")
+        .select(
+            "mode",
+            "decision",
+            pl.col("policy").fill_null("-"),
+            "reason",
+            "homes",
+            pl.col("bill_savings_usd_annual", "bill_ci_low_annual", "bill_ci_high_annual").round(0),
+            pl.col("savings_kwh_annual", "savings_kwh_ci_low_annual", "savings_kwh_ci_high_annual").round(0),
+        )
+        .rows()
+    )
+    labels = (
+        "mode",
+        "decision",
+        "policy",
+        "reason",
+        "homes",
+        "bill USD/year",
+        "low",
+        "high",
+        "kWh/year",
+        "low",
+        "high",
+    )
+    title = f"recommendation for the program: annual bill and kWh savings with {level} intervals"
+    console.print(_table(title, labels, rows))
+    console.print(SAVINGS_BASELINE)
 
 
 def print_summary(

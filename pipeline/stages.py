@@ -24,6 +24,7 @@ import polars as pl
 from pipeline import evaluate as evaluation
 from pipeline import ingest as ingestion
 from pipeline import lineage, shards, store
+from pipeline import recommend as recommending
 from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
 from pipeline.config import Config
 from pipeline.episodes import (
@@ -114,6 +115,8 @@ class EvaluationSummary:
     horizon: pl.DataFrame
     tables: Mapping[str, int] = field(default_factory=dict)
     work: StageWork = field(default_factory=lambda: StageWork("evaluate"))
+    recommendation_total: pl.DataFrame = field(default_factory=pl.DataFrame)
+    """Homes per policy (or kept on current behaviour, by reason) and their annual totals."""
 
 
 @dataclass(frozen=True)
@@ -294,7 +297,15 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
     )
 
 
-EVALUATION_TABLES: tuple[str, ...] = ("horizon", "state_value", "savings", "policy", "diagnostics")
+EVALUATION_TABLES: tuple[str, ...] = (
+    "horizon",
+    "state_value",
+    "savings",
+    "policy",
+    "diagnostics",
+    "recommendation",
+    "recommendation_total",
+)
 """The ledger tables the evaluate stage writes, also kept in the warehouse as ``evaluation_<name>``."""
 
 
@@ -323,13 +334,21 @@ def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
             " group by all",
         )
         by_choice = {config.decision_points: steps, other.decision_points: load_steps(con, "step_alternate")}
+        premises = store.query(con, "premise_coverage")
+        learned_savings, safety = recommending.learned_tables(con)
     result = evaluation.evaluate_candidates(steps, behavior, days, config)
+    every_savings = result.savings
+    if learned_savings is not None:
+        every_savings = pl.concat([result.savings, learned_savings], how="diagonal_relaxed")
+    decided = recommending.recommend(every_savings, premises, config, safety)
     return {
         "horizon": evaluation.horizon_report(by_choice, config, fitted),
         "state_value": evaluation.state_values(steps),
         "savings": result.savings,
         "policy": result.policy,
         "diagnostics": result.diagnostics,
+        "recommendation": decided.homes,
+        "recommendation_total": decided.totals,
     }
 
 
@@ -361,7 +380,9 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     for name in EVALUATION_TABLES:
         tables |= run.write(name, frames[name])
     work = StageWork("evaluate", build_id is not None, time.perf_counter() - started)
-    return EvaluationSummary(frames["savings"], frames["horizon"], tables, work)
+    return EvaluationSummary(
+        frames["savings"], frames["horizon"], tables, work, frames["recommendation_total"]
+    )
 
 
 def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
