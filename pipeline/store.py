@@ -178,13 +178,34 @@ def write_ledger(ledger: Path, table: str, frame: pl.DataFrame, run_id: str, run
     return path
 
 
+def view_files() -> list[str]:
+    """Names of the SQL files of analyst views: ``views`` first, then every ``views_<topic>`` in order."""
+    return ["views", *sorted(p.stem for p in SQL_DIR.glob("views_*.sql"))]
+
+
 def connect_ledger(ledger: Path, settings: DuckDBSettings | None = None) -> duckdb.DuckDBPyConnection:
-    """An in-memory DuckDB connection with the analyst views of ``sql/views.sql`` over the ledger."""
+    """An in-memory DuckDB connection with the analyst views of ``sql/views*.sql`` over the ledger.
+
+    A view over a table this ledger does not hold yet (no run wrote it), or over such a view,
+    is left out rather than refused: it appears on the first connection after a run writes it.
+    """
+    root = Path(ledger).resolve()
+    if not (root / "run").is_dir():
+        raise StoreError(
+            f"no ledger at {root}: give the ledger folder a run wrote (the ledger/ inside its --out folder)"
+        )
     con = duckdb.connect()
     execute(con, "set TimeZone = 'UTC'")
     apply_settings(con, settings or DuckDBSettings())
-    execute(con, "set variable ledger_root = $root", {"root": str(Path(ledger).resolve())})
-    run_sql(con, "views")
+    execute(con, "set variable ledger_root = $root", {"root": str(root)})
+    for name in view_files():
+        for statement in (s for s in sql_text(name).split(";\n") if _has_code(s)):
+            try:
+                execute(con, statement)
+            except (duckdb.IOException, duckdb.CatalogException) as exc:
+                # No files of that table yet, or a view built on one that was left out.
+                if "No files found" not in str(exc) and "does not exist" not in str(exc):
+                    raise
     return con
 
 
