@@ -214,3 +214,26 @@ def test_sample_lake_program_totals_equal_the_sum_of_the_homes_that_get_each_pol
         for column in ("bill_savings_usd_annual", "savings_kwh_annual"):
             assert sent[column].to_list() == pytest.approx(sent[f"{column}_total"].to_list())
     assert totals.filter(pl.col("scope") == "program")["homes"].sum() == 60
+
+
+def test_sample_lake_totals_with_a_looser_comfort_limit_add_up_the_homes_sent(sample_lake_run, ledger):
+    """With comfort allowed to rise (limit 10 °C·h per episode), some sample-lake home is sent a policy, and
+    the program's annual USD and kWh per policy are exactly the sums over those homes' rows."""
+    from pipeline import store
+
+    config = sample_lake_run.config
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        premises = store.query(con, "premise_coverage")
+    decided = rec.recommend(ledger["savings"], premises, Config(comfort_rise_limit_degree_hours=10.0))
+    sent = decided.homes.filter(pl.col("decision") == rec.SEND)
+    assert sent.height >= 1
+    by_policy = sent.group_by("policy").agg(
+        pl.len().alias("homes"), pl.col("bill_savings_usd_annual", "savings_kwh_annual").sum()
+    )
+    program = decided.totals.filter((pl.col("scope") == "program") & (pl.col("decision") == rec.SEND))
+    joined = by_policy.join(program, on="policy", suffix="_total")
+    assert joined.height == by_policy.height == program.height
+    assert (joined["homes"] == joined["homes_total"]).all()
+    for column in ("bill_savings_usd_annual", "savings_kwh_annual"):
+        assert joined[column].to_list() == pytest.approx(joined[f"{column}_total"].to_list())
+    assert (program["bill_ci_low_annual"] <= program["bill_savings_usd_annual"]).all()
