@@ -1,27 +1,23 @@
 -- Analyst views of the decision: recommendations, their totals, schedules, comfort beside cost,
 -- and where the estimators disagree. Run after views.sql (pipeline.store.connect_ledger does),
--- whose latest_run they use, so each *_latest view shows only the newest whole run. Every
--- saving here is measured against the residents' current behaviour, not a thermostat left alone.
+-- whose published() macro and latest_run they use, so only whole runs show and each *_latest
+-- view shows only the newest. Every saving here is measured against the residents' current behaviour, not a thermostat left alone.
 -- A view over a table no run has written yet (schedule, before the schedule stage exists in a
 -- ledger) is left out by connect_ledger and appears once a run writes that table.
 
--- Every run's recommendation; one row per run, premise and mode.
+-- Every published run's recommendation; one row per run, premise and mode.
 create or replace view recommendation as
-    select * from read_parquet(
-        getvariable('ledger_root') || '/recommendation/*/*.parquet', hive_partitioning = true, union_by_name = true
-    );
+    select * from published('recommendation');
 
--- Every run's totals; one row per run, scope (cohort / program), key, mode, decision, policy and reason.
+-- Every published run's totals; one row per run, scope (cohort / program), key, mode,
+-- decision, policy and reason.
 create or replace view recommendation_total as
-    select * from read_parquet(
-        getvariable('ledger_root') || '/recommendation_total/*/*.parquet', hive_partitioning = true, union_by_name = true
-    );
+    select * from published('recommendation_total');
 
--- Every run's schedules (what a thermostat would be told); one row per run, premise, policy and slot.
+-- Every published run's schedules (what a thermostat would be told); one row per run,
+-- premise, policy and slot.
 create or replace view schedule as
-    select * from read_parquet(
-        getvariable('ledger_root') || '/schedule/*/*.parquet', hive_partitioning = true, union_by_name = true
-    );
+    select * from published('schedule');
 
 -- The newest whole run: one row, with when it ran, the code and the newest meter read it saw,
 -- so every figure of the *_latest views can be traced to its run.

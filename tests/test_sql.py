@@ -79,12 +79,16 @@ def test_views_are_found_in_every_view_file():
     assert len(names) == len(set(names))
 
 
+# Views that are empty on a ledger whose runs all finished (no run was killed part-way).
+EMPTY_WHEN_ALL_RUNS_FINISHED = {"abandoned_run"}
+
+
 @pytest.mark.parametrize("view", _views())
 def test_every_view_runs_against_the_demo_ledger(ledger, view):
-    """Each view in sql/views*.sql answers a query on the demo ledger with at least one row."""
+    """Each view in sql/views*.sql answers a query on the demo ledger, with rows where the demo has any."""
     con = store.connect_ledger(ledger)
     rows = con.execute(f"select count(*) from {store.quote_identifier(view)}").fetchone()[0]
-    assert rows > 0, view
+    assert rows == 0 if view in EMPTY_WHEN_ALL_RUNS_FINISHED else rows > 0, view
 
 
 def test_every_view_file_opens_with_a_header_comment_and_each_view_has_one():
