@@ -5,7 +5,7 @@ policy): "savings" are what a home would save by switching from what its residen
 now to the policy, not against a thermostat left alone.
 
 For each premise and mode the candidates (and learned policies the safety test
-proposed for a scope holding the premise) are judged on the recommended estimator's
+proposed, on the premises of the scope each was learned for) are judged on the recommended estimator's
 premise row of ``savings``, in this order, the first failed check giving the reason:
 
 1. ``no support``: some logged action has no probability under the behaviour model;
@@ -121,9 +121,10 @@ TOTAL_COLUMNS = [
 """Columns of ``recommendation_total``; key (scope, key, mode, decision, policy, reason)."""
 
 
-LEARNED_SAVINGS, SAFETY_TEST = "learned_savings", "safety_test"
-"""Warehouse tables of learned policies, read when present: their held-out savings rows (the
-columns of ``savings``) and the safety test's outcome per scope (policy_name, scope, key, outcome)."""
+LEARNED_SAVINGS, SAFETY_TEST = "improvement_savings", "improvement_safety_test"
+"""Warehouse tables of the policy-learning stage, read when present: the learned policies'
+held-out savings rows (the columns of ``savings``) and the safety test's outcome per scope
+(policy_name, mode, scope, key, outcome)."""
 
 
 def learned_tables(con: duckdb.DuckDBPyConnection) -> tuple[pl.DataFrame | None, pl.DataFrame | None]:
@@ -155,10 +156,10 @@ class Recommendation:
 def eligible_rows(savings: pl.DataFrame, premises: pl.DataFrame, safety: pl.DataFrame | None) -> pl.DataFrame:
     """Premise rows of the recommended estimator, less learned policies the safety test did not propose.
 
-    A policy named in ``safety`` (columns policy_name, scope, key and ``outcome``, 'proposed' or
-    another word) is learned; its premise row counts only when a 'proposed' row's scope holds the
-    premise (the premise itself, its cohort, or the portfolio). Policies not named there are
-    candidates and always count.
+    A policy named in ``safety`` (columns policy_name, optionally mode, and ``outcome``:
+    'proposed' or another word) is learned; its premise rows (those of the premises of the scope
+    it was learned for) count only when a row of it, in the same mode, says 'proposed'. Policies
+    not named there are candidates and always count.
     """
     rows = savings.filter((pl.col("scope") == "premise") & pl.col("recommended")).rename(
         {"key": "premise_id"}
@@ -168,27 +169,15 @@ def eligible_rows(savings: pl.DataFrame, premises: pl.DataFrame, safety: pl.Data
     )
     if safety is None or safety.is_empty():
         return rows
-    learned = safety["policy_name"].unique()
-    proposed = safety.filter(pl.col("outcome") == "proposed").select("policy_name", "scope", "key")
-    holds = pl.concat(
-        [
-            rows.join(
-                proposed.filter(pl.col("scope") == scope).select("policy_name", pl.col("key").alias(column)),
-                on=["policy_name", column],
-                how="semi",
-            )
-            for scope, column in (("premise", "premise_id"), ("cohort", "cohort"))
-        ]
-        + [
-            rows.join(
-                proposed.filter(pl.col("scope") == "portfolio").select("policy_name"),
-                on="policy_name",
-                how="semi",
-            )
-        ]
-    ).unique(["premise_id", "mode", "policy_name"])
+    on = ["policy_name", "mode"] if "mode" in safety.columns else ["policy_name"]
+    learned = rows.join(safety.select(on).unique(), on=on, how="semi")
+    proposed = safety.filter(pl.col("outcome") == "proposed").select(on).unique()
     return pl.concat(
-        [rows.filter(~pl.col("policy_name").is_in(learned.implode())), holds], how="vertical_relaxed"
+        [
+            rows.join(learned.select(on).unique(), on=on, how="anti"),
+            learned.join(proposed, on=on, how="semi"),
+        ],
+        how="vertical_relaxed",
     )
 
 

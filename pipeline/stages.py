@@ -335,7 +335,10 @@ def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
         )
         by_choice = {config.decision_points: steps, other.decision_points: load_steps(con, "step_alternate")}
         premises = store.query(con, "premise_coverage")
-        learned_savings, safety = recommending.learned_tables(con)
+        # Learned policies count only when their stage runs before this one, so lineage keeps them current.
+        learned_savings, safety = (
+            recommending.learned_tables(con) if "improve" in _upstream("evaluate") else (None, None)
+        )
     result = evaluation.evaluate_candidates(steps, behavior, days, config)
     every_savings = result.savings
     if learned_savings is not None:

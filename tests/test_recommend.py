@@ -116,24 +116,25 @@ def test_a_larger_comfort_limit_lets_the_policy_whose_comfort_rises_be_sent():
 
 
 def test_learned_policies_count_only_where_the_safety_test_proposed_them():
-    """A learned policy's rows count for homes in a scope it was proposed for, nowhere else."""
+    """A learned policy's premise rows count only if the safety test proposed it (in that mode)."""
     rows = [
         _row("A", "shallow", bill_lower_bound_usd=0.1),
-        _row("A", "learned", bill_lower_bound_usd=0.9),
+        _row("A", "learned-cohort-north", bill_lower_bound_usd=0.9),
         _row("D", "shallow", bill_lower_bound_usd=0.1),
-        _row("D", "learned", bill_lower_bound_usd=0.9),
+        _row("D", "learned-cohort-south", bill_lower_bound_usd=0.9),
     ]
     safety = pl.DataFrame(
         {
-            "policy_name": ["learned", "learned"],
-            "scope": ["cohort", "cohort"],
-            "key": ["north", "south"],
-            "outcome": ["proposed", "no safe improvement found"],
+            "policy_name": ["learned-cohort-north", "learned-cohort-south", "learned-cohort-north"],
+            "mode": ["cool", "cool", "heat"],
+            "scope": ["cohort", "cohort", "cohort"],
+            "key": ["north", "south", "north"],
+            "outcome": ["proposed", "no safe improvement found", "no safe improvement found"],
         }
     )
     homes = _decided(rows, safety=safety).homes
     chosen = dict(homes.filter(pl.col("decision") == "send").select("premise_id", "policy").rows())
-    assert chosen == {"A": "learned", "D": "shallow"}
+    assert chosen == {"A": "learned-cohort-north", "D": "shallow"}
     assert homes.filter(pl.col("premise_id") == "D")["policies_considered"].item() == 1
 
 
