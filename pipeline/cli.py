@@ -19,6 +19,7 @@ import polars as pl
 from rich import box
 from rich.console import Console
 from rich.table import Table
+from rich.text import Text
 
 from pipeline import config as config_module
 from pipeline import ingest as ingestion
@@ -35,6 +36,11 @@ from pipeline.store import StoreError
 from pipeline.truth import TruthError
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE, EXIT_BUSY = 0, 1, 2, 3
+
+SAVINGS_BASELINE = (
+    "Savings are measured against the residents' current behaviour (their logged setpoint habits).\n"
+    "Annual figures: episodes per observed day times the season length (days_observed, season_days)."
+)
 
 USER_ERRORS: tuple[type[Exception], ...] = (
     ConfigError,
@@ -171,6 +177,32 @@ def build_parser() -> argparse.ArgumentParser:
     bench.add_argument(
         "--reuse", action="store_true", help="require the lake already simulated there (never simulate)"
     )
+    sql = sub.add_parser(
+        "sql",
+        help="run a SQL query against the analyst views of a ledger; print a table or write CSV/Parquet",
+        description="Run one DuckDB SQL query against the analyst views over a ledger (sql/views*.sql:"
+        " run_latest, savings_latest, savings_by_premise, savings_comfort_by_cohort, recommendation_latest,"
+        " program_totals, schedule_latest, estimator_disagreement and one view per ledger table) and print"
+        " the result, or write it with --out. Every saving is measured against the residents' current"
+        " behaviour.",
+        epilog='Example: thermal-ledger sql "select * from program_totals" --ledger out/ledger',
+    )
+    sql.add_argument("query", help="the SQL query, quoted")
+    sql.add_argument(
+        "--ledger",
+        type=Path,
+        help="the ledger folder a run wrote (OUT/ledger, or OUT; default out/ledger when present)",
+    )
+    sql.add_argument(
+        "--out", type=Path, help="write the result to this .csv or .parquet file instead of printing"
+    )
+    sql.add_argument(
+        "--max-rows",
+        type=int,
+        default=200,
+        metavar="N",
+        help="rows printed at most (default 200; --out writes all)",
+    )
     ref = sub.add_parser(
         "settings",
         help="list every setting: meaning, unit, default, allowed values and the stages it shapes",
@@ -199,10 +231,10 @@ def flags_from(args: argparse.Namespace) -> dict[str, Any]:
 # ---- output ------------------------------------------------------------------------------------
 
 
-def _console() -> Console:
-    # Off a terminal: no colour, and wide enough that no header wraps.
+def _console(width: int = 240) -> Console:
+    # Off a terminal: no colour, and wide enough (``width``) that no header wraps.
     tty = sys.stdout.isatty()
-    return Console(file=sys.stdout, no_color=not tty, highlight=False, width=None if tty else 240)
+    return Console(file=sys.stdout, no_color=not tty, highlight=False, width=None if tty else width)
 
 
 def _table(title: str | None, columns: Sequence[str], rows: Sequence[Sequence[Any]]) -> Table:
@@ -212,7 +244,8 @@ def _table(title: str | None, columns: Sequence[str], rows: Sequence[Sequence[An
     for label, is_number in zip(columns, numeric, strict=True):
         table.add_column(label, justify="right" if is_number and rows else "left", no_wrap=True)
     for row in rows:
-        table.add_row(*(_cell(v) for v in row))
+        # Text, not markup: values from files or queries may hold square brackets.
+        table.add_row(*(Text(_cell(v)) for v in row))
     return table
 
 
@@ -362,6 +395,42 @@ def print_evaluation(
         " see the ledger's savings table (scope = 'premise')"
         " or the analyst view savings_by_premise (sql/views.sql)."
     )
+    print_recommendation(evaluation.recommendation_total, level, console)
+
+
+def print_recommendation(totals: pl.DataFrame, level: str, console: Console) -> None:
+    """The program's recommendation: homes per policy (or kept, by reason) and their annual bill and kWh."""
+    if totals.is_empty():
+        return
+    rows = (
+        totals.filter(pl.col("scope") == "program")
+        .select(
+            "mode",
+            "decision",
+            pl.col("policy").fill_null("-"),
+            "reason",
+            "homes",
+            pl.col("bill_savings_usd_annual", "bill_ci_low_annual", "bill_ci_high_annual").round(0),
+            pl.col("savings_kwh_annual", "savings_kwh_ci_low_annual", "savings_kwh_ci_high_annual").round(0),
+        )
+        .rows()
+    )
+    labels = (
+        "mode",
+        "decision",
+        "policy",
+        "reason",
+        "homes",
+        "bill USD/year",
+        "low",
+        "high",
+        "kWh/year",
+        "low",
+        "high",
+    )
+    title = f"recommendation for the program: annual bill and kWh savings with {level} intervals"
+    console.print(_table(title, labels, rows))
+    console.print(SAVINGS_BASELINE)
 
 
 def print_improvement(result: stages.ImprovementSummary, console: Console | None = None) -> None:
@@ -552,6 +621,61 @@ def _serve(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _ledger_folder(given: Path | None) -> Path:
+    """The ledger folder to query: the one given (or its ledger/), else out/ledger when a run wrote it."""
+    if given is None:
+        default = Path("out") / "ledger"
+        if (default / "run").is_dir():
+            return default
+        raise StoreError(
+            "no ledger folder given: pass --ledger OUT/ledger, the ledger/ a run wrote under its --out folder"
+            ' (e.g. thermal-ledger sql "select * from program_totals" --ledger out/ledger)'
+        )
+    if not (given / "run").is_dir() and (given / "ledger" / "run").is_dir():
+        return given / "ledger"
+    return given
+
+
+def _sql(args: argparse.Namespace) -> int:
+    """``thermal-ledger sql``: one query against the analyst views; a table on screen or a file."""
+    import duckdb
+
+    from pipeline import store
+
+    if args.out is not None and args.out.suffix.lower() not in (".csv", ".parquet"):
+        raise StoreError(f"--out {args.out}: give a file ending in .csv or .parquet")
+    con = store.connect_ledger(_ledger_folder(args.ledger))
+    try:
+        relation = con.sql(args.query)
+        result = pl.DataFrame() if relation is None else relation.pl()
+    except duckdb.Error as exc:
+        detail = str(exc).splitlines()[0]
+        views = [
+            r[0] for r in con.execute("select view_name from duckdb_views() where not internal").fetchall()
+        ]
+        absent = " (a view over a table no run of this ledger wrote is absent)" if "Catalog" in detail else ""
+        raise StoreError(f"query refused: {detail}{absent}; views: {', '.join(sorted(views))}") from None
+    finally:
+        con.close()
+    if args.out is not None:
+        args.out.parent.mkdir(parents=True, exist_ok=True)
+        if args.out.suffix.lower() == ".csv":
+            result.write_csv(args.out)
+        else:
+            result.write_parquet(args.out)
+        print(f"{result.height:,} rows written to {args.out}")
+        return EXIT_OK
+    # Off a terminal every column is printed whole, however wide the result.
+    console = _console(width=100_000)
+    shown = result.head(max(args.max_rows, 0))
+    console.print(_table(None, shown.columns, shown.rows()))
+    more = result.height - shown.height
+    console.print(
+        f"{result.height:,} rows" + (f", {more:,} not shown (use --out to write all)" if more else "")
+    )
+    return EXIT_OK
+
+
 # glibc's mallopt parameters and the values the command sets (bytes).
 _M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3
 _MMAP_THRESHOLD = 32 << 20
@@ -599,6 +723,8 @@ def main(argv: list[str] | None = None) -> int:
     try:
         if args.stage == "truth":
             return _truth(args)
+        if args.stage == "sql":
+            return _sql(args)
         return _serve(args) if args.stage == "serve" else _run_stage(args)
     except OutputInUseError as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)

@@ -32,7 +32,7 @@ from pipeline.features import StateSpace
 from pipeline.policies import DEFAULT_ACTIONS, SetbackRule
 from pipeline.store import DuckDBSettings
 
-STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "evaluate", "improve")
+STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "improve", "evaluate")
 """The stages a setting can shape, in the order they run."""
 
 PRESENCE_SOURCES: tuple[str, ...] = ("occupancy_flag", "schedule", "setback_hold")
@@ -286,7 +286,15 @@ class Config:
     cooling_days_per_year: Annotated[int, Strict(), Field(ge=1, le=366)] = _setting(
         122, stages=("evaluate", "improve"), unit="days"
     )
-    """Days a year the cooling schedule is in force, for annualising per-episode savings."""
+    """Season length for cooling: annual figures are episodes per observed cooling day times this."""
+    heating_days_per_year: Annotated[int, Strict(), Field(ge=1, le=366)] = _setting(
+        151, stages=("evaluate",), unit="days"
+    )
+    """Season length for heating (default November to March): annual figures of heating episodes use it."""
+    comfort_rise_limit_degree_hours: Annotated[float, Strict(), Field(ge=0)] = _setting(
+        0.0, stages=("evaluate",), unit="°C·h per episode"
+    )
+    """A policy is sent to a home only if the upper end of its comfort-change interval is at most this."""
     state: Annotated[StateSpace, BeforeValidator(_no_booleans("state"))] = _setting(
         stages=("episodes", "learn", "evaluate", "improve"), factory=StateSpace
     )

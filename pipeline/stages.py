@@ -26,6 +26,7 @@ from pipeline import evaluate as evaluation
 from pipeline import improve as improvement
 from pipeline import ingest as ingestion
 from pipeline import ledger, lineage, rules, schedule, shards, store
+from pipeline import recommend as recommending
 from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
 from pipeline.config import Config
 from pipeline.episodes import (
@@ -52,7 +53,7 @@ __all__ = [
     "run_all",
 ]
 
-STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "evaluate", "improve")
+STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "improve", "evaluate")
 """The stages of a run, in order; each reads what the ones before it left in the warehouse."""
 
 
@@ -117,6 +118,8 @@ class EvaluationSummary:
     horizon: pl.DataFrame
     tables: Mapping[str, int] = field(default_factory=dict)
     work: StageWork = field(default_factory=lambda: StageWork("evaluate"))
+    recommendation_total: pl.DataFrame = field(default_factory=pl.DataFrame)
+    """Homes per policy (or kept on current behaviour, by reason) and their annual totals."""
 
 
 @dataclass(frozen=True)
@@ -305,6 +308,8 @@ EVALUATION_TABLES: tuple[str, ...] = (
     "policy",
     "diagnostics",
     "schedule",
+    "recommendation",
+    "recommendation_total",
 )
 """The ledger tables the evaluate stage writes, also kept in the warehouse as ``evaluation_<name>``."""
 
@@ -326,19 +331,33 @@ def _evaluation_tables(config: Config, candidates: tuple[rules.Candidate, ...]) 
             config.decision_points: behavior,
             other.decision_points: _load_behavior(con, f"behavior_{other.decision_points}", config),
         }
+        # Days the thermostat was in each mode: a mode's episodes are annualised over its season.
         days = store.frame(
             con,
-            "select premise_id, p.cohort, p.rate_plan_id, count(distinct h.local_date) as days_observed"
-            " from hourly h join premise p using (premise_id) group by all",
+            "select premise_id, p.cohort, p.rate_plan_id, h.mode_end as mode,"
+            " count(distinct h.local_date) as days_observed"
+            " from hourly h join premise p using (premise_id) where h.mode_end in ('cool', 'heat')"
+            " group by all",
         )
         by_choice = {config.decision_points: steps, other.decision_points: load_steps(con, "step_alternate")}
+        premises = store.query(con, "premise_coverage")
+        # Learned policies count only when their stage runs before this one, so lineage keeps them current.
+        learned_savings, safety = (
+            recommending.learned_tables(con) if "improve" in _upstream("evaluate") else (None, None)
+        )
     result = evaluation.evaluate_candidates(steps, behavior, days, config, candidates)
+    every_savings = result.savings
+    if learned_savings is not None:
+        every_savings = pl.concat([result.savings, learned_savings], how="diagonal_relaxed")
+    decided = recommending.recommend(every_savings, premises, config, safety)
     frames = {
         "horizon": evaluation.horizon_report(by_choice, config, fitted, candidates, days),
         "state_value": evaluation.state_values(steps),
         "savings": result.savings,
         "policy": result.policy,
         "diagnostics": result.diagnostics,
+        "recommendation": decided.homes,
+        "recommendation_total": decided.totals,
     }
     # Schedules: for the recommended premises once a recommendation frame is published beside
     # these, until then for every premise with every candidate that applies to it.
@@ -384,7 +403,9 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     for name in EVALUATION_TABLES:
         tables |= run.write(name, frames[name])
     work = StageWork("evaluate", build_id is not None, time.perf_counter() - started)
-    return EvaluationSummary(frames["savings"], frames["horizon"], tables, work)
+    return EvaluationSummary(
+        frames["savings"], frames["horizon"], tables, work, frames["recommendation_total"]
+    )
 
 
 # ---- improve: learned policies and their safety test (pipeline/improve.py) ----

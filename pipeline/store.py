@@ -210,17 +210,29 @@ def fault_point(name: str) -> None:
         os.kill(os.getpid(), signal.SIGKILL)
 
 
+def view_files() -> list[str]:
+    """Names of the SQL files of analyst views: ``views`` first, then every ``views_<topic>`` in order."""
+    return ["views", *sorted(p.stem for p in SQL_DIR.glob("views_*.sql"))]
+
+
 def connect_ledger(ledger: Path, settings: DuckDBSettings | None = None) -> duckdb.DuckDBPyConnection:
-    """An in-memory DuckDB connection with the analyst views of ``sql/views.sql`` over the ledger.
+    """An in-memory DuckDB connection with the analyst views of ``sql/views*.sql`` over the ledger.
 
     Views of tables the ledger holds no file of are left out (a query naming one says the
-    table does not exist) rather than failing the whole connection.
+    table does not exist) rather than failing the whole connection; each appears on the
+    first connection after a run writes its table. A folder with no ``run`` table is no
+    ledger and is refused (``StoreError``).
     """
+    root = Path(ledger).resolve()
+    if not (root / "run").is_dir():
+        raise StoreError(
+            f"no ledger at {root}: give the ledger folder a run wrote (the ledger/ inside its --out folder)"
+        )
     con = duckdb.connect()
     execute(con, "set TimeZone = 'UTC'")
     apply_settings(con, settings or DuckDBSettings())
-    execute(con, "set variable ledger_root = $root", {"root": str(Path(ledger).resolve())})
-    for name in sorted(p.stem for p in SQL_DIR.glob("views*.sql")):
+    execute(con, "set variable ledger_root = $root", {"root": str(root)})
+    for name in view_files():
         for statement in [s for s in sql_text(name).split(";\n") if _has_code(s)]:
             try:
                 execute(con, statement)
