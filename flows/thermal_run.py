@@ -26,7 +26,7 @@ from prefect.task_runners import TaskRunner, ThreadPoolTaskRunner
 from pipeline import config as config_module
 from pipeline import shards, stages
 from pipeline.config import Config, ConfigError
-from pipeline.ledger import Run
+from pipeline.ledger import Run, exclusive_output
 
 
 @contextmanager
@@ -144,13 +144,14 @@ def thermal_ledger_run(
 ) -> stages.RunSummary:
     """Ingest, build episodes, learn and evaluate; write the ledger for one run, then its report."""
     config = config_module.load(config_path, overrides)
-    run = Run(config)
-    results = {}
-    for name in stages.STAGES:
-        if name == "episodes":
-            results[name] = episodes_mapped(config, run)
-        else:
-            results[name] = STAGE_TASKS[name](config, run)
-    finish_task(config, run, results)
-    publish_artifacts(report_task(config, run.run_id))
+    with exclusive_output(config.out, "(thermal-ledger flow)"):
+        run = Run(config)
+        results = {}
+        for name in stages.STAGES:
+            if name == "episodes":
+                results[name] = episodes_mapped(config, run)
+            else:
+                results[name] = STAGE_TASKS[name](config, run)
+        finish_task(config, run, results)
+        publish_artifacts(report_task(config, run.run_id))
     return stages.summary(run, results)

@@ -26,13 +26,13 @@ from pipeline.behavior import BehaviorInputError
 from pipeline.config import Config, ConfigError
 from pipeline.estimators import EstimatorInputError
 from pipeline.ingest import IngestError
-from pipeline.ledger import Run
+from pipeline.ledger import OutputInUseError, Run, exclusive_output
 from pipeline.policies import PolicyError
 from pipeline.report.ledger_data import ReportError, report_path
 from pipeline.simulate.lake import CHUNK_PREMISES
 from pipeline.store import StoreError
 
-EXIT_OK, EXIT_REFUSED, EXIT_USAGE = 0, 1, 2
+EXIT_OK, EXIT_REFUSED, EXIT_USAGE, EXIT_BUSY = 0, 1, 2, 3
 
 USER_ERRORS: tuple[type[Exception], ...] = (
     ConfigError,
@@ -442,6 +442,13 @@ def _run_flow(args: argparse.Namespace, overrides: dict[str, Any]) -> stages.Run
 def _run_stage(args: argparse.Namespace) -> int:
     overrides, flags = overrides_from(args), flags_from(args)
     config = config_module.load(args.config, overrides, flags)
+    with exclusive_output(config.out, f"(thermal-ledger {args.stage})"):
+        return _stage_locked(args, config, overrides, flags)
+
+
+def _stage_locked(
+    args: argparse.Namespace, config: Config, overrides: dict[str, Any], flags: dict[str, Any]
+) -> int:
     if args.stage == "ingest":
         _require_lake(config)
         summary = stages.ingest(config, Run(config))
@@ -557,6 +564,9 @@ def main(argv: list[str] | None = None) -> int:
             return _serve(args)
         with progress.shown():
             return _run_stage(args)
+    except OutputInUseError as exc:
+        print(f"thermal-ledger: {exc}", file=sys.stderr)
+        return EXIT_BUSY
     except USER_ERRORS as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)
         return EXIT_USAGE

@@ -23,7 +23,7 @@ import polars as pl
 
 from pipeline import evaluate as evaluation
 from pipeline import ingest as ingestion
-from pipeline import lineage, shards, store
+from pipeline import ledger, lineage, shards, store
 from pipeline import progress as reporting
 from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
 from pipeline.config import Config
@@ -379,6 +379,7 @@ def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
     for result in results.values():
         row_counts |= dict(result.tables)
     row_counts |= run.write("stage_work", stage_work_frame([result.work for result in results.values()]))
+    row_counts |= run.write("abandoned_run", ledger.sweep_abandoned(config.ledger_path, run.run_id))
     with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
         return str(run.finish(row_counts, con))
 
@@ -413,7 +414,8 @@ def summary(run: Run, results: Mapping[str, Any]) -> RunSummary:
 
 def run_all(config: Config) -> RunSummary:
     """Every stage in order, without Prefect."""
-    run = Run(config)
-    results = {name: STAGE_FUNCTIONS[name](config, run) for name in STAGES}
-    finish(config, run, results)
+    with ledger.exclusive_output(config.out, "(thermal-ledger run)"):
+        run = Run(config)
+        results = {name: STAGE_FUNCTIONS[name](config, run) for name in STAGES}
+        finish(config, run, results)
     return summary(run, results)
