@@ -21,9 +21,9 @@ from typing import Any
 
 import polars as pl
 
+from pipeline import convergence, ledger, lineage, shards, store
 from pipeline import evaluate as evaluation
 from pipeline import ingest as ingestion
-from pipeline import ledger, lineage, shards, store
 from pipeline import progress as reporting
 from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
 from pipeline.config import Config
@@ -303,7 +303,14 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
     )
 
 
-EVALUATION_TABLES: tuple[str, ...] = ("horizon", "state_value", "savings", "policy", "diagnostics")
+EVALUATION_TABLES: tuple[str, ...] = (
+    "horizon",
+    "state_value",
+    "savings",
+    "policy",
+    "diagnostics",
+    "estimate_path",
+)
 """The ledger tables the evaluate stage writes, also kept in the warehouse as ``evaluation_<name>``."""
 
 
@@ -337,6 +344,8 @@ def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
         "savings": result.savings,
         "policy": result.policy,
         "diagnostics": result.diagnostics,
+        # The run report's "estimates as episodes accumulate" (program-wide policies).
+        "estimate_path": convergence.estimate_path(steps, behavior, result.policy, config),
     }
 
 

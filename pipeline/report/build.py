@@ -317,9 +317,13 @@ def trust_page(data: RunData, out: _Page) -> None:
             )
         )
     else:
-        out.chart(
-            fig.estimates_by_episodes(path, "n_episodes", "savings_usd_per_episode", "ci_low", "ci_high")
+        level = f"{_level(data):.0%}"
+        out.add(
+            "<p>Ordinary against weighted importance sampling over the program's episodes, oldest first,"
+            f" with {page.esc(level)} normal-approximation bands (the savings table keeps the bootstrap"
+            " intervals). Ordinary IS is unbiased but swings with each large weight; weighted IS settles.</p>"
         )
+        out.chart(fig.estimates_by_episodes(path))
     out.add("<h3>Importance weights</h3>")
     diagnostics = data.table("diagnostics")
     if diagnostics is None:

@@ -152,37 +152,45 @@ def recommendation_counts(counts: pl.DataFrame) -> Chart:
     return Chart("recommendations", "Homes per recommendation", figure, counts)
 
 
-def estimates_by_episodes(rows: pl.DataFrame, x: str, estimate: str, low: str, high: str) -> Chart:
-    """Estimates as episodes accumulate, one line and band per estimator (and policy)."""
-    groups = [c for c in ("policy_name", "estimator") if c in rows.columns]
-    rows = rows.sort([*groups, x])
-    keys = rows.select(groups).unique(maintain_order=True).rows() if groups else [()]
-    palette = PALETTE
+def estimates_by_episodes(rows: pl.DataFrame) -> Chart:
+    """Program savings as episodes accumulate: a panel per policy, a line and band per estimator."""
+    rows = rows.sort("policy_name", "mode", "estimator", "n_episodes")
+    panels = rows.select("policy_name", "mode").unique(maintain_order=True).rows()
+    estimators = rows["estimator"].unique(maintain_order=True).sort().to_list()
+    palette = colours(estimators)
     with style():
-        figure, (ax,) = _figure(3.4)
-        for i, key in enumerate(keys):
-            part = rows
-            for column, value in zip(groups, key, strict=True):
-                part = part.filter(pl.col(column) == value)
-            colour = palette[i % len(palette)]
-            xs = part[x].to_numpy().astype(float)
-            ax.fill_between(
-                xs,
-                part[low].to_numpy().astype(float),
-                part[high].to_numpy().astype(float),
-                color=colour,
-                alpha=0.18,
-            )
-            ax.plot(
-                xs, part[estimate].to_numpy().astype(float), color=colour, label=" / ".join(map(str, key))
-            )
-        ax.axhline(0.0, color=INK, linewidth=0.8)
-        ax.set_xlabel("episodes used, in the order they happened")
-        ax.set_ylabel("savings, USD per episode")
-        ax.set_title("Estimates as episodes accumulate (band: interval)")
-        ax.legend(frameon=False, fontsize=8)
-    plotted = rows.select([*groups, x, estimate, low, high])
-    return Chart("estimates-by-episodes", "Estimates as episodes accumulate", figure, plotted)
+        figure, axes = _figure(3.0, max(len(panels), 1))
+        for ax, (policy, mode) in zip(axes, panels, strict=False):
+            for name in estimators:
+                part = rows.filter(
+                    (pl.col("policy_name") == policy)
+                    & (pl.col("mode") == mode)
+                    & (pl.col("estimator") == name)
+                )
+                xs = part["n_episodes"].to_numpy().astype(float)
+                low = part["ci_low"].to_numpy().astype(float)
+                high = part["ci_high"].to_numpy().astype(float)
+                ax.fill_between(xs, low, high, color=palette[name], alpha=0.18, linewidth=0)
+                ax.plot(
+                    xs,
+                    part["savings_usd_per_episode"].to_numpy().astype(float),
+                    color=palette[name],
+                    label=name,
+                )
+            ax.axhline(0.0, color=INK, linewidth=0.8)
+            ax.set_title(f"{policy} ({mode})")
+            ax.set_xlabel("episodes used, oldest first")
+        axes[0].set_ylabel("savings, USD per episode")
+        axes[0].legend(frameon=False, fontsize=8)
+    plotted = rows.select(
+        "policy_name", "mode", "estimator", "n_episodes", "savings_usd_per_episode", "ci_low", "ci_high"
+    )
+    return Chart(
+        "estimates-by-episodes",
+        "Estimates as episodes accumulate (band: normal approximation)",
+        figure,
+        plotted,
+    )
 
 
 def weight_diagnostics(rows: pl.DataFrame) -> Chart:
