@@ -22,14 +22,14 @@ from rich.table import Table
 from rich.text import Text
 
 from pipeline import config as config_module
-from pipeline import ingest as ingestion
-from pipeline import stages, store
+from pipeline import progress, stages, store
 from pipeline.behavior import BehaviorInputError
 from pipeline.config import Config, ConfigError
 from pipeline.estimators import EstimatorInputError
 from pipeline.ingest import IngestError
 from pipeline.ledger import OutputInUseError, Run, exclusive_output
 from pipeline.policies import PolicyError
+from pipeline.report.ledger_data import ReportError, report_path
 from pipeline.simulate.lake import CHUNK_PREMISES
 from pipeline.simulate.params import SimulationError
 from pipeline.store import StoreError
@@ -50,6 +50,7 @@ USER_ERRORS: tuple[type[Exception], ...] = (
     BehaviorInputError,
     EstimatorInputError,
     PolicyError,
+    ReportError,
 )
 """Errors caused by the user's settings, files or order of stages: one line and exit 2."""
 
@@ -148,6 +149,23 @@ def build_parser() -> argparse.ArgumentParser:
             p.add_argument(
                 "--no-prefect", action="store_true", help="run the stages directly, without a Prefect flow"
             )
+    report = sub.add_parser(
+        "report",
+        help="write the run's report: one self-contained HTML file and its figures as PNGs, from the ledger",
+        description="Write <out>/report/<run_id>/report.html (program, trust and home pages; opens with no"
+        " network) and each figure as figures/<name>.png beside it, from the ledger of one run (default:"
+        " the newest). `run` writes it too.",
+        epilog=SETTINGS_HINT,
+    )
+    _common(report)
+    report.add_argument("--run", dest="run_id", metavar="RUN_ID", help="the run to report (default: newest)")
+    report.add_argument(
+        "--premise",
+        action="append",
+        default=[],
+        metavar="PREMISE_ID",
+        help="also give this home a page (repeatable; the setting report_premises lists more)",
+    )
     serve = sub.add_parser(
         "serve",
         help="register the run as a Prefect deployment on a cron schedule and run it here until stopped",
@@ -286,15 +304,6 @@ def print_ingest(summary: stages.IngestSummary, console: Console | None = None) 
         )
     for row in files.filter(pl.col("status").is_in(["refused", "missing"])).iter_rows(named=True):
         console.print(f"{row['status']}: {row['message']}", markup=False)
-
-
-def _progress(done: int, total: int, result: ingestion.FileResult) -> None:
-    print(
-        f"[{done}/{total}] {result.source_file}: {result.status}, {result.rows_read:,} rows read,"
-        f" {result.rows_quarantined:,} quarantined ({result.seconds:.1f} s)",
-        file=sys.stderr,
-        flush=True,
-    )
 
 
 def print_episodes(counts: stages.EpisodeCounts, console: Console | None = None) -> None:
@@ -474,6 +483,13 @@ def print_summary(
     )
 
 
+def print_report_path(path: Path, console: Console | None = None) -> None:
+    """Where the run's report is."""
+    (console or _console()).print(
+        f"report: {path} (opens in any browser, no network needed)", markup=False, soft_wrap=True
+    )
+
+
 def settings_markdown() -> str:
     """The settings reference as markdown: the text of the committed SETTINGS.md."""
     lines = [
@@ -552,7 +568,7 @@ def _stage_locked(
 ) -> int:
     if args.stage == "ingest":
         _require_lake(config)
-        summary = stages.ingest(config, Run(config), progress=_progress)
+        summary = stages.ingest(config, Run(config))
         print_ingest(summary)
         return EXIT_REFUSED if summary.refused else EXIT_OK
     if args.stage == "run":
@@ -561,7 +577,23 @@ def _stage_locked(
         console = _console()
         print_ingest(result.ingest, console)
         print_summary(result, config.confidence, console)
+        if args.no_prefect:
+            from pipeline.report import report_run
+
+            report_run(config, result.run_id)
+        print_report_path(report_path(config.out, result.run_id), console)
         return EXIT_REFUSED if result.ingest.refused else EXIT_OK
+    if args.stage == "report":
+        from pipeline.report import report_run
+
+        made = report_run(config, args.run_id, tuple(args.premise))
+        _console().print(
+            f"report of run {made.run_id}: {made.html} ({len(made.pngs)} figures, also as PNG in"
+            f" {made.html.parent / 'figures'}; home pages: {', '.join(made.homes) or 'none'})",
+            markup=False,
+            soft_wrap=True,
+        )
+        return EXIT_OK
     run = Run(config)
     result = stages.STAGE_FUNCTIONS[args.stage](config, run)
     if args.stage == "episodes":
@@ -716,7 +748,8 @@ def main(argv: list[str] | None = None) -> int:
     if args.stage == "bench":
         from pipeline.bench import main_bench
 
-        return main_bench(args.premises, args.days, args.seed, args.work, args.csv, args.reuse)
+        with progress.shown():
+            return main_bench(args.premises, args.days, args.seed, args.work, args.csv, args.reuse)
     if args.stage == "settings":
         print_settings(args.markdown)
         return EXIT_OK
@@ -725,7 +758,10 @@ def main(argv: list[str] | None = None) -> int:
             return _truth(args)
         if args.stage == "sql":
             return _sql(args)
-        return _serve(args) if args.stage == "serve" else _run_stage(args)
+        if args.stage == "serve":
+            return _serve(args)
+        with progress.shown():
+            return _run_stage(args)
     except OutputInUseError as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)
         return EXIT_BUSY

@@ -366,6 +366,11 @@ class Config:
     (80 % of RAM)."""
     duckdb_preserve_insertion_order: Annotated[bool, Strict()] = _setting(True, stages=(), execution=True)
     """Whether DuckDB keeps rows in the order read where a query does not sort; false can use less memory."""
+    # ---- the run report (read from the ledger after the stages; shapes no stage) ----
+    report_homes: Annotated[int, Strict(), Field(ge=0)] = _setting(3, stages=(), execution=True, unit="homes")
+    """Homes with the largest and, apart, the smallest estimated savings given a page each in the report."""
+    report_premises: tuple[Name, ...] = _setting((), stages=(), execution=True)
+    """Premises always given a page in the report (`thermal-ledger report --premise` adds more)."""
 
     def __post_init__(self) -> None:
         _check_rules(self)

@@ -22,10 +22,11 @@ from typing import Any
 
 import polars as pl
 
+from pipeline import convergence, ledger, lineage, rules, schedule, shards, store
 from pipeline import evaluate as evaluation
 from pipeline import improve as improvement
 from pipeline import ingest as ingestion
-from pipeline import ledger, lineage, rules, schedule, shards, store
+from pipeline import progress as reporting
 from pipeline import recommend as recommending
 from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
 from pipeline.config import Config
@@ -170,7 +171,8 @@ def ingest(config: Config, run: Run, progress: ingestion.Progress | None = None)
     if config.warehouse_path.exists():
         with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
             reread = bool(lineage.changed(con, "ingest", config.stage_settings("ingest")))
-    results = ingestion.results_frame(ingestion.ingest(config, progress=progress, reread=reread))
+    files = ingestion.ingest(config, progress=progress or reporting.counter("ingest"), reread=reread)
+    results = ingestion.results_frame(files)
     with store.warehouse(config.warehouse_path, settings=config.duckdb) as con, store.transaction(con):
         loaded = store.execute(
             con,
@@ -187,12 +189,16 @@ def plan_episodes(config: Config) -> tuple[shards.Shard, ...]:
     """The episode stage's shards of premises, each with the fingerprint of its inputs."""
     _checked(config, "episodes")
     with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
-        return shards.plan(con, config, sql_params(config))
+        plan = shards.plan(con, config, sql_params(config))
+    reporting.begin("episodes", len(plan), "episodes: shards of premises")
+    return plan
 
 
 def episode_shard(config: Config, shard: shards.Shard) -> shards.ShardWork:
     """Build (or reuse) one shard's hourly grid, episodes and steps; runs on any worker."""
-    return shards.build_shard(config, shard, sql_params(config))
+    work = shards.build_shard(config, shard, sql_params(config))
+    reporting.advance("episodes")
+    return work
 
 
 def finish_episodes(
@@ -216,6 +222,7 @@ def finish_episodes(
             )
         summary = store.query(con, "episode_summary")
     shards.remove_stale(config, plan)
+    reporting.done("episodes")
     tables = {"hourly": counts.hours, "episode": counts.episodes, "step": counts.steps}
     tables |= run.write("episode_summary", summary)
     tables |= run.write("state_lookup", config.state.lookup())
@@ -265,6 +272,7 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
     """
     started = time.perf_counter()
     _checked(config, "learn")
+    reporting.begin("learn", None, "learn: fitting the behaviour model")
     build_id = _build_id(config, "learn")
     if build_id is not None:
         with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
@@ -290,6 +298,7 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
         counts = top.group_by("habit_type").len()
         found = dict(zip(counts["habit_type"].to_list(), counts["len"].to_list(), strict=True))
         per_type = tuple(found.get(z, 0) for z in range(1, model.n_types + 1))
+    reporting.done("learn")
     return BehaviorSummary(
         config.behavior_model,
         model.n_types,
@@ -310,6 +319,7 @@ EVALUATION_TABLES: tuple[str, ...] = (
     "schedule",
     "recommendation",
     "recommendation_total",
+    "estimate_path",
 )
 """The ledger tables the evaluate stage writes, also kept in the warehouse as ``evaluation_<name>``."""
 
@@ -358,6 +368,8 @@ def _evaluation_tables(config: Config, candidates: tuple[rules.Candidate, ...]) 
         "diagnostics": result.diagnostics,
         "recommendation": decided.homes,
         "recommendation_total": decided.totals,
+        # The run report's "estimates as episodes accumulate" (program-wide policies).
+        "estimate_path": convergence.estimate_path(steps, behavior, result.policy, config),
     }
     # Schedules: for the recommended premises once a recommendation frame is published beside
     # these, until then for every premise with every candidate that applies to it.
@@ -379,6 +391,7 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     # The rule file is read first, so a mistake in it is reported before any work.
     candidates = rules.candidates_for(config)
     _checked(config, "evaluate")
+    reporting.begin("evaluate", None, "evaluate: candidate policies")
     build_id = _build_id(config, "evaluate", rules.digest(candidates))
     if build_id is not None:
         with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
@@ -402,6 +415,7 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     tables: dict[str, int] = {}
     for name in EVALUATION_TABLES:
         tables |= run.write(name, frames[name])
+    reporting.done("evaluate")
     work = StageWork("evaluate", build_id is not None, time.perf_counter() - started)
     return EvaluationSummary(
         frames["savings"], frames["horizon"], tables, work, frames["recommendation_total"]

@@ -37,6 +37,10 @@ create or replace view shard_work as
     select * from published('shard_work');
 create or replace view stage_work as
     select * from published('stage_work');
+-- Program savings of each program-wide policy as episodes accumulate (in the order they
+-- happened): ordinary and weighted IS with normal-approximation bands (pipeline/convergence.py).
+create or replace view estimate_path as
+    select * from published('estimate_path');
 create or replace view latest_run as
     select run_id from run order by finished_at desc limit 1;
 create or replace view savings_latest as
