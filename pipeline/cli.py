@@ -350,6 +350,10 @@ def print_evaluation(
         " see the ledger's savings table (scope = 'premise')"
         " or the analyst view savings_by_premise (sql/views.sql)."
     )
+    if (evaluation.savings["mode"] == "heat").any():
+        from pipeline.evaluate import BILL_NOTES
+
+        console.print(f"Heating rows: {BILL_NOTES['heat']} (column bill_note).")
 
 
 def print_summary(

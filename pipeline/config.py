@@ -285,6 +285,10 @@ class Config:
         122, stages=("evaluate",), unit="days"
     )
     """Days a year the cooling schedule is in force, for annualising per-episode savings."""
+    heating_days_per_year: Annotated[int, Strict(), Field(ge=1, le=366)] = _setting(
+        151, stages=("evaluate",), unit="days"
+    )
+    """Days a year the heating schedule is in force (November to March), for annualising heating rows."""
     state: Annotated[StateSpace, BeforeValidator(_no_booleans("state"))] = _setting(
         stages=("episodes", "learn", "evaluate"), factory=StateSpace
     )

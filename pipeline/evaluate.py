@@ -211,7 +211,22 @@ def evaluate_policy(
             )
             rows.append(_with_scope(joined, scope))
         diags.append(_with_scope(diag, scope))
-    return _finish_savings(pl.concat(rows), premise_cohort, config), pl.concat(diags)
+    days_per_year = season_days(config, steps)
+    return _finish_savings(pl.concat(rows), premise_cohort, config, days_per_year), pl.concat(diags)
+
+
+def season_days(config: Config, steps: pl.DataFrame) -> int:
+    """Days a year the steps' season is in force: heating days for heating steps, else cooling days."""
+    heating = "mode" in steps.columns and steps.height > 0 and steps["mode"][0] == "heat"
+    return config.heating_days_per_year if heating else config.cooling_days_per_year
+
+
+BILL_NOTES = {
+    "cool": "electric meter data: the whole bill effect of cooling",
+    "heat": "electric meter data only: the gas a furnace burns is not in it, so a gas-heated home's"
+    " bill effect is larger than shown",
+}
+"""What a savings row's USD and kWh cover, per mode (column ``bill_note``)."""
 
 
 def _premise_sums(
@@ -285,13 +300,16 @@ _SHRUNK = {
 }
 
 
-def _finish_savings(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config) -> pl.DataFrame:
+def _finish_savings(
+    rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config, days_per_year: int | None = None
+) -> pl.DataFrame:
     """Savings, status, recommendation, shrinkage toward the cohort and annual figures.
 
     ``episodes_per_year`` is the scope's episodes per observed premise-day times
-    ``cooling_days_per_year``, and every annual figure is the per-episode figure
-    beside it times that. A row with insufficient evidence hides its own figures,
-    per episode and annual alike; a premise keeps its cohort-shrunk ones.
+    ``days_per_year`` (the season's: ``cooling_days_per_year`` unless given), and every
+    annual figure is the per-episode figure beside it times that. A row with insufficient
+    evidence hides its own figures, per episode and annual alike; a premise keeps its
+    cohort-shrunk ones.
     """
     supported = (
         (pl.col("ess") >= config.min_ess)
@@ -317,7 +335,8 @@ def _finish_savings(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Co
     ]
     # Outside premise scope the shrunk figure is the row's own figure, so it is hidden with it.
     hidden_shrunk = thin & (pl.col("scope") != "premise")
-    per_year = pl.col("n_episodes") / pl.col("days_observed") * config.cooling_days_per_year
+    season = config.cooling_days_per_year if days_per_year is None else days_per_year
+    per_year = pl.col("n_episodes") / pl.col("days_observed") * season
     return rows.with_columns(
         *(pl.when(thin).then(None).otherwise(pl.col(c)).alias(c) for c in hidden),
         *(pl.when(hidden_shrunk).then(None).otherwise(pl.col(c)).alias(c) for c in _SHRUNK.values()),
@@ -445,7 +464,10 @@ def evaluate_candidates(
         pl.concat(savings)
         .select(*COLUMNS)
         .with_columns(
-            pl.lit(config.comfort_penalty_usd_per_degree_hour).alias("comfort_penalty_usd_per_degree_hour")
+            pl.lit(config.comfort_penalty_usd_per_degree_hour).alias("comfort_penalty_usd_per_degree_hour"),
+            pl.col("mode")
+            .replace_strict(BILL_NOTES, default=None, return_dtype=pl.String)
+            .alias("bill_note"),
         )
         .sort("policy_name", "mode", "scope", "key", "estimator")
     )
