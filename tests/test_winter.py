@@ -67,6 +67,24 @@ def test_committed_winter_lake_matches_its_manifest_and_a_regeneration(tmp_path)
     assert {rel: regenerated[rel] for rel in landing} == {rel: expected[rel] for rel in landing}
 
 
+def test_a_winter_lake_is_the_same_whatever_the_chunk_size(tmp_path):
+    """Simulating 3 winter homes at a time or all at once writes byte-identical landing and truth files
+    (each home's heating system comes from its own stream)."""
+    params = winter_params(n_premises=7, days=9)
+    generate_lake(tmp_path / "small", params=params, policy_values=True, chunk_premises=3)
+    generate_lake(tmp_path / "whole", params=params, policy_values=True, chunk_premises=1000)
+    assert manifest(tmp_path / "small") == manifest(tmp_path / "whole")
+
+
+def test_simulate_command_takes_the_winter_defaults_for_what_it_is_not_given(tmp_path):
+    """`simulate --season winter` without --start or --seed starts on 2026-12-01 with seed 20261201."""
+    from pipeline.simulate import main_simulate
+
+    summary = main_simulate(["--season", "winter", "--premises", "2", "--days", "3", "--out", str(tmp_path)])
+    assert (summary["season"], summary["start"], summary["seed"]) == ("winter", "2026-12-01", 20261201)
+    assert summary["n_premises"] == 2 and summary["days"] == 3
+
+
 def test_winter_lake_is_heating_only_with_both_systems_and_a_cold_snap():
     """Every thermostat row is in heat mode within the heating band; furnaces and heat pumps both occur;
     some hour is colder than -10 °C."""
