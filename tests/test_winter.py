@@ -171,3 +171,31 @@ def test_heating_safety_mask_keeps_every_setpoint_above_the_frozen_pipe_guard(wi
         chosen = rule.actions(config.state, keys, config.actions)
         column = np.searchsorted(np.asarray(config.actions), chosen)
         assert mask[home, keys, column].all(), rule.name
+
+
+def test_a_heating_comfort_below_the_frozen_pipe_guard_is_quarantined_with_file_row_and_reason(tmp_path):
+    """A premise whose heating comfort is 12 °C, below heat_band_c's 13 °C frozen-pipe guard (common
+    practice), is quarantined naming its file, row and reason; the other 39 premises load."""
+    import shutil
+
+    from pipeline import ingest
+
+    shutil.copytree(WINTER / "landing", tmp_path / "landing")
+    path = tmp_path / "landing" / "premises" / "premises.csv"
+    premises = pl.read_csv(path)
+    premises.with_columns(
+        pl.when(pl.col("premise_id") == "P0007")
+        .then(12)
+        .otherwise(pl.col("comfort_heat_c"))
+        .alias("comfort_heat_c")
+    ).write_csv(path)
+    config = config_module.load(overrides={"lake": str(tmp_path), "out": str(tmp_path / "out")})
+    ingest.ingest(config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        bad = con.execute(
+            "select source_file, row_number, reason from quarantine where source_file like '%premises.csv'"
+        ).fetchall()
+        loaded = con.execute("select count(*) from premise").fetchone()[0]
+    assert len(bad) == 1 and bad[0][2] == "setpoint_out_of_range"
+    assert bad[0][1] == premises["premise_id"].to_list().index("P0007") + 1
+    assert loaded == premises.height - 1
