@@ -404,6 +404,7 @@ def _replace_file(
             },
         )
         _refresh_log(con, folder, name, moved_from)
+        store.fault_point("ingest-file-commit")
         store.execute(con, "commit")
     except Exception:
         store.execute(con, "rollback")

@@ -367,6 +367,7 @@ def write_program_files(schedule: pl.DataFrame, folder: Path) -> list[Path]:
     ):
         name = _file_name(program)
         part.drop("rate_plan_id").write_csv(scratch / name)
+        store.fault_point("schedule-file-write")
         names.append(name)
     if folder.exists():
         shutil.rmtree(folder)
