@@ -23,7 +23,7 @@ from pathlib import Path
 import duckdb
 import polars as pl
 
-from pipeline import store
+from pipeline import landing_checks, store
 from pipeline.config import Config
 
 
@@ -285,6 +285,7 @@ def ingest_file(
     """
     started = time.perf_counter()
     name = _relative(path, config)
+    state = landing_checks.file_state(path)
     content_hash = _content_hash(path)
     seen = store.query(con, "logged_file", {"f": name}).rows()
     if seen and seen[0][0] == content_hash and not reread:
@@ -305,7 +306,7 @@ def ingest_file(
     except (duckdb.Error, OSError, EOFError, UnicodeError, ValueError, FileRefused) as exc:
         present, rejects = {}, 0
         failure = _unreadable(name, exc)
-    load = _Load(folder, path, name, content_hash, bool(seen), sorted(releasable or ()), started)
+    load = _Load(folder, path, name, content_hash, bool(seen), sorted(releasable or ()), started, state)
     try:
         try:
             return _replace_file(con, load, config, present, rejects, failure)
@@ -333,6 +334,8 @@ class _Load:
     """The file was loaded before (its old rows are replaced)."""
     releasable: list[str]
     started: float
+    state: landing_checks.FileState | None = None
+    """Size and modification time when ingest began reading it (see pipeline/landing_checks.py)."""
 
 
 def _unreadable(name: str, exc: BaseException) -> str:
@@ -404,6 +407,11 @@ def _replace_file(
             },
         )
         _refresh_log(con, folder, name, moved_from)
+        # --- a file still being written is rolled back unlogged (pipeline/landing_checks.py) ---
+        moving = landing_checks.changed_while_read(load.path, load.state, name) if load.state else None
+        if moving is not None:
+            store.execute(con, "rollback")
+            return FileResult(name, folder.name, "refused", 0, 0, 0, 0, moving), []
         store.fault_point("ingest-file-commit")
         store.execute(con, "commit")
     except Exception:
