@@ -192,9 +192,16 @@ def ingest(config: Config, progress: Progress | None = None, reread: bool = Fals
     if not landing.is_dir():
         raise LakeNotFound(f"{landing} is not a folder: --lake must hold landing/")
     work = [(folder, path) for folder in FOLDERS for path in landing_files(config.lake, folder.name)]
+    # --- a symlink out of the lake is refused unread (pipeline/landing_checks.py) ---
+    outside = set(landing_checks.outside_lake([path for _, path in work], lake))
+    work = [(folder, path) for folder, path in work if path not in outside]
     by_name = {_relative(path, config): (folder, path) for folder, path in work}
     unknown = _unknown_folders(landing)
     results: dict[str, FileResult] = {r.source_file: r for r in unknown}
+    for path in sorted(outside):
+        name = str(path.relative_to(lake))
+        message = f"{name}: a link to a file outside the lake, not read; copy the file into the lake"
+        results[name] = FileResult(name, path.parent.name, "refused", 0, 0, 0, 0, message)
     with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
         store.run_sql(con, "schema")
         if not any(folder.name == "meter" for folder, _ in work):

@@ -43,3 +43,9 @@ def changed_while_read(path: Path, before: FileState, name: str) -> str | None:
         f"{name}: still being written ({what} changed while it was read: {before.size} -> {now.size} bytes);"
         " not loaded, the next run reads it whole"
     )
+
+
+def outside_lake(paths: list[Path], lake: Path) -> list[Path]:
+    """The ``paths`` that resolve outside ``lake`` (a symlink out of it): refused without being read."""
+    root = Path(lake).resolve()
+    return [p for p in paths if not p.resolve().is_relative_to(root)]

@@ -92,3 +92,19 @@ def test_a_half_written_file_is_refused_with_a_reason_and_the_finished_file_load
             "select count(*) from quarantine where source_file = $f", {"f": result.source_file}
         )
         assert left.fetchall() == [(0,)]
+
+
+def test_a_symlink_out_of_the_lake_is_refused_unread_and_the_rest_loads(tmp_path):
+    """A link to a file outside the lake is not read: refused with a reason, nothing of it stored."""
+    secret = tmp_path / "elsewhere" / "private.csv"
+    secret.parent.mkdir()
+    secret.write_text(HEAD + "".join(ROWS))
+    config = lake_config(_lake(tmp_path / "lake"))
+    (config.lake / "landing/meter/m.csv").write_text(HEAD + "".join(ROWS[:3]))
+    (config.lake / "landing/meter/linked.csv").symlink_to(secret)
+    result, loaded, logged = _meter(config, "landing/meter/linked.csv")
+    assert result.status == "refused" and "outside the lake" in result.message
+    assert (loaded, logged) == (3, [])
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        rows = con.execute("select count(*) from quarantine where source_file like '%linked%'").fetchall()
+        assert rows == [(0,)]
