@@ -360,10 +360,10 @@ class Config:
     )
     """Threads each DuckDB connection may use; 0 leaves DuckDB's default (one per core)."""
     duckdb_memory_limit: Annotated[Name, AfterValidator(_MEMORY_SIZE)] = _setting(
-        "", stages=(), execution=True, unit="bytes"
+        "2GB", stages=(), execution=True, unit="bytes"
     )
-    """Memory each DuckDB connection may hold before it spills to disk; empty leaves DuckDB's default
-    (80 % of RAM)."""
+    """Memory each DuckDB connection may hold before it spills to disk (beside the warehouse); the default
+    keeps a 10,000-home CSV ingest near 2 GiB; empty leaves DuckDB's default (80 % of RAM)."""
     duckdb_preserve_insertion_order: Annotated[bool, Strict()] = _setting(True, stages=(), execution=True)
     """Whether DuckDB keeps rows in the order read where a query does not sort; false can use less memory."""
     # ---- the run report (read from the ledger after the stages; shapes no stage) ----
