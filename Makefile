@@ -20,6 +20,8 @@ $(STAMP): pyproject.toml | $(BIN)/python
 # failure on a machine without network).
 demo: $(STAMP)
 	@PREFECT_SERVER_ANALYTICS_ENABLED=false $(BIN)/thermal-ledger run --lake $(LAKE) --out $(OUT)
+	@# Simulated lakes only (the sample lake is one): every policy of the run against the simulator's truth.
+	@if [ -d $(LAKE)/truth ]; then $(BIN)/thermal-ledger truth --lake $(LAKE) --out $(OUT); fi
 
 test: $(STAMP)
 	$(BIN)/python -m pytest

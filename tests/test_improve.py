@@ -333,3 +333,10 @@ def test_truth_rows_pair_every_learned_row_with_held_out_episodes_only(scored):
     assert scored.rows.filter(pl.col("true_savings_usd_per_episode").is_null()).is_empty()
     line = truth.summary_line(scored.rows)
     assert "learned portfolio policy true savings" in line and "best candidate" in line
+
+
+def test_truth_refuses_a_lake_the_simulator_did_not_make_and_a_wrong_seed(tmp_path, sample_lake_run):
+    with pytest.raises(truth.TruthError, match="thermal-ledger simulate"):
+        truth.lake_params(tmp_path, 1)
+    with pytest.raises(truth.TruthError, match="--sim-seed"):
+        truth.lake_params(sample_lake_run.config.lake, 7)
