@@ -108,7 +108,7 @@ def episodes_mapped(config: Config, run: Run) -> stages.EpisodeSummary:
 def thermal_ledger_run(
     config_path: str | None = None, overrides: dict[str, Any] | None = None
 ) -> stages.RunSummary:
-    """Ingest, build episodes, learn and evaluate; write the ledger for one run."""
+    """Ingest, build episodes, learn, evaluate and improve; write the ledger for one run."""
     config = config_module.load(config_path, overrides)
     run = Run(config)
     results = {}
