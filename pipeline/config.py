@@ -344,6 +344,10 @@ class Config:
         0.0, stages=("improve",), unit="probability"
     )
     """Share of the moved probability spread over well-sampled allowed actions the residents take."""
+    improve_min_probability: Annotated[float, Strict(), Field(ge=0, lt=1)] = _setting(
+        0.0, stages=("improve",), unit="probability"
+    )
+    """A home's action below this behaviour probability keeps it and gets none of the moved mass."""
     improve_min_episodes: Count = _setting(200, stages=("improve",), unit="episodes")
     """Fewest learning and held-out episodes a scope needs for a policy to be learned and tested."""
     improve_scopes: Annotated[
