@@ -343,6 +343,13 @@ def for_run(
         {"policy_name": [k[0] for k in tables], "mode": [k[1] for k in tables]},
         schema={"policy_name": pl.Utf8, "mode": pl.Utf8},
     )
+    unknown = assignments.join(known, on="policy_name", how="anti")
+    if unknown.height:
+        row = unknown.row(0, named=True)
+        raise ScheduleError(
+            f"premise {row['premise_id']}: policy {row['policy_name']!r} is to be sent but the evaluation"
+            " has no table for it (its policy frame lists the policies it can plan)"
+        )
     plans = premises.join(assignments, on="premise_id").join(known, on=["policy_name", "mode"])
     return setpoint_plans(plans, absences, tiers, tables, config)
 

@@ -322,3 +322,23 @@ def _grain_con(schedule: pl.DataFrame):
     )
     con.execute("create table schedule as select * from schedule_frame")
     return con
+
+
+def test_a_recommended_policy_the_evaluation_never_scored_is_refused(sample_lake_run):
+    """A recommendation naming a policy without a table is one line naming the premise and the policy."""
+    from pipeline import rules, store
+    from pipeline.schedule import for_run
+
+    config = sample_lake_run.config
+    recommendation = pl.DataFrame(
+        {"premise_id": ["P0001"], "policy": ["learned-x"], "decision": ["send"], "reason": [None]},
+        schema_overrides={"reason": pl.Utf8},
+    )
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
+        policy = store.frame(con, "select * from evaluation_policy")
+        with pytest.raises(ScheduleError, match="^premise P0001: policy 'learned-x' is to be sent but"):
+            for_run(con, config, rules.candidates_for(config), policy, recommendation)
+        sent = recommendation.with_columns(pl.lit("setback-2").alias("policy"))
+        plan = for_run(con, config, rules.candidates_for(config), policy, sent)
+    assert set(plan["premise_id"]) == {"P0001"} and set(plan["policy_name"]) == {"setback-2"}
+    assert plan.height == 48
