@@ -369,7 +369,8 @@ def write_program_files(schedule: pl.DataFrame, folder: Path) -> list[Path]:
         shutil.rmtree(scratch)
     scratch.mkdir(parents=True)
     names = []
-    for (program,), part in schedule.sort("rate_plan_id", "premise_id").group_by(
+    order = ["rate_plan_id", "premise_id", "policy_name", "mode", "day_type", "outdoor_band", "hour"]
+    for (program,), part in schedule.sort(order, nulls_last=False).group_by(
         ["rate_plan_id"], maintain_order=True
     ):
         name = _file_name(program)
