@@ -306,10 +306,12 @@ def test_sample_lake_schedule_ledger_and_program_files(sample_lake_run):
     files = {path.stem: pl.read_csv(path) for path in run_folder.glob("*.csv")}
     assert set(files) == set(schedule["rate_plan_id"])
     assert sum(f.height for f in files.values()) == schedule.height
+    order = ["premise_id", "policy_name", "mode", "day_type", "outdoor_band", "hour"]
     for plan_id, rows in files.items():
         assert set(rows["premise_id"]) == set(
             schedule.filter(pl.col("rate_plan_id") == plan_id)["premise_id"]
         )
+        assert rows.equals(rows.sort(order, nulls_last=False, maintain_order=True))
 
 
 def _grain_con(schedule: pl.DataFrame):
