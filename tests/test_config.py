@@ -17,7 +17,13 @@ from pipeline.features import StateSpace
 
 ROOT = Path(__file__).resolve().parent.parent
 
-STAGE_MODULES = {"ingest": "ingest", "episodes": "episodes", "learn": "behavior", "evaluate": "evaluate"}
+STAGE_MODULES = {
+    "ingest": "ingest",
+    "episodes": "episodes",
+    "learn": "behavior",
+    "evaluate": "evaluate",
+    "improve": "improve",
+}
 """The module whose code does each stage's work (pipeline/<module>.py)."""
 
 
