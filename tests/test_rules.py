@@ -18,6 +18,7 @@ from pipeline.features import StateSpace
 from pipeline.policies import SetbackRule
 from pipeline.rules import Candidate, RuleFileError, read_rule_file
 from tests.test_evaluate import _logged_steps
+from tests.test_schedule import assert_schedule_grain
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -433,7 +434,9 @@ def test_the_demo_rule_file_on_the_sample_lake_scores_each_rule_on_its_premises(
     shutil.copytree(sample_lake_run.config.out, tmp_path / "out")
     rule_file = tmp_path / "candidates.toml"
     shutil.copy(ROOT / "sample_lake" / "candidates.toml", rule_file)
-    config = dataclasses.replace(sample_lake_run.config, out=tmp_path / "out", candidate_file=rule_file)
+    config = dataclasses.replace(
+        sample_lake_run.config, out=tmp_path / "out", candidate_file=rule_file, schedule_for="every_candidate"
+    )
     run = Run(config)
     result = stages.evaluate(config, run)
     stages.finish(config, run, {"evaluate": result})
@@ -455,10 +458,18 @@ def test_the_demo_rule_file_on_the_sample_lake_scores_each_rule_on_its_premises(
     assert set(schedule.filter(pl.col("policy_name") == "precool-peak")["premise_id"]) <= tou
     assert set(schedule.filter(pl.col("policy_name") == "setback-3-gradual")["premise_id"]) <= ostrel
     assert schedule["setpoint_c"].is_between(*config.cool_band_c).all()
-    assert {p.name for p in stages.schedule_folder(config, run).glob("*.csv")} == {
-        "TOU-SUMMER.csv",
-        "FLAT-STD.csv",
-    }
+    assert_schedule_grain(schedule)
+    # Every premise with usable episodes has a plan for every rule that applies to it.
+    assert set(schedule.filter(pl.col("policy_name") == "setback-1")["premise_id"]) == by_rule["setback-1"]
+    files = {p.stem: pl.read_csv(p) for p in stages.schedule_folder(config, run).glob("*.csv")}
+    assert set(files) == {"TOU-SUMMER", "FLAT-STD"}
+    assert sum(f.height for f in files.values()) == schedule.height
+    order = ["premise_id", "policy_name", "mode", "day_type", "outdoor_band", "hour"]
+    for plan_id, rows in files.items():
+        assert set(rows["premise_id"]) == set(
+            schedule.filter(pl.col("rate_plan_id") == plan_id)["premise_id"]
+        )
+        assert rows.equals(rows.sort(order, nulls_last=False, maintain_order=True))
     again = stages.evaluate(config, Run(config))
     assert again.work.reused
     rule_file.write_text(rule_file.read_text().replace("epsilon = 0.1", "epsilon = 0.2"))
