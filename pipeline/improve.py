@@ -87,6 +87,16 @@ SAFETY_COLUMNS = [
     "epsilon",
 ]
 """Columns of the ``safety_test`` ledger table, one row per mode and scope key."""
+SAFETY_FLOATS = [
+    "confidence",
+    "savings_estimate_usd",
+    "lower_bound_usd",
+    "comfort_change_usd",
+    "residual_low_usd",
+    "residual_high_usd",
+    "epsilon",
+]
+SAFETY_TEXT = ["outcome", "reason", "learner", "bound_method"]
 
 
 @dataclass(frozen=True)
@@ -725,9 +735,20 @@ def improve_mode(
             )
     return Improvement(
         policy=pl.concat(policies) if policies else _empty_policy(),
-        savings=pl.concat(savings, how="vertical_relaxed") if savings else pl.DataFrame(),
-        safety_test=pl.DataFrame(tests, infer_schema_length=None).select(SAFETY_COLUMNS),
+        savings=pl.concat(savings, how="vertical_relaxed") if savings else _empty_savings(),
+        safety_test=pl.DataFrame(tests, infer_schema_length=None)
+        .select(SAFETY_COLUMNS)
+        .with_columns(
+            # Columns no scope filled (nothing had enough evidence) keep their types.
+            pl.col(SAFETY_FLOATS).cast(pl.Float64),
+            pl.col(SAFETY_TEXT).cast(pl.Utf8),
+        ),
     )
+
+
+def _empty_savings() -> pl.DataFrame:
+    """No learned policy's savings rows (nothing had enough evidence): the key columns, no rows."""
+    return pl.DataFrame(schema=dict.fromkeys(("policy_name", "mode", "scope", "key", "estimator"), pl.Utf8))
 
 
 def _empty_policy() -> pl.DataFrame:
@@ -787,7 +808,7 @@ def improve(
         )
         .sort("policy_name", "mode", "scope", "key", "estimator")
         if savings
-        else pl.DataFrame()
+        else _empty_savings()
     )
     return Improvement(
         policy=pl.concat([p.policy for p in parts]).select(POLICY_COLUMNS),
