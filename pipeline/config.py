@@ -303,6 +303,10 @@ class Config:
         tuple[SetbackRule, ...], BeforeValidator(_no_booleans("candidate")), Field(min_length=1)
     ] = _setting(stages=("evaluate",), factory=_default_candidates)
     """Candidate setback rules evaluated in every run ([[candidate]] tables; candidate_file replaces them)."""
+    schedule_for: Annotated[Name, AfterValidator(_OneOf(("recommended", "every_candidate")))] = _setting(
+        "recommended", stages=("evaluate",)
+    )
+    """Plans in the schedule: 'recommended' (each home's policy to send) or 'every_candidate' (for review)."""
     candidate_file: Path | None = _setting(None, stages=("evaluate",), unit="file")
     """Rule file of candidate policies ([[rule]] tables; README), found beside the settings file naming it."""
     columns: dict[str, dict[str, str]] = _setting(stages=("ingest",), factory=dict)

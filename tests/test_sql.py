@@ -32,13 +32,15 @@ def _readme_queries() -> list[str]:
 
 @pytest.fixture(scope="module")
 def ledger(sample_lake_run, tmp_path_factory):
-    """The demo ledger, with a schedule table for its latest run when no stage of this checkout wrote one.
+    """The demo ledger, with schedule rows for its latest run when it has none (the sample lake's
+    recommendation may send no home anything, so its schedule is empty).
 
     The schedule rows follow the ledger contract (run_id, premise_id, policy_name, day_type, hour,
     setpoint_c): they exercise the views over the table, not the schedule itself.
     """
     source = sample_lake_run.config.ledger_path
-    if (source / "schedule").is_dir():
+    written = sorted((source / "schedule").glob("run_date=*/*.parquet"))
+    if written and pl.scan_parquet(written).select(pl.len()).collect().item() > 0:
         return source
     copy = tmp_path_factory.mktemp("ledger_with_schedule") / "ledger"
     shutil.copytree(source, copy)
@@ -58,8 +60,8 @@ def ledger(sample_lake_run, tmp_path_factory):
         }
     )
     folder = copy / "schedule" / f"run_date={run_date}"
-    folder.mkdir(parents=True)
-    frame.write_parquet(folder / f"{run_id}.parquet")
+    folder.mkdir(parents=True, exist_ok=True)
+    frame.write_parquet(folder / f"{run_id}.parquet")  # in place of the run's empty file, if any
     return copy
 
 
