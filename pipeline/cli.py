@@ -100,11 +100,20 @@ def build_parser() -> argparse.ArgumentParser:
         description="Simulate homes and write landing files a utility would receive, plus truth/ side files "
         "the pipeline never reads. The same seed gives the same files, bit for bit.",
     )
-    sim.add_argument("--premises", type=int, default=60, help="number of homes (default 60)")
-    sim.add_argument("--seed", type=int, default=20260601, help="seed of every draw (default 20260601)")
+    sim.add_argument(
+        "--season",
+        choices=("summer", "winter"),
+        default="summer",
+        help="summer: air conditioning; winter: gas furnaces and heat pumps, heating setpoints"
+        " (default summer); the defaults below are the season's",
+    )
+    sim.add_argument("--premises", type=int, help="number of homes (default 60 summer, 40 winter)")
+    sim.add_argument("--seed", type=int, help="seed of every draw (default 20260601 summer, 20261201 winter)")
     sim.add_argument("--out", type=Path, required=True, help="folder to write landing/ and truth/ into")
-    sim.add_argument("--start", type=dt.date.fromisoformat, default=dt.date(2026, 6, 1), help="first day")
-    sim.add_argument("--days", type=int, default=92, help="number of days (default 92)")
+    sim.add_argument(
+        "--start", type=dt.date.fromisoformat, help="first day (default 2026-06-01 summer, 2026-12-01 winter)"
+    )
+    sim.add_argument("--days", type=int, help="number of days (default 92 summer, 62 winter)")
     sim.add_argument(
         "--chunk-premises",
         type=int,
@@ -405,6 +414,10 @@ def print_evaluation(
         " or the analyst view savings_by_premise (sql/views.sql)."
     )
     print_recommendation(evaluation.recommendation_total, level, console)
+    if (evaluation.savings["mode"] == "heat").any():
+        from pipeline.evaluate import BILL_NOTES
+
+        console.print(f"Heating rows: {BILL_NOTES['heat']} (column bill_note).")
 
 
 def print_recommendation(totals: pl.DataFrame, level: str, console: Console) -> None:

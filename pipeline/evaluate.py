@@ -350,6 +350,14 @@ def _measure_columns(
     return pl.DataFrame(columns).select("group", *MEASURE_COLUMNS)
 
 
+BILL_NOTES = {
+    "cool": "electric meter data: the whole bill effect of cooling",
+    "heat": "electric meter data only: the gas a furnace burns is not in it, so a gas-heated home's"
+    " bill effect is larger than shown",
+}
+"""What a savings row's USD and kWh cover, per mode (column ``bill_note``)."""
+
+
 def _premise_sums(
     usd: pl.DataFrame, kwh: pl.DataFrame, name: str, multiplicity: np.ndarray
 ) -> tuple[estimators.ReplicateSums, estimators.ReplicateSums]:
@@ -676,7 +684,10 @@ def evaluate_candidates(
         pl.concat(savings)
         .select(*COLUMNS)
         .with_columns(
-            pl.lit(config.comfort_penalty_usd_per_degree_hour).alias("comfort_penalty_usd_per_degree_hour")
+            pl.lit(config.comfort_penalty_usd_per_degree_hour).alias("comfort_penalty_usd_per_degree_hour"),
+            pl.col("mode")
+            .replace_strict(BILL_NOTES, default=None, return_dtype=pl.String)
+            .alias("bill_note"),
         )
         .sort("policy_name", "mode", "scope", "key", "estimator")
     )
