@@ -22,7 +22,8 @@ $(STAMP): pyproject.toml | $(BIN)/python
 # The embedded Prefect server would otherwise try to send usage analytics (and log a
 # failure on a machine without network).
 demo: $(STAMP)
-	@PREFECT_SERVER_ANALYTICS_ENABLED=false $(BIN)/thermal-ledger run --lake $(LAKE) --out $(OUT)
+	@PREFECT_SERVER_ANALYTICS_ENABLED=false $(BIN)/thermal-ledger run --lake $(LAKE) --out $(OUT) \
+		$(if $(wildcard $(LAKE)/settings.toml),--config $(LAKE)/settings.toml)
 	@$(BIN)/thermal-ledger run --no-prefect --lake $(LAKE)/winter --out $(OUT)/winter \
 		--config $(LAKE)/winter/settings.toml
 

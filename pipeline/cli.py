@@ -19,20 +19,28 @@ import polars as pl
 from rich import box
 from rich.console import Console
 from rich.table import Table
+from rich.text import Text
 
 from pipeline import config as config_module
-from pipeline import ingest as ingestion
-from pipeline import stages
+from pipeline import progress, stages, store
 from pipeline.behavior import BehaviorInputError
 from pipeline.config import Config, ConfigError
 from pipeline.estimators import EstimatorInputError
 from pipeline.ingest import IngestError
 from pipeline.ledger import OutputInUseError, Run, exclusive_output
 from pipeline.policies import PolicyError
+from pipeline.report.ledger_data import ReportError, report_path
 from pipeline.simulate.lake import CHUNK_PREMISES
+from pipeline.simulate.params import SimulationError
 from pipeline.store import StoreError
+from pipeline.truth import TruthError
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE, EXIT_BUSY = 0, 1, 2, 3
+
+SAVINGS_BASELINE = (
+    "Savings are measured against the residents' current behaviour (their logged setpoint habits).\n"
+    "Annual figures: episodes per observed day times the season length (days_observed, season_days)."
+)
 
 USER_ERRORS: tuple[type[Exception], ...] = (
     ConfigError,
@@ -42,6 +50,7 @@ USER_ERRORS: tuple[type[Exception], ...] = (
     BehaviorInputError,
     EstimatorInputError,
     PolicyError,
+    ReportError,
 )
 """Errors caused by the user's settings, files or order of stages: one line and exit 2."""
 
@@ -82,6 +91,7 @@ def build_parser() -> argparse.ArgumentParser:
         "episodes": "build the hourly grid, away episodes and decision steps",
         "learn": "estimate the residents' behaviour policy from the logged steps",
         "evaluate": "estimate each candidate policy's value and savings off-policy",
+        "improve": "learn setpoint policies per scope and test them on later, held-out episodes",
         "run": "all stages in order as one Prefect flow, then print a summary",
     }
     sim = sub.add_parser(
@@ -117,6 +127,24 @@ def build_parser() -> argparse.ArgumentParser:
         action="store_true",
         help="residents also react to a daily state no file records (shows what confounding does)",
     )
+    truth = sub.add_parser(
+        "truth",
+        help="on a simulated lake, roll every policy of a run out in the simulator and score its estimates",
+        description="For a lake `thermal-ledger simulate` wrote: roll every candidate and learned policy of"
+        " the run (default the latest) out on the lake's own weather, prices, occupancy and base load, and"
+        " write ledger/policy_truth with each estimate, its interval and bound, the true savings and whether"
+        " the interval covered them and the bound held.",
+        epilog=SETTINGS_HINT,
+    )
+    _common(truth)
+    truth.add_argument("--run", help="run id to score (default: the ledger's latest run)")
+    truth.add_argument(
+        "--sim-seed", type=int, help="seed the lake was simulated with (default: the seed setting)"
+    )
+    truth.add_argument(
+        "--sim-start", type=dt.date.fromisoformat, help="the lake's first day (default 2026-06-01)"
+    )
+    truth.add_argument("--sim-days", type=int, help="the lake's number of days (default 92)")
     sim.add_argument("--manifest", action="store_true", help="write MANIFEST.sha256 of the generated files")
     sim.add_argument(
         "--policy-values",
@@ -130,6 +158,23 @@ def build_parser() -> argparse.ArgumentParser:
             p.add_argument(
                 "--no-prefect", action="store_true", help="run the stages directly, without a Prefect flow"
             )
+    report = sub.add_parser(
+        "report",
+        help="write the run's report: one self-contained HTML file and its figures as PNGs, from the ledger",
+        description="Write <out>/report/<run_id>/report.html (program, trust and home pages; opens with no"
+        " network) and each figure as figures/<name>.png beside it, from the ledger of one run (default:"
+        " the newest). `run` writes it too.",
+        epilog=SETTINGS_HINT,
+    )
+    _common(report)
+    report.add_argument("--run", dest="run_id", metavar="RUN_ID", help="the run to report (default: newest)")
+    report.add_argument(
+        "--premise",
+        action="append",
+        default=[],
+        metavar="PREMISE_ID",
+        help="also give this home a page (repeatable; the setting report_premises lists more)",
+    )
     serve = sub.add_parser(
         "serve",
         help="register the run as a Prefect deployment on a cron schedule and run it here until stopped",
@@ -159,6 +204,32 @@ def build_parser() -> argparse.ArgumentParser:
     bench.add_argument(
         "--reuse", action="store_true", help="require the lake already simulated there (never simulate)"
     )
+    sql = sub.add_parser(
+        "sql",
+        help="run a SQL query against the analyst views of a ledger; print a table or write CSV/Parquet",
+        description="Run one DuckDB SQL query against the analyst views over a ledger (sql/views*.sql:"
+        " run_latest, savings_latest, savings_by_premise, savings_comfort_by_cohort, recommendation_latest,"
+        " program_totals, schedule_latest, estimator_disagreement and one view per ledger table) and print"
+        " the result, or write it with --out. Every saving is measured against the residents' current"
+        " behaviour.",
+        epilog='Example: thermal-ledger sql "select * from program_totals" --ledger out/ledger',
+    )
+    sql.add_argument("query", help="the SQL query, quoted")
+    sql.add_argument(
+        "--ledger",
+        type=Path,
+        help="the ledger folder a run wrote (OUT/ledger, or OUT; default out/ledger when present)",
+    )
+    sql.add_argument(
+        "--out", type=Path, help="write the result to this .csv or .parquet file instead of printing"
+    )
+    sql.add_argument(
+        "--max-rows",
+        type=int,
+        default=200,
+        metavar="N",
+        help="rows printed at most (default 200; --out writes all)",
+    )
     ref = sub.add_parser(
         "settings",
         help="list every setting: meaning, unit, default, allowed values and the stages it shapes",
@@ -187,10 +258,10 @@ def flags_from(args: argparse.Namespace) -> dict[str, Any]:
 # ---- output ------------------------------------------------------------------------------------
 
 
-def _console() -> Console:
-    # Off a terminal: no colour, and wide enough that no header wraps.
+def _console(width: int = 240) -> Console:
+    # Off a terminal: no colour, and wide enough (``width``) that no header wraps.
     tty = sys.stdout.isatty()
-    return Console(file=sys.stdout, no_color=not tty, highlight=False, width=None if tty else 240)
+    return Console(file=sys.stdout, no_color=not tty, highlight=False, width=None if tty else width)
 
 
 def _table(title: str | None, columns: Sequence[str], rows: Sequence[Sequence[Any]]) -> Table:
@@ -200,7 +271,8 @@ def _table(title: str | None, columns: Sequence[str], rows: Sequence[Sequence[An
     for label, is_number in zip(columns, numeric, strict=True):
         table.add_column(label, justify="right" if is_number and rows else "left", no_wrap=True)
     for row in rows:
-        table.add_row(*(_cell(v) for v in row))
+        # Text, not markup: values from files or queries may hold square brackets.
+        table.add_row(*(Text(_cell(v)) for v in row))
     return table
 
 
@@ -241,15 +313,6 @@ def print_ingest(summary: stages.IngestSummary, console: Console | None = None) 
         )
     for row in files.filter(pl.col("status").is_in(["refused", "missing"])).iter_rows(named=True):
         console.print(f"{row['status']}: {row['message']}", markup=False)
-
-
-def _progress(done: int, total: int, result: ingestion.FileResult) -> None:
-    print(
-        f"[{done}/{total}] {result.source_file}: {result.status}, {result.rows_read:,} rows read,"
-        f" {result.rows_quarantined:,} quarantined ({result.seconds:.1f} s)",
-        file=sys.stderr,
-        flush=True,
-    )
 
 
 def print_episodes(counts: stages.EpisodeCounts, console: Console | None = None) -> None:
@@ -350,10 +413,71 @@ def print_evaluation(
         " see the ledger's savings table (scope = 'premise')"
         " or the analyst view savings_by_premise (sql/views.sql)."
     )
+    print_recommendation(evaluation.recommendation_total, level, console)
     if (evaluation.savings["mode"] == "heat").any():
         from pipeline.evaluate import BILL_NOTES
 
         console.print(f"Heating rows: {BILL_NOTES['heat']} (column bill_note).")
+
+
+def print_recommendation(totals: pl.DataFrame, level: str, console: Console) -> None:
+    """The program's recommendation: homes per policy (or kept, by reason) and their annual bill and kWh."""
+    if totals.is_empty():
+        return
+    rows = (
+        totals.filter(pl.col("scope") == "program")
+        .select(
+            "mode",
+            "decision",
+            pl.col("policy").fill_null("-"),
+            "reason",
+            "homes",
+            pl.col("bill_savings_usd_annual", "bill_ci_low_annual", "bill_ci_high_annual").round(0),
+            pl.col("savings_kwh_annual", "savings_kwh_ci_low_annual", "savings_kwh_ci_high_annual").round(0),
+        )
+        .rows()
+    )
+    labels = (
+        "mode",
+        "decision",
+        "policy",
+        "reason",
+        "homes",
+        "bill USD/year",
+        "low",
+        "high",
+        "kWh/year",
+        "low",
+        "high",
+    )
+    title = f"recommendation for the program: annual bill and kWh savings with {level} intervals"
+    console.print(_table(title, labels, rows))
+    console.print(SAVINGS_BASELINE)
+
+
+def print_improvement(result: stages.ImprovementSummary, console: Console | None = None) -> None:
+    """The safety test's outcome of every scope that had enough evidence, and a count of the rest."""
+    console = console or _console()
+    tested = result.safety_test.filter(pl.col("learner").is_not_null())
+    rows = tested.select(
+        "mode",
+        "scope",
+        "key",
+        "learner",
+        "n_held_out_episodes",
+        pl.col("savings_estimate_usd").round(3),
+        pl.col("lower_bound_usd").round(3),
+        "outcome",
+        "reason",
+    ).rows()
+    console.print(
+        _table(
+            "learned policies: safety test on held-out episodes (USD per episode)",
+            ("mode", "scope", "key", "learner", "held-out", "savings", "lower bound", "outcome", "why"),
+            rows,
+        )
+    )
+    console.print(result.describe(), markup=False)
 
 
 def print_summary(
@@ -365,8 +489,17 @@ def print_summary(
     print_episodes(summary.episodes, console)
     console.print(summary.behavior.describe(), markup=False)
     print_evaluation(summary.evaluation, confidence, console)
+    if summary.improvement is not None:
+        print_improvement(summary.improvement, console)
     console.print(
         "Estimates only: local codes, program rules and licensed practice govern what is sent to a device."
+    )
+
+
+def print_report_path(path: Path, console: Console | None = None) -> None:
+    """Where the run's report is."""
+    (console or _console()).print(
+        f"report: {path} (opens in any browser, no network needed)", markup=False, soft_wrap=True
     )
 
 
@@ -448,7 +581,7 @@ def _stage_locked(
 ) -> int:
     if args.stage == "ingest":
         _require_lake(config)
-        summary = stages.ingest(config, Run(config), progress=_progress)
+        summary = stages.ingest(config, Run(config))
         print_ingest(summary)
         return EXIT_REFUSED if summary.refused else EXIT_OK
     if args.stage == "run":
@@ -457,7 +590,23 @@ def _stage_locked(
         console = _console()
         print_ingest(result.ingest, console)
         print_summary(result, config.confidence, console)
+        if args.no_prefect:
+            from pipeline.report import report_run
+
+            report_run(config, result.run_id)
+        print_report_path(report_path(config.out, result.run_id), console)
         return EXIT_REFUSED if result.ingest.refused else EXIT_OK
+    if args.stage == "report":
+        from pipeline.report import report_run
+
+        made = report_run(config, args.run_id, tuple(args.premise))
+        _console().print(
+            f"report of run {made.run_id}: {made.html} ({len(made.pngs)} figures, also as PNG in"
+            f" {made.html.parent / 'figures'}; home pages: {', '.join(made.homes) or 'none'})",
+            markup=False,
+            soft_wrap=True,
+        )
+        return EXIT_OK
     run = Run(config)
     result = stages.STAGE_FUNCTIONS[args.stage](config, run)
     if args.stage == "episodes":
@@ -466,7 +615,29 @@ def _stage_locked(
         _console().print(f"{result.describe()}; behaviour policy rows: {result.rows:,}", markup=False)
     elif args.stage == "evaluate":
         print_evaluation(result, config.confidence)
+    elif args.stage == "improve":
+        print_improvement(result)
     stages.finish(config, run, {args.stage: result})
+    return EXIT_OK
+
+
+def _truth(args: argparse.Namespace) -> int:
+    """Score a run's estimates against the simulator's roll-outs; write ledger/policy_truth; one line."""
+    from pipeline import truth
+
+    config = config_module.load(args.config, overrides_from(args), flags_from(args))
+    stages._require_warehouse(config, "truth")
+    run_id, run_date, ledger = truth.read_run(config.ledger_path, args.run)
+    params = truth.lake_params(
+        config.lake, config.seed if args.sim_seed is None else args.sim_seed, args.sim_start, args.sim_days
+    )
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
+        behavior = stages._load_behavior(con, "behavior", config)
+        premises = store.frame(con, "select premise_id, cohort, comfort_cool_c, comfort_heat_c from premise")
+    rows = truth.policy_truth(config, ledger, behavior, premises, params)
+    stamped = rows.select(pl.lit(run_id).alias("run_id"), pl.all())
+    path = store.write_ledger(config.ledger_path, "policy_truth", stamped, run_id, run_date)
+    _console().print(f"{truth.summary_line(rows)} (run {run_id}; {path})", markup=False)
     return EXIT_OK
 
 
@@ -492,6 +663,61 @@ def _serve(args: argparse.Namespace) -> int:
     except serving.PrefectUnavailable as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)
         return EXIT_USAGE
+    return EXIT_OK
+
+
+def _ledger_folder(given: Path | None) -> Path:
+    """The ledger folder to query: the one given (or its ledger/), else out/ledger when a run wrote it."""
+    if given is None:
+        default = Path("out") / "ledger"
+        if (default / "run").is_dir():
+            return default
+        raise StoreError(
+            "no ledger folder given: pass --ledger OUT/ledger, the ledger/ a run wrote under its --out folder"
+            ' (e.g. thermal-ledger sql "select * from program_totals" --ledger out/ledger)'
+        )
+    if not (given / "run").is_dir() and (given / "ledger" / "run").is_dir():
+        return given / "ledger"
+    return given
+
+
+def _sql(args: argparse.Namespace) -> int:
+    """``thermal-ledger sql``: one query against the analyst views; a table on screen or a file."""
+    import duckdb
+
+    from pipeline import store
+
+    if args.out is not None and args.out.suffix.lower() not in (".csv", ".parquet"):
+        raise StoreError(f"--out {args.out}: give a file ending in .csv or .parquet")
+    con = store.connect_ledger(_ledger_folder(args.ledger))
+    try:
+        relation = con.sql(args.query)
+        result = pl.DataFrame() if relation is None else relation.pl()
+    except duckdb.Error as exc:
+        detail = str(exc).splitlines()[0]
+        views = [
+            r[0] for r in con.execute("select view_name from duckdb_views() where not internal").fetchall()
+        ]
+        absent = " (a view over a table no run of this ledger wrote is absent)" if "Catalog" in detail else ""
+        raise StoreError(f"query refused: {detail}{absent}; views: {', '.join(sorted(views))}") from None
+    finally:
+        con.close()
+    if args.out is not None:
+        args.out.parent.mkdir(parents=True, exist_ok=True)
+        if args.out.suffix.lower() == ".csv":
+            result.write_csv(args.out)
+        else:
+            result.write_parquet(args.out)
+        print(f"{result.height:,} rows written to {args.out}")
+        return EXIT_OK
+    # Off a terminal every column is printed whole, however wide the result.
+    console = _console(width=100_000)
+    shown = result.head(max(args.max_rows, 0))
+    console.print(_table(None, shown.columns, shown.rows()))
+    more = result.height - shown.height
+    console.print(
+        f"{result.height:,} rows" + (f", {more:,} not shown (use --out to write all)" if more else "")
+    )
     return EXIT_OK
 
 
@@ -523,7 +749,7 @@ def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     _keep_freed_memory()
     if args.stage == "simulate":
-        from pipeline.simulate import SimulationError, main_simulate
+        from pipeline.simulate import main_simulate
 
         try:
             summary = main_simulate(args)
@@ -535,16 +761,24 @@ def main(argv: list[str] | None = None) -> int:
     if args.stage == "bench":
         from pipeline.bench import main_bench
 
-        return main_bench(args.premises, args.days, args.seed, args.work, args.csv, args.reuse)
+        with progress.shown():
+            return main_bench(args.premises, args.days, args.seed, args.work, args.csv, args.reuse)
     if args.stage == "settings":
         print_settings(args.markdown)
         return EXIT_OK
     try:
-        return _serve(args) if args.stage == "serve" else _run_stage(args)
+        if args.stage == "truth":
+            return _truth(args)
+        if args.stage == "sql":
+            return _sql(args)
+        if args.stage == "serve":
+            return _serve(args)
+        with progress.shown():
+            return _run_stage(args)
     except OutputInUseError as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)
         return EXIT_BUSY
-    except USER_ERRORS as exc:
+    except (*USER_ERRORS, TruthError, SimulationError) as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)
         return EXIT_USAGE
 

@@ -32,7 +32,7 @@ from pipeline.features import StateSpace
 from pipeline.policies import DEFAULT_ACTIONS, SetbackRule
 from pipeline.store import DuckDBSettings
 
-STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "evaluate")
+STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "improve", "evaluate")
 """The stages a setting can shape, in the order they run."""
 
 PRESENCE_SOURCES: tuple[str, ...] = ("occupancy_flag", "schedule", "setback_hold")
@@ -195,7 +195,7 @@ class Config:
     """Folder holding ``landing/`` (the input files)."""
     out: Path = _setting(Path("out"), stages=(), unit="folder")
     """Folder for ``warehouse.duckdb`` and ``ledger/``."""
-    seed: Annotated[int, Strict(), Field(ge=0)] = _setting(20260601, stages=("learn", "evaluate"))
+    seed: Annotated[int, Strict(), Field(ge=0)] = _setting(20260601, stages=("learn", "evaluate", "improve"))
     """Seed for every random draw (bootstrap, tie-breaking)."""
     step_hours: Count = _setting(1, stages=("episodes",), unit="h")
     """Length of one decision step, hours (when decision_points is 'fixed')."""
@@ -222,12 +222,12 @@ class Config:
     )
     """'setpoint': setback still in force at return; 'indoor': logged indoor temperature, where present."""
     actions: Annotated[tuple[Whole, ...], Field(min_length=2)] = _setting(
-        DEFAULT_ACTIONS, stages=("episodes", "learn", "evaluate"), unit="°C"
+        DEFAULT_ACTIONS, stages=("episodes", "learn", "evaluate", "improve"), unit="°C"
     )
     """Allowed setpoint changes per decision, whole °C in the setback direction, increasing, including 0."""
-    cool_band_c: tuple[Number, Number] = _setting((22.0, 30.0), stages=("ingest",), unit="°C")
+    cool_band_c: tuple[Number, Number] = _setting((22.0, 30.0), stages=("ingest", "improve"), unit="°C")
     """Safety band for cooling setpoints, °C, low then high (common practice, from memory)."""
-    heat_band_c: tuple[Number, Number] = _setting((13.0, 23.0), stages=("ingest",), unit="°C")
+    heat_band_c: tuple[Number, Number] = _setting((13.0, 23.0), stages=("ingest", "improve"), unit="°C")
     """Safety band for heating setpoints, °C, low then high (13 °C guards frozen pipes: common practice)."""
     min_episode_hours: Count = _setting(3, stages=("episodes",), unit="h")
     """Shortest away episode kept, in fully-away hours."""
@@ -236,7 +236,7 @@ class Config:
     recovery_hours: Annotated[int, Strict(), Field(ge=0)] = _setting(1, stages=("episodes",), unit="h")
     """Hours after the return hour charged to the episode (pull-back to comfort)."""
     comfort_penalty_usd_per_degree_hour: Annotated[float, Strict(), Field(ge=0)] = _setting(
-        0.10, stages=("episodes", "evaluate"), unit="USD/°C·h"
+        0.10, stages=("episodes", "evaluate", "improve"), unit="USD/°C·h"
     )
     """Price put on each °C-hour of setback still in force over the recovery window, USD."""
     behavior_model: Annotated[Name, AfterValidator(_OneOf(_behavior_models))] = _setting(
@@ -261,42 +261,50 @@ class Config:
         0.05, stages=("evaluate",), unit="probability"
     )
     """Mix of the uniform policy into each candidate rule, so weights stay bounded."""
-    bootstrap_replicates: Count = _setting(400, stages=("evaluate",))
+    bootstrap_replicates: Count = _setting(400, stages=("evaluate", "improve"))
     """Bootstrap resamples of episodes for confidence intervals."""
     bootstrap_refit_behavior: Annotated[bool, Strict()] = _setting(False, stages=("evaluate",))
     """Re-fit the behaviour model in every bootstrap replicate (weighted IS), so intervals carry its error."""
     confidence: Annotated[float, Strict(), Field(gt=0, lt=1)] = _setting(
-        0.95, stages=("evaluate",), unit="probability"
+        0.95, stages=("evaluate", "improve"), unit="probability"
     )
     """Level of confidence intervals and of the lower bound."""
-    min_ess: Annotated[float, Strict(), Field(ge=0)] = _setting(10.0, stages=("evaluate",), unit="episodes")
+    min_ess: Annotated[float, Strict(), Field(ge=0)] = _setting(
+        10.0, stages=("evaluate", "improve"), unit="episodes"
+    )
     """Smallest Kish effective sample size at which an estimate counts as supported."""
-    max_weight_share: Share = _setting(0.25, stages=("evaluate",), unit="share")
+    max_weight_share: Share = _setting(0.25, stages=("evaluate", "improve"), unit="share")
     """Largest share of the total importance weight one episode may carry in a supported estimate."""
     estimators: Annotated[
         tuple[Annotated[Name, AfterValidator(_OneOf(_estimator_names))], ...], Field(min_length=1)
-    ] = _setting(("weighted_is", "weighted_per_decision_is", "doubly_robust"), stages=("evaluate",))
+    ] = _setting(("weighted_is", "weighted_per_decision_is", "doubly_robust"), stages=("evaluate", "improve"))
     """Off-policy estimators reported for every candidate (names in pipeline.estimators.OFF_POLICY_NAMES)."""
     recommended_estimator: Annotated[Name, AfterValidator(_OneOf(_estimator_names))] = _setting(
-        "weighted_is", stages=("evaluate",)
+        "weighted_is", stages=("evaluate", "improve")
     )
     """The estimator whose rows are marked recommended (one of estimators)."""
     cooling_days_per_year: Annotated[int, Strict(), Field(ge=1, le=366)] = _setting(
-        122, stages=("evaluate",), unit="days"
+        122, stages=("evaluate", "improve"), unit="days"
     )
-    """Days a year the cooling schedule is in force, for annualising per-episode savings."""
+    """Season length for cooling: annual figures are episodes per observed cooling day times this."""
     heating_days_per_year: Annotated[int, Strict(), Field(ge=1, le=366)] = _setting(
         151, stages=("evaluate",), unit="days"
     )
-    """Days a year the heating schedule is in force (November to March), for annualising heating rows."""
+    """Season length for heating (default November to March): annual figures of heating episodes use it."""
+    comfort_rise_limit_degree_hours: Annotated[float, Strict(), Field(ge=0)] = _setting(
+        0.0, stages=("evaluate",), unit="°C·h per episode"
+    )
+    """A policy is sent to a home only if the upper end of its comfort-change interval is at most this."""
     state: Annotated[StateSpace, BeforeValidator(_no_booleans("state"))] = _setting(
-        stages=("episodes", "learn", "evaluate"), factory=StateSpace
+        stages=("episodes", "learn", "evaluate", "improve"), factory=StateSpace
     )
     """How step features are binned into state keys ([state] table)."""
     candidates: Annotated[
         tuple[SetbackRule, ...], BeforeValidator(_no_booleans("candidate")), Field(min_length=1)
     ] = _setting(stages=("evaluate",), factory=_default_candidates)
-    """Candidate setback rules evaluated in every run ([[candidate]] tables)."""
+    """Candidate setback rules evaluated in every run ([[candidate]] tables; candidate_file replaces them)."""
+    candidate_file: Path | None = _setting(None, stages=("evaluate",), unit="file")
+    """Rule file of candidate policies ([[rule]] tables; README), found beside the settings file naming it."""
     columns: dict[str, dict[str, str]] = _setting(stages=("ingest",), factory=dict)
     """Per landing folder, canonical column name -> the name used in the files ([columns.<folder>])."""
     shard_premises: Count = _setting(250, stages=(), execution=True, unit="premises")
@@ -321,6 +329,32 @@ class Config:
         "monthly", stages=(), execution=True
     )
     """Name of the Prefect deployment `thermal-ledger serve` registers (thermal-ledger-run/<name>)."""
+    # ---- improve: learned policies and their safety test (pipeline/improve.py) ----
+    improve_learner: Annotated[Name, AfterValidator(_OneOf(("auto", "mc_control", "fitted_q_iteration")))] = (
+        _setting("auto", stages=("improve",))
+    )
+    """Learner of setpoint policies; 'auto' picks by the bound on the learning part's last third."""
+    improve_holdout_share: Annotated[float, Strict(), Field(gt=0, lt=1)] = _setting(
+        0.4, stages=("improve",), unit="share"
+    )
+    """Share of each mode's latest episodes held out for the safety test (the learners never see them)."""
+    improve_min_count: Annotated[int, Strict(), Field(ge=0)] = _setting(10, stages=("improve",), unit="steps")
+    """Baseline bootstrapping: a pair logged fewer times in the scope keeps the home's own habit."""
+    improve_epsilon: Annotated[float, Strict(), Field(ge=0, le=1)] = _setting(
+        0.0, stages=("improve",), unit="probability"
+    )
+    """Share of the moved probability spread over well-sampled allowed actions the residents take."""
+    improve_min_episodes: Count = _setting(200, stages=("improve",), unit="episodes")
+    """Fewest learning and held-out episodes a scope needs for a policy to be learned and tested."""
+    improve_scopes: Annotated[
+        tuple[Annotated[Name, AfterValidator(_OneOf(("portfolio", "habit_type", "cohort", "premise")))], ...],
+        Field(min_length=1),
+    ] = _setting(("portfolio", "habit_type", "cohort", "premise"), stages=("improve",))
+    """Scopes a policy is learned for (each with enough evidence)."""
+    safety_bound: Annotated[Name, AfterValidator(_OneOf(("student_t", "exact")))] = _setting(
+        "student_t", stages=("improve",)
+    )
+    """Safety test's lower bound: 'exact' (concentration inequality) or 'student_t' (approximate)."""
     duckdb_threads: Annotated[int, Strict(), Field(ge=0)] = _setting(
         0, stages=(), execution=True, unit="threads"
     )
@@ -332,6 +366,11 @@ class Config:
     (80 % of RAM)."""
     duckdb_preserve_insertion_order: Annotated[bool, Strict()] = _setting(True, stages=(), execution=True)
     """Whether DuckDB keeps rows in the order read where a query does not sort; false can use less memory."""
+    # ---- the run report (read from the ledger after the stages; shapes no stage) ----
+    report_homes: Annotated[int, Strict(), Field(ge=0)] = _setting(3, stages=(), execution=True, unit="homes")
+    """Homes with the largest and, apart, the smallest estimated savings given a page each in the report."""
+    report_premises: tuple[Name, ...] = _setting((), stages=(), execution=True)
+    """Premises always given a page in the report (`thermal-ledger report --premise` adds more)."""
 
     def __post_init__(self) -> None:
         _check_rules(self)
@@ -414,6 +453,12 @@ def _check_rules(c: Config) -> None:
     for key, ok, allowed in state_rules:
         if not ok:
             raise _Rule((f"state.{key}",), f"must be {allowed}")
+    if c.candidate_file is not None and c.candidates != _default_candidates():
+        raise _Rule(
+            ("candidate_file", "candidate"),
+            "replaces the [[candidate]] tables: give the rules in one place (move them into the rule file)",
+            "tables cannot be given with candidate_file, which replaces them: move them into the rule file",
+        )
     names = [rule.name for rule in c.candidates]
     for i, rule in enumerate(c.candidates):
         for key in ("depth_c", "lead_steps"):
@@ -444,6 +489,8 @@ def _show(value: Any, quote: Callable[[str], str] = repr) -> str:
     """A value as the user would write it in TOML (strings in single quotes unless ``quote`` says)."""
     if isinstance(value, bool):
         return "true" if value else "false"
+    if value is None:
+        return "(unset)"
     if isinstance(value, str | Path):
         return quote(str(value))
     if isinstance(value, list | tuple):
@@ -503,6 +550,9 @@ def _normalise(source: str, key: str, value: Any) -> tuple[str, Any]:
                 if sub not in known:
                     raise _unknown(f"[[candidate]] {i}: unknown key {{}}", sub, known)
         return "candidates", tuple(value)
+    if head == "candidate_file" and isinstance(value, str) and source not in ("--set", "flag", "settings"):
+        # A rule file named in a settings file is found beside it, wherever the command runs from.
+        return head, str(Path(source).parent / value)
     if head == "columns":
         folders = _folders()
         for folder, mapping in _table(source, head, value, "landing folders").items():
@@ -765,6 +815,7 @@ _RULES = {
     "presence_sources": "no repeats",
     "estimators": "no repeats",
     "recommended_estimator": "one of estimators",
+    "candidate_file": "a TOML rule file; not together with [[candidate]] tables",
     "serve_cron": "5 fields (minute hour day-of-month month day-of-week) or @hourly ... @yearly",
     "serve_timezone": "an IANA time zone name",
     "serve_name": "no / % & < >",

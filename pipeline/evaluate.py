@@ -32,6 +32,7 @@ from pipeline.config import Config
 from pipeline.estimators.registry import off_policy_estimator
 from pipeline.policies import action_index
 from pipeline.qmodel import FittedQ
+from pipeline.rules import Candidate, candidates_for
 
 SCOPES = (("premise", "premise_id"), ("cohort", "cohort"), ("portfolio", None))
 STATUS_OK, STATUS_THIN = "ok", "insufficient_evidence"
@@ -107,6 +108,7 @@ def evaluate_policy(
     refit: tuple[np.ndarray, np.ndarray] | None = None,
     multiplicity: np.ndarray | None = None,
     behavior_sums: tuple[estimators.ReplicateSums, estimators.ReplicateSums] | None = None,
+    season_days: int | None = None,
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Savings rows (one per scope, group and estimator) and diagnostics of one target policy.
 
@@ -123,11 +125,17 @@ def evaluate_policy(
     into each cohort's and the portfolio's (``estimators.combine_sums``), so the pooled
     figures are what a sum over shards of premises gives.
 
+    The recommended estimator's rows also carry the bill alone (energy cost, no comfort
+    penalty), the comfort cost (°C-hours of setback in force after the return, and those
+    priced at the comfort penalty) and kWh, each with its interval from the same bootstrap
+    draws (``_measure_columns``).
+
     Parameters
     ----------
     steps : polars.DataFrame
         Logged decision steps sorted by (episode_id, t), with state_key, action,
-        reward (USD), kwh, recovery_kwh, premise_id and cohort.
+        reward (USD), kwh, recovery_kwh, cost_usd, recovery_cost_usd,
+        comfort_degree_hours, premise_id and cohort.
     pi, b : numpy.ndarray
         Target and behaviour probabilities of each logged action, shape (n_steps,).
     days : polars.DataFrame
@@ -145,6 +153,8 @@ def evaluate_policy(
     behavior_sums : tuple of estimators.ReplicateSums, optional
         ``on_policy_sums`` of the same steps and draws (USD, then kWh): the logged policy's
         value does not depend on the target, so several targets can share it.
+    season_days : int, optional
+        Days of the season annual figures cover (default ``cooling_days_per_year``).
     """
     base = steps.select(
         "episode_id",
@@ -170,6 +180,11 @@ def evaluate_policy(
     usd_premise, kwh_premise = _scoped(usd_base, "premise_id"), _scoped(kwh_base, "premise_id")
     sums = {name: _premise_sums(usd_premise, kwh_premise, name, multiplicity) for name in names}
     sums["on_policy_value"] = behavior_sums or on_policy_sums(steps, multiplicity)
+    measures = (
+        _measure_sums(steps, pi, b, table, multiplicity, config)
+        if config.recommended_estimator in names
+        else {}
+    )
     premise_cohort = steps.select("premise_id", "cohort").unique()
     rows, diags = [], []
     for scope, column in SCOPES:
@@ -188,6 +203,13 @@ def evaluate_policy(
         ).select("group", pl.col("lower_bound").alias("lower_bound_usd"))
         scope_days = _scoped(days, column).group_by("group").agg(pl.col("days_observed").sum())
         diag = estimators.diagnostics(usd_frame)
+        measured = _measure_columns(
+            {
+                m: tuple(p if key is None else estimators.combine_sums([p], key) for p in pair)
+                for m, pair in measures.items()
+            },
+            config,
+        )
         for name in names:
             usd, kwh = scoped[name]
             point = usd.frame()
@@ -209,16 +231,123 @@ def evaluate_policy(
                 .join(diag.select("group", "n_unsupported_steps"), on="group", how="left")
                 .with_columns(pl.lit(name).alias("estimator"))
             )
+            if name == config.recommended_estimator and measures:
+                joined = joined.join(measured, on="group", how="left")
+            else:
+                joined = joined.with_columns(pl.lit(None, pl.Float64).alias(c) for c in MEASURE_COLUMNS)
             rows.append(_with_scope(joined, scope))
         diags.append(_with_scope(diag, scope))
-    days_per_year = season_days(config, steps)
-    return _finish_savings(pl.concat(rows), premise_cohort, config, days_per_year), pl.concat(diags)
+    season = config.cooling_days_per_year if season_days is None else season_days
+    return _finish_savings(pl.concat(rows), premise_cohort, config, season), pl.concat(diags)
 
 
-def season_days(config: Config, steps: pl.DataFrame) -> int:
-    """Days a year the steps' season is in force: heating days for heating steps, else cooling days."""
-    heating = "mode" in steps.columns and steps.height > 0 and steps["mode"][0] == "heat"
-    return config.heating_days_per_year if heating else config.cooling_days_per_year
+# What the recommended estimator also reports, each from the same draws as the bill's interval:
+# the energy bill alone, comfort (°C-hours of setback after the return) and kWh.
+_MEASURES = {
+    "bill": -(pl.col("cost_usd") + pl.col("recovery_cost_usd")),
+    "comfort": pl.col("comfort_degree_hours"),
+    "kwh": -(pl.col("kwh") + pl.col("recovery_kwh")),
+}
+MEASURE_COLUMNS = [
+    "bill_usd_behavior",
+    "bill_usd_policy",
+    "bill_savings_usd_per_episode",
+    "bill_ci_low",
+    "bill_ci_high",
+    "bill_lower_bound_usd",
+    "savings_kwh_ci_low",
+    "savings_kwh_ci_high",
+    "comfort_degree_hours_behavior",
+    "comfort_degree_hours_policy",
+    "comfort_degree_hours_ci_low",
+    "comfort_degree_hours_ci_high",
+    "comfort_change_degree_hours",
+    "comfort_change_ci_low",
+    "comfort_change_ci_high",
+    "comfort_cost_usd_behavior",
+    "comfort_cost_usd_policy",
+    "comfort_cost_usd_ci_low",
+    "comfort_cost_usd_ci_high",
+]
+"""Columns of the bill alone, kWh interval and comfort cost, filled on the recommended estimator's rows."""
+
+
+def _measure_sums(
+    steps: pl.DataFrame,
+    pi: np.ndarray,
+    b: np.ndarray,
+    table: np.ndarray | None,
+    multiplicity: np.ndarray,
+    config: Config,
+) -> dict[str, tuple[estimators.ReplicateSums, estimators.ReplicateSums]]:
+    """Per measure, the recommended estimator's sums per premise and the logged policy's (same draws)."""
+    missing = [c for c in ("cost_usd", "recovery_cost_usd", "comfort_degree_hours") if c not in steps.columns]
+    if missing:
+        raise estimators.EstimatorInputError(f"decision steps lack column(s) {missing} (see sql/step.sql)")
+    name = config.recommended_estimator
+    needs_q = off_policy_estimator(name).needs_q_model
+    if needs_q and table is None:
+        return {}
+    out = {}
+    for measure, expr in _MEASURES.items():
+        frame = steps.select(
+            "episode_id", "t", pl.col("premise_id").cast(pl.Utf8).alias("group"), expr.alias("reward")
+        ).with_columns(pl.Series("pi", pi), pl.Series("b", b))
+        logged = estimators.replicate_sums(frame, "on_policy_value", multiplicity)
+        if needs_q:
+            scored = steps.with_columns(expr.alias("_measure"))
+            frame = pl.concat([frame, _model_columns(scored, table, "_measure", config)], how="horizontal")
+        out[measure] = (estimators.replicate_sums(frame, name, multiplicity), logged)
+    return out
+
+
+def _measure_columns(
+    scoped: dict[str, tuple[estimators.ReplicateSums, estimators.ReplicateSums]], config: Config
+) -> pl.DataFrame:
+    """The ``MEASURE_COLUMNS`` per group from the policy's and the logged policy's sums of each measure.
+
+    Intervals are percentile intervals of the bootstrap replicates (the policy's value, or
+    its difference from the logged policy's, replicate by replicate); the bill's one-sided
+    bound is the (1 - confidence) quantile of its savings replicates, as for
+    ``lower_bound_bootstrap_usd``.
+    """
+    if not scoped:
+        return pl.DataFrame(schema={"group": pl.Utf8, **dict.fromkeys(MEASURE_COLUMNS, pl.Float64)})
+    price = config.comfort_penalty_usd_per_degree_hour
+    values = {m: (policy.values(), logged.values()) for m, (policy, logged) in scoped.items()}
+    labels = scoped["bill"][0].labels
+
+    def interval(replicated: np.ndarray, low: str, high: str) -> dict[str, np.ndarray]:
+        found = estimators.percentile_interval(labels, replicated[0], replicated[1:], config.confidence)
+        return {low: found["ci_low"].to_numpy(), high: found["ci_high"].to_numpy()}
+
+    bill_policy, bill_logged = values["bill"]
+    bill_savings = bill_policy - bill_logged
+    bound = _interval_and_bootstrap_bound(labels, bill_savings[0], bill_savings[1:], config)
+    kwh_policy, kwh_logged = values["kwh"]
+    comfort_policy, comfort_logged = values["comfort"]
+    comfort = interval(comfort_policy, "comfort_degree_hours_ci_low", "comfort_degree_hours_ci_high")
+    columns = {
+        "group": labels,
+        "bill_usd_behavior": -bill_logged[0],
+        "bill_usd_policy": -bill_policy[0],
+        "bill_savings_usd_per_episode": bill_savings[0],
+        "bill_ci_low": bound["ci_low"].to_numpy(),
+        "bill_ci_high": bound["ci_high"].to_numpy(),
+        "bill_lower_bound_usd": bound["lower_bound_bootstrap_usd"].to_numpy(),
+        # Both kWh values are negated (rewards), so policy minus logged is kWh saved.
+        **interval(kwh_policy - kwh_logged, "savings_kwh_ci_low", "savings_kwh_ci_high"),
+        "comfort_degree_hours_behavior": comfort_logged[0],
+        "comfort_degree_hours_policy": comfort_policy[0],
+        **comfort,
+        "comfort_change_degree_hours": comfort_policy[0] - comfort_logged[0],
+        **interval(comfort_policy - comfort_logged, "comfort_change_ci_low", "comfort_change_ci_high"),
+        "comfort_cost_usd_behavior": price * comfort_logged[0],
+        "comfort_cost_usd_policy": price * comfort_policy[0],
+        "comfort_cost_usd_ci_low": price * comfort["comfort_degree_hours_ci_low"],
+        "comfort_cost_usd_ci_high": price * comfort["comfort_degree_hours_ci_high"],
+    }
+    return pl.DataFrame(columns).select("group", *MEASURE_COLUMNS)
 
 
 BILL_NOTES = {
@@ -292,6 +421,12 @@ _ANNUAL = {
     "savings_kwh_per_episode": "savings_kwh_annual",
     "shrunk_savings_usd_per_episode": "shrunk_savings_usd_annual",
     "shrunk_savings_kwh_per_episode": "shrunk_savings_kwh_annual",
+    "bill_savings_usd_per_episode": "bill_savings_usd_annual",
+    "bill_ci_low": "bill_ci_low_annual",
+    "bill_ci_high": "bill_ci_high_annual",
+    "savings_kwh_ci_low": "savings_kwh_ci_low_annual",
+    "savings_kwh_ci_high": "savings_kwh_ci_high_annual",
+    "comfort_change_degree_hours": "comfort_change_degree_hours_annual",
 }
 # A premise's own figure and its cohort-shrunk counterpart.
 _SHRUNK = {
@@ -301,16 +436,20 @@ _SHRUNK = {
 
 
 def _finish_savings(
-    rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config, days_per_year: int | None = None
+    rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config, season_days: int | None = None
 ) -> pl.DataFrame:
     """Savings, status, recommendation, shrinkage toward the cohort and annual figures.
 
-    ``episodes_per_year`` is the scope's episodes per observed premise-day times
-    ``days_per_year`` (the season's: ``cooling_days_per_year`` unless given), and every
-    annual figure is the per-episode figure beside it times that. A row with insufficient
-    evidence hides its own figures, per episode and annual alike; a premise keeps its
-    cohort-shrunk ones.
+    ``episodes_per_year`` is the scope's episodes per observed premise-day (``days_observed``,
+    summed over the scope's premises) times the season length ``season_days`` (default
+    ``cooling_days_per_year``), both kept on the row, and every annual figure is the
+    per-episode figure beside it times that. A row with insufficient evidence hides its
+    own figures, per episode and annual alike; a premise keeps its cohort-shrunk ones.
     """
+    season = config.cooling_days_per_year if season_days is None else season_days
+    for column in MEASURE_COLUMNS:
+        if column not in rows.columns:
+            rows = rows.with_columns(pl.lit(None, pl.Float64).alias(column))
     supported = (
         (pl.col("ess") >= config.min_ess)
         & (pl.col("n_unsupported_steps") == 0)
@@ -332,16 +471,22 @@ def _finish_savings(
         "ci_high",
         "lower_bound_bootstrap_usd",
         "savings_kwh_per_episode",
+        *MEASURE_COLUMNS,
     ]
     # Outside premise scope the shrunk figure is the row's own figure, so it is hidden with it.
     hidden_shrunk = thin & (pl.col("scope") != "premise")
-    season = config.cooling_days_per_year if days_per_year is None else days_per_year
-    per_year = pl.col("n_episodes") / pl.col("days_observed") * season
-    return rows.with_columns(
-        *(pl.when(thin).then(None).otherwise(pl.col(c)).alias(c) for c in hidden),
-        *(pl.when(hidden_shrunk).then(None).otherwise(pl.col(c)).alias(c) for c in _SHRUNK.values()),
-        per_year.alias("episodes_per_year"),
-    ).with_columns((pl.col(c) * pl.col("episodes_per_year")).alias(annual) for c, annual in _ANNUAL.items())
+    per_year = pl.col("n_episodes") / pl.col("days_observed") * pl.col("season_days")
+    return (
+        rows.with_columns(pl.lit(season, pl.Int64).alias("season_days"))
+        .with_columns(
+            *(pl.when(thin).then(None).otherwise(pl.col(c)).alias(c) for c in hidden),
+            *(pl.when(hidden_shrunk).then(None).otherwise(pl.col(c)).alias(c) for c in _SHRUNK.values()),
+            per_year.alias("episodes_per_year"),
+        )
+        .with_columns(
+            (pl.col(c) * pl.col("episodes_per_year")).alias(annual) for c, annual in _ANNUAL.items()
+        )
+    )
 
 
 def _shrink_to_cohort(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config) -> pl.DataFrame:
@@ -421,21 +566,80 @@ COLUMNS = [
     "ess",
     "max_weight_share",
     "support_ok",
+    "n_unsupported_steps",
     "savings_kwh_per_episode",
     "shrunk_savings_kwh_per_episode",
+    *MEASURE_COLUMNS,
     "days_observed",
+    "season_days",
     "episodes_per_year",
     "savings_usd_annual",
     "savings_kwh_annual",
     "shrunk_savings_usd_annual",
     "shrunk_savings_kwh_annual",
+    "bill_savings_usd_annual",
+    "bill_ci_low_annual",
+    "bill_ci_high_annual",
+    "savings_kwh_ci_low_annual",
+    "savings_kwh_ci_high_annual",
+    "comfort_change_degree_hours_annual",
 ]
 
 
+def applicable_premises(candidate: Candidate, days: pl.DataFrame) -> pl.Series | None:
+    """Premise ids a candidate applies to, from ``days`` (premise_id, cohort, rate_plan_id); None: all."""
+    if not candidate.scoped:
+        return None
+    return days.filter(pl.Series(candidate.applies(days)))["premise_id"]
+
+
+def _restricted(bundle: tuple, premises: pl.Series) -> tuple:
+    """A mode's shared inputs (steps, b, refit, draws, logged sums) kept to the steps of ``premises``.
+
+    The draws are per episode (seeded by the episode id), so keeping an episode's column keeps
+    exactly the draws a frame of the kept episodes alone would get.
+    """
+    in_mode, b, refit, draws, _ = bundle
+    keep = in_mode["premise_id"].is_in(premises.implode()).to_numpy()
+    steps = in_mode.filter(pl.Series(keep))
+    if steps.height == 0:
+        return (steps, b[keep], None, draws[:, :0], None)
+    episode = in_mode["episode_id"].to_numpy()
+    kept_episodes = keep[np.r_[True, episode[1:] != episode[:-1]]]
+    kept_draws = draws[:, kept_episodes]
+    kept_refit = None if refit is None else (refit[0][:, kept_episodes], refit[1][:, keep])
+    return steps, b[keep], kept_refit, kept_draws, on_policy_sums(steps, kept_draws)
+
+
+def season_days(config: Config, mode: str) -> int:
+    """The configured season length annual figures of ``mode``'s episodes cover, days."""
+    return config.heating_days_per_year if mode == "heat" else config.cooling_days_per_year
+
+
+def days_in_mode(days: pl.DataFrame, mode: str) -> pl.DataFrame:
+    """Each premise's observed days in ``mode`` when ``days`` has a mode column, else ``days`` as given."""
+    if "mode" not in days.columns:
+        return days
+    return days.filter(pl.col("mode") == mode).drop("mode")
+
+
 def evaluate_candidates(
-    steps: pl.DataFrame, behavior: BehaviorModel, days: pl.DataFrame, config: Config
+    steps: pl.DataFrame,
+    behavior: BehaviorModel,
+    days: pl.DataFrame,
+    config: Config,
+    candidates: tuple[Candidate, ...] | None = None,
 ) -> Evaluation:
-    """Evaluate every configured candidate rule, per mode (cooling and heating never mix)."""
+    """Evaluate every candidate, per mode (cooling and heating never mix).
+
+    ``candidates`` default to the run's (``rules.candidates_for``). A candidate that applies
+    to some cohorts or rate plans only is scored on the episodes of the premises it applies
+    to (``applicable_premises``; ``days`` then needs rate_plan_id when it names rate plans):
+    its cohort and portfolio rows pool those premises alone. ``days`` holds premise_id,
+    cohort and days_observed, optionally per ``mode`` (the days the thermostat was in that
+    mode), for annualising over the mode's season.
+    """
+    candidates = candidates_for(config) if candidates is None else candidates
     visits = steps.group_by("mode", "state_key").agg(pl.len().alias("visits"))
     savings, diags, policies = [], [], []
     # What every candidate of a mode shares: its steps, behaviour probabilities and bootstrap draws.
@@ -446,9 +650,14 @@ def evaluate_candidates(
         draws = estimators.frame_multiplicity(in_mode, config.bootstrap_replicates, config.seed)
         logged = on_policy_sums(in_mode, draws)
         modes[mode] = (in_mode, behavior.probabilities(in_mode), refit, draws, logged)
-    for rule in config.candidates:
-        table = rule.table(config.state, config.actions, config.target_epsilon)
-        for mode, (in_mode, b, refit, draws, logged) in modes.items():
+    for rule in candidates:
+        table = rule.table
+        premises = applicable_premises(rule, days)
+        rule_days = days if premises is None else days.filter(pl.col("premise_id").is_in(premises.implode()))
+        for mode, bundle in modes.items():
+            in_mode, b, refit, draws, logged = bundle if premises is None else _restricted(bundle, premises)
+            if in_mode.height == 0:
+                continue
             q_model = FittedQ(config.state, config.actions).fit(in_mode, table)
             policies.append(
                 policy_frame(rule.name, table, config, q_model.q_)
@@ -456,7 +665,18 @@ def evaluate_candidates(
                 .join(visits, on=["mode", "state_key"], how="left")
             )
             pi = target_probabilities(in_mode, table, config)
-            s, d = evaluate_policy(in_mode, pi, b, days, config, table, refit, draws, logged)
+            s, d = evaluate_policy(
+                in_mode,
+                pi,
+                b,
+                days_in_mode(rule_days, mode),
+                config,
+                table,
+                refit,
+                draws,
+                logged,
+                season_days(config, mode),
+            )
             tag = (pl.lit(rule.name).alias("policy_name"), pl.lit(mode).alias("mode"))
             savings.append(s.with_columns(*tag))
             diags.append(d.with_columns(*tag))
@@ -535,7 +755,11 @@ def state_values(steps: pl.DataFrame) -> pl.DataFrame:
 
 
 def horizon_report(
-    steps_by_choice: dict[str, pl.DataFrame], config: Config, fitted: dict[str, BehaviorModel]
+    steps_by_choice: dict[str, pl.DataFrame],
+    config: Config,
+    fitted: dict[str, BehaviorModel],
+    candidates: tuple[Candidate, ...] | None = None,
+    days: pl.DataFrame | None = None,
 ) -> pl.DataFrame:
     """Weight spread of each candidate under each decision-point choice (the curse of horizon).
 
@@ -545,6 +769,8 @@ def horizon_report(
         Decision steps built with each choice of decision points ('fixed', 'anchored').
     fitted : dict of str to BehaviorModel
         The behaviour model fitted (by the learn stage) on each choice's steps.
+    candidates : tuple of Candidate, optional
+        Default: the run's. With ``days``, a scoped candidate is weighed on its premises only.
 
     Returns
     -------
@@ -552,6 +778,7 @@ def horizon_report(
         decision_points, mode, policy_name, mean_decisions, n_episodes, ess, ess_share,
         max_weight_share and weight_max over the whole portfolio.
     """
+    candidates = candidates_for(config) if candidates is None else candidates
     rows = []
     for choice, steps in steps_by_choice.items():
         behavior = fitted[choice]
@@ -559,10 +786,16 @@ def horizon_report(
             in_mode = steps.filter(pl.col("mode") == mode)
             b = behavior.probabilities(in_mode)
             decisions = in_mode.group_by("episode_id").len()["len"].mean()
-            for rule in config.candidates:
-                table = rule.table(config.state, config.actions, config.target_epsilon)
-                frame = in_mode.select("episode_id", "t").with_columns(
-                    pl.Series("pi", target_probabilities(in_mode, table, config)), pl.Series("b", b)
+            for rule in candidates:
+                premises = None if days is None else applicable_premises(rule, days)
+                keep = np.ones(in_mode.height, dtype=bool)
+                if premises is not None:
+                    keep = in_mode["premise_id"].is_in(premises.implode()).to_numpy()
+                if not keep.any():
+                    continue
+                kept = in_mode.filter(pl.Series(keep))
+                frame = kept.select("episode_id", "t").with_columns(
+                    pl.Series("pi", target_probabilities(kept, rule.table, config)), pl.Series("b", b[keep])
                 )
                 diag = estimators.diagnostics(frame).row(0, named=True)
                 rows.append(

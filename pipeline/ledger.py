@@ -52,11 +52,14 @@ class Run:
         """Partition date of this run's ledger files."""
         return self.started_at.date()
 
-    def write(self, table: str, frame: pl.DataFrame) -> dict[str, int]:
-        """Write one ledger table stamped with this run's id; return ``{table: rows}``."""
+    def write(self, table: str, frame: pl.DataFrame, part: str = "") -> dict[str, int]:
+        """Write one ledger table stamped with this run's id; return ``{table: rows}``.
+
+        ``part`` writes a second file of the table for this run (see ``store.write_ledger``).
+        """
         stamped = frame.select(pl.lit(self.run_id).alias("run_id"), pl.all())
-        store.write_ledger(self.config.ledger_path, table, stamped, self.run_id, self.run_date)
-        return {table: stamped.height}
+        store.write_ledger(self.config.ledger_path, table, stamped, self.run_id, self.run_date, part)
+        return {f"{table}-{part}" if part else table: stamped.height}
 
     def finish(self, row_counts: dict[str, int], con: duckdb.DuckDBPyConnection | None = None) -> Path:
         """Write the ``run`` table: configuration, code version, data watermark and row counts."""
@@ -140,9 +143,13 @@ def sweep_abandoned(ledger: Path, keep: str) -> pl.DataFrame:
     published = {p.stem for p in ledger.glob("run/run_date=*/*.parquet")}
     found: dict[str, list[Path]] = {}
     for path in ledger.glob("*/run_date=*/*.parquet*"):
-        run_id = path.name.split(".", 1)[0]
-        if run_id != keep and (run_id not in published or path.name.endswith(".tmp")):
-            found.setdefault(run_id, []).append(path)
+        if path.name.endswith(".tmp"):
+            stem = path.name.split(".", 1)[0]
+            if not _of_runs(stem, {keep}):
+                owner = next((r for r in published if _of_runs(stem, {r})), stem)
+                found.setdefault(owner, []).append(path)
+        elif not _of_runs(path.stem, published | {keep}):
+            found.setdefault(_run_of(path), []).append(path)
     rows = []
     for run_id, paths in sorted(found.items()):
         tables = sorted({p.parent.parent.name for p in paths})
@@ -153,6 +160,20 @@ def sweep_abandoned(ledger: Path, keep: str) -> pl.DataFrame:
     return pl.DataFrame(
         rows, schema={"abandoned_run_id": pl.Utf8, "tables": pl.Utf8, "files_removed": pl.Int64}
     )
+
+
+def _of_runs(stem: str, run_ids: set[str]) -> bool:
+    """Whether a ledger file named ``stem`` belongs to one of ``run_ids`` (``<run>`` or ``<run>-<part>``)."""
+    return stem in run_ids or any(stem.startswith(f"{run_id}-") for run_id in run_ids)
+
+
+def _run_of(path: Path) -> str:
+    """The run id a ledger file is stamped with (its name's when it cannot be read)."""
+    try:
+        ids = pl.read_parquet(path, columns=["run_id"], n_rows=1)["run_id"]
+    except Exception:  # noqa: BLE001 - a damaged leftover is still swept, under its file name
+        return path.stem
+    return str(ids[0]) if len(ids) else path.stem
 
 
 def code_version() -> str:

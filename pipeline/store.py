@@ -169,11 +169,18 @@ def quote_identifier(name: str) -> str:
     return '"' + name.replace('"', '""') + '"'
 
 
-def write_ledger(ledger: Path, table: str, frame: pl.DataFrame, run_id: str, run_date: dt.date) -> Path:
-    """Write one ledger table of one run to ``<ledger>/<table>/run_date=YYYY-MM-DD/<run_id>.parquet``."""
+def write_ledger(
+    ledger: Path, table: str, frame: pl.DataFrame, run_id: str, run_date: dt.date, part: str = ""
+) -> Path:
+    """Write one ledger table of one run to ``<ledger>/<table>/run_date=YYYY-MM-DD/<run_id>.parquet``.
+
+    ``part`` names a second file of the same run's table (``<run_id>-<part>.parquet``), for a
+    stage that adds rows to a table another stage writes (the improve stage's learned policies
+    beside the candidates in ``policy`` and ``savings``); the views read every file.
+    """
     folder = Path(ledger) / table / f"run_date={run_date.isoformat()}"
     folder.mkdir(parents=True, exist_ok=True)
-    path = folder / f"{run_id}.parquet"
+    path = folder / (f"{run_id}-{part}.parquet" if part else f"{run_id}.parquet")
     tmp = path.with_suffix(".parquet.tmp")
     frame.write_parquet(tmp)
     fault_point("ledger-write")
@@ -203,23 +210,36 @@ def fault_point(name: str) -> None:
         os.kill(os.getpid(), signal.SIGKILL)
 
 
+def view_files() -> list[str]:
+    """Names of the SQL files of analyst views: ``views`` first, then every ``views_<topic>`` in order."""
+    return ["views", *sorted(p.stem for p in SQL_DIR.glob("views_*.sql"))]
+
+
 def connect_ledger(ledger: Path, settings: DuckDBSettings | None = None) -> duckdb.DuckDBPyConnection:
-    """An in-memory DuckDB connection with the analyst views of ``sql/views.sql`` over the ledger.
+    """An in-memory DuckDB connection with the analyst views of ``sql/views*.sql`` over the ledger.
 
     Views of tables the ledger holds no file of are left out (a query naming one says the
-    table does not exist) rather than failing the whole connection.
+    table does not exist) rather than failing the whole connection; each appears on the
+    first connection after a run writes its table. A folder with no ``run`` table is no
+    ledger and is refused (``StoreError``).
     """
+    root = Path(ledger).resolve()
+    if not (root / "run").is_dir():
+        raise StoreError(
+            f"no ledger at {root}: give the ledger folder a run wrote (the ledger/ inside its --out folder)"
+        )
     con = duckdb.connect()
     execute(con, "set TimeZone = 'UTC'")
     apply_settings(con, settings or DuckDBSettings())
-    execute(con, "set variable ledger_root = $root", {"root": str(Path(ledger).resolve())})
-    for statement in [s for s in sql_text("views").split(";\n") if _has_code(s)]:
-        try:
-            execute(con, statement)
-        except (duckdb.IOException, duckdb.CatalogException, duckdb.BinderException):
-            # A table this ledger does not hold yet (written by a newer version, or not by
-            # any run so far): its view, and the views built on it, are left out.
-            continue
+    execute(con, "set variable ledger_root = $root", {"root": str(root)})
+    for name in view_files():
+        for statement in [s for s in sql_text(name).split(";\n") if _has_code(s)]:
+            try:
+                execute(con, statement)
+            except (duckdb.IOException, duckdb.CatalogException, duckdb.BinderException):
+                # A table this ledger does not hold yet (written by a newer version, or not by
+                # any run so far): its view, and the views built on it, are left out.
+                continue
     return con
 
 

@@ -37,6 +37,10 @@ create or replace view shard_work as
     select * from published('shard_work');
 create or replace view stage_work as
     select * from published('stage_work');
+-- Program savings of each program-wide policy as episodes accumulate (in the order they
+-- happened): ordinary and weighted IS with normal-approximation bands (pipeline/convergence.py).
+create or replace view estimate_path as
+    select * from published('estimate_path');
 create or replace view latest_run as
     select run_id from run order by finished_at desc limit 1;
 create or replace view savings_latest as
@@ -72,3 +76,27 @@ create or replace view savings_by_premise as
 -- with the tables it had written); `run_id` is the run that removed them.
 create or replace view abandoned_run as
     select * from published('abandoned_run');
+-- ---- learned policies and their safety test (the improve stage) ----
+create or replace view safety_test as
+    select * from published('safety_test');
+-- Per mode and scope of the latest run: was a learned policy proposed, and why (not).
+create or replace view safety_test_latest as
+    select
+        policy_name,
+        mode,
+        scope,
+        key,
+        outcome,
+        reason,
+        learner,
+        bound_method,
+        n_held_out_episodes,
+        round(savings_estimate_usd, 3) as savings_estimate_usd,
+        round(lower_bound_usd, 3) as lower_bound_usd,
+        round(comfort_change_usd, 3) as comfort_change_usd
+    from safety_test semi join latest_run using (run_id)
+    order by mode, scope, key;
+-- The learned policies a recommendation may send: the latest run's policy rows with proposed = true.
+create or replace view proposed_policy as
+    select p.* from policy p semi join latest_run using (run_id)
+    where p.proposed;

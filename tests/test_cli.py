@@ -12,7 +12,7 @@ from pipeline import stages
 from pipeline.cli import EXIT_OK, EXIT_REFUSED, EXIT_USAGE, main, print_episodes, print_evaluation
 from tests.conftest import write_landing
 
-STAGES = ("ingest", "episodes", "learn", "evaluate", "run", "serve", "simulate")
+STAGES = ("ingest", "episodes", "learn", "evaluate", "improve", "run", "serve", "simulate")
 
 
 @pytest.mark.parametrize("stage", STAGES)
