@@ -43,7 +43,6 @@ ROW_COUNTS: dict[str, tuple[str, str]] = {
     "learn": ("decision steps", "select count(*) from step"),
     "improve": ("decision steps", "select count(*) from step"),
     "evaluate": ("decision steps", "select count(*) from step"),
-    "improve": ("decision steps", "select count(*) from step"),
 }
 """What each stage's rows per second counts, read from the warehouse after the run."""
 
