@@ -825,14 +825,19 @@ def improve(
         pl.concat(savings, how="vertical_relaxed")
         .select(*evaluation.COLUMNS)
         .with_columns(
-            pl.lit(config.comfort_penalty_usd_per_degree_hour).alias("comfort_penalty_usd_per_degree_hour")
+            pl.lit(config.comfort_penalty_usd_per_degree_hour).alias("comfort_penalty_usd_per_degree_hour"),
+            pl.col("mode")
+            .replace_strict(evaluation.BILL_NOTES, default=None, return_dtype=pl.String)
+            .alias("bill_note"),
         )
         .sort("policy_name", "mode", "scope", "key", "estimator")
         if savings
         else _empty_savings()
     )
     return Improvement(
-        policy=pl.concat([p.policy for p in parts]).select(POLICY_COLUMNS),
+        policy=pl.concat([p.policy for p in parts])
+        .select(POLICY_COLUMNS)
+        .with_columns(pl.col("visits").cast(pl.Int64)),
         savings=savings_frame,
         safety_test=pl.concat([p.safety_test for p in parts], how="vertical_relaxed").sort(
             "mode", "scope", "key"

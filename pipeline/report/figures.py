@@ -72,6 +72,12 @@ class Chart:
 
 
 @contextmanager
+def _legend(ax, **options) -> None:
+    """A legend when the axes hold labelled series (a figure of empty data has none)."""
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(**options)
+
+
 def style() -> Iterator[None]:
     """The report's own look: plain, light grid, left titles, no math parsing of data text."""
     with matplotlib.rc_context(_STYLE):
@@ -115,7 +121,7 @@ def savings_by_policy(rows: pl.DataFrame, level: float, with_comfort: bool = Fal
         ax.invert_yaxis()
         ax.set_xlabel("savings against current behaviour, USD per away episode")
         ax.set_title(f"Savings ({level:.0%} interval as band, lower bound as tick)")
-        ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.22), ncol=2, frameon=False)
+        _legend(ax, loc="upper center", bbox_to_anchor=(0.5, -0.22), ncol=2, frameon=False)
         plotted = rows.select(
             "policy_name", "mode", "savings_usd_per_episode", "ci_low", "ci_high", "lower_bound_usd"
         )
@@ -207,7 +213,7 @@ def estimates_by_episodes(rows: pl.DataFrame) -> Chart:
             ax.set_title(f"{policy} ({mode})")
             ax.set_xlabel("episodes used, oldest first")
         axes[0].set_ylabel("savings, USD per episode")
-        axes[0].legend(frameon=False, fontsize=8)
+        _legend(axes[0], frameon=False, fontsize=8)
     plotted = rows.select(
         "policy_name", "mode", "estimator", "n_episodes", "savings_usd_per_episode", "ci_low", "ci_high"
     )
@@ -242,7 +248,7 @@ def weight_diagnostics(rows: pl.DataFrame) -> Chart:
         ax.set_ylabel("largest weight's share of all weight")
         ax.set_ylim(0, 1.02)
         ax.set_title("Importance-weight diagnostics per home (right and low is healthy)")
-        ax.legend(frameon=False, fontsize=8)
+        _legend(ax, frameon=False, fontsize=8)
     plotted = rows.select("policy_name", "key", "ess", "max_weight_share")
     return Chart("weight-diagnostics", "Importance-weight diagnostics", figure, plotted)
 
@@ -284,7 +290,7 @@ def estimator_agreement(rows: pl.DataFrame) -> Chart:
         ax.invert_yaxis()
         ax.set_xlabel("savings, USD per episode (bars: interval)")
         ax.set_title("Agreement between estimators, program and cohorts (rows with an estimate)")
-        ax.legend(frameon=False, fontsize=8, loc="best")
+        _legend(ax, frameon=False, fontsize=8, loc="best")
     plotted = rows.select(
         "policy_name", "mode", "scope", "key", "estimator", "savings_usd_per_episode", "ci_low", "ci_high"
     )
@@ -368,7 +374,7 @@ def schedule_lines(rows: pl.DataFrame, slug: str) -> Chart:
             ax.set_xlabel("local hour, h")
             ax.set_title(day)
         axes[0].set_ylabel("setpoint, °C")
-        axes[0].legend(frameon=False, fontsize=8)
+        _legend(axes[0], frameon=False, fontsize=8)
     return Chart(f"home-{slug}-schedule", "Hourly setpoint schedule", figure, rows)
 
 
@@ -394,7 +400,7 @@ def episode_costs(rows: pl.DataFrame, slug: str) -> Chart:
         ax.set_xlabel("episode start (UTC date)")
         ax.set_ylabel("cost incl. comfort penalty, USD")
         ax.set_title("The home's away episodes")
-        ax.legend(frameon=False, fontsize=8)
+        _legend(ax, frameon=False, fontsize=8)
         figure.autofmt_xdate()
     plotted = rows.select(
         "episode_id", "start_utc", (-pl.col("return_usd")).alias("cost_usd"), "excluded_reason"
