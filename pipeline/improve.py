@@ -90,6 +90,51 @@ SAFETY_COLUMNS = [
 """Columns of the ``safety_test`` ledger table, one row per mode and scope key."""
 
 
+SAFETY_SCHEMA = {
+    **dict.fromkeys(
+        ["policy_name", "mode", "scope", "key", "outcome", "reason", "learner", "bound_method"], pl.Utf8
+    ),
+    "confidence": pl.Float64,
+    **dict.fromkeys(
+        ["n_premises", "n_learning_episodes", "n_held_out_episodes", "n_bound_episodes"], pl.Int64
+    ),
+    "held_out_from_utc": pl.Datetime("us", "UTC"),
+    **dict.fromkeys(
+        [
+            "savings_estimate_usd",
+            "lower_bound_usd",
+            "comfort_change_usd",
+            "residual_low_usd",
+            "residual_high_usd",
+        ],
+        pl.Float64,
+    ),
+    "outside_range_episodes": pl.Int64,
+    "min_count": pl.Int64,
+    "epsilon": pl.Float64,
+    "min_probability": pl.Float64,
+}
+"""Types of the ``safety_test`` columns (a run where no scope had enough evidence still has them)."""
+
+_FLAGS = ("recommended", "support_ok")
+_TEXT = ("policy_name", "mode", "scope", "key", "estimator", "status")
+
+
+def _empty_savings() -> pl.DataFrame:
+    """The savings columns with no rows, typed as evaluation writes them."""
+    schema = {
+        c: pl.Utf8
+        if c in _TEXT
+        else pl.Boolean
+        if c in _FLAGS
+        else pl.Int64
+        if c == "n_episodes"
+        else pl.Float64
+        for c in evaluation.COLUMNS
+    }
+    return pl.DataFrame(schema=schema | {"comfort_penalty_usd_per_degree_hour": pl.Float64})
+
+
 @dataclass(frozen=True)
 class Improvement:
     """Ledger frames of the improve stage."""
@@ -746,8 +791,8 @@ def improve_mode(
             )
     return Improvement(
         policy=pl.concat(policies) if policies else _empty_policy(),
-        savings=pl.concat(savings, how="vertical_relaxed") if savings else pl.DataFrame(),
-        safety_test=pl.DataFrame(tests, infer_schema_length=None).select(SAFETY_COLUMNS),
+        savings=pl.concat(savings, how="vertical_relaxed") if savings else _empty_savings(),
+        safety_test=pl.DataFrame(tests, schema=SAFETY_SCHEMA).select(SAFETY_COLUMNS),
     )
 
 
@@ -808,7 +853,7 @@ def improve(
         )
         .sort("policy_name", "mode", "scope", "key", "estimator")
         if savings
-        else pl.DataFrame()
+        else _empty_savings()
     )
     return Improvement(
         policy=pl.concat([p.policy for p in parts]).select(POLICY_COLUMNS),
