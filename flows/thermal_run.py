@@ -19,13 +19,14 @@ from contextlib import contextmanager
 from typing import Any
 
 from prefect import flow, task, unmapped
+from prefect.artifacts import create_markdown_artifact, create_table_artifact
 from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import TaskRunner, ThreadPoolTaskRunner
 
 from pipeline import config as config_module
 from pipeline import shards, stages
 from pipeline.config import Config, ConfigError
-from pipeline.ledger import Run
+from pipeline.ledger import Run, exclusive_output
 
 
 @contextmanager
@@ -65,6 +66,39 @@ episode_shard_task = task(
     task_run_name="episode-shard-{shard.shard_id}",
 )
 finish_episodes_task = task(stages.finish_episodes, name="episodes", cache_policy=NO_CACHE)
+
+
+# ---- the run report and Prefect's artifacts --------------------------------------------------
+
+SUMMARY_ARTIFACT = "thermal-ledger-program-summary"
+"""Key of the table artifact: the program's savings per policy (Prefect keeps one history per key)."""
+REPORT_ARTIFACT = "thermal-ledger-report"
+"""Key of the markdown artifact that links the run's report file."""
+
+
+@task(name="report", cache_policy=NO_CACHE)
+def report_task(config: Config, run_id: str) -> Any:
+    """Write the run's HTML report and figures from the ledger (``pipeline.report.report_run``)."""
+    from pipeline.report import report_run
+
+    return report_run(config, run_id)
+
+
+@task(name="publish-artifacts", cache_policy=NO_CACHE)
+def publish_artifacts(report: Any) -> None:
+    """The program summary as a table artifact and a markdown artifact linking the report."""
+    path = report.html.resolve()
+    create_table_artifact(
+        key=SUMMARY_ARTIFACT,
+        table=report.summary,
+        description=f"Savings per policy, whole program, run {report.run_id} (recommended estimator, USD)",
+    )
+    create_markdown_artifact(
+        key=REPORT_ARTIFACT,
+        markdown=f"Report of run `{report.run_id}`: [{path}]({path.as_uri()})"
+        f" ({len(report.pngs)} figures, PNGs in `{report.html.parent / 'figures'}`)",
+        description=f"Run report {report.run_id}",
+    )
 
 
 def task_runner(config: Config) -> TaskRunner:
@@ -108,14 +142,16 @@ def episodes_mapped(config: Config, run: Run) -> stages.EpisodeSummary:
 def thermal_ledger_run(
     config_path: str | None = None, overrides: dict[str, Any] | None = None
 ) -> stages.RunSummary:
-    """Ingest, build episodes, learn, evaluate and improve; write the ledger for one run."""
+    """Ingest, build episodes, learn, improve and evaluate; write the ledger for one run, then its report."""
     config = config_module.load(config_path, overrides)
-    run = Run(config)
-    results = {}
-    for name in stages.STAGES:
-        if name == "episodes":
-            results[name] = episodes_mapped(config, run)
-        else:
-            results[name] = STAGE_TASKS[name](config, run)
-    finish_task(config, run, results)
+    with exclusive_output(config.out, "(thermal-ledger flow)"):
+        run = Run(config)
+        results = {}
+        for name in stages.STAGES:
+            if name == "episodes":
+                results[name] = episodes_mapped(config, run)
+            else:
+                results[name] = STAGE_TASKS[name](config, run)
+        finish_task(config, run, results)
+        publish_artifacts(report_task(config, run.run_id))
     return stages.summary(run, results)

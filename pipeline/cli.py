@@ -19,22 +19,28 @@ import polars as pl
 from rich import box
 from rich.console import Console
 from rich.table import Table
+from rich.text import Text
 
 from pipeline import config as config_module
-from pipeline import ingest as ingestion
-from pipeline import stages, store
+from pipeline import progress, stages, store
 from pipeline.behavior import BehaviorInputError
 from pipeline.config import Config, ConfigError
 from pipeline.estimators import EstimatorInputError
 from pipeline.ingest import IngestError
-from pipeline.ledger import Run
+from pipeline.ledger import OutputInUseError, Run, exclusive_output
 from pipeline.policies import PolicyError
+from pipeline.report.ledger_data import ReportError, report_path
 from pipeline.simulate.lake import CHUNK_PREMISES
 from pipeline.simulate.params import SimulationError
 from pipeline.store import StoreError
 from pipeline.truth import TruthError
 
-EXIT_OK, EXIT_REFUSED, EXIT_USAGE = 0, 1, 2
+EXIT_OK, EXIT_REFUSED, EXIT_USAGE, EXIT_BUSY = 0, 1, 2, 3
+
+SAVINGS_BASELINE = (
+    "Savings are measured against the residents' current behaviour (their logged setpoint habits).\n"
+    "Annual figures: episodes per observed day times the season length (days_observed, season_days)."
+)
 
 USER_ERRORS: tuple[type[Exception], ...] = (
     ConfigError,
@@ -44,6 +50,7 @@ USER_ERRORS: tuple[type[Exception], ...] = (
     BehaviorInputError,
     EstimatorInputError,
     PolicyError,
+    ReportError,
 )
 """Errors caused by the user's settings, files or order of stages: one line and exit 2."""
 
@@ -93,11 +100,20 @@ def build_parser() -> argparse.ArgumentParser:
         description="Simulate homes and write landing files a utility would receive, plus truth/ side files "
         "the pipeline never reads. The same seed gives the same files, bit for bit.",
     )
-    sim.add_argument("--premises", type=int, default=60, help="number of homes (default 60)")
-    sim.add_argument("--seed", type=int, default=20260601, help="seed of every draw (default 20260601)")
+    sim.add_argument(
+        "--season",
+        choices=("summer", "winter"),
+        default="summer",
+        help="summer: air conditioning; winter: gas furnaces and heat pumps, heating setpoints"
+        " (default summer); the defaults below are the season's",
+    )
+    sim.add_argument("--premises", type=int, help="number of homes (default 60 summer, 40 winter)")
+    sim.add_argument("--seed", type=int, help="seed of every draw (default 20260601 summer, 20261201 winter)")
     sim.add_argument("--out", type=Path, required=True, help="folder to write landing/ and truth/ into")
-    sim.add_argument("--start", type=dt.date.fromisoformat, default=dt.date(2026, 6, 1), help="first day")
-    sim.add_argument("--days", type=int, default=92, help="number of days (default 92)")
+    sim.add_argument(
+        "--start", type=dt.date.fromisoformat, help="first day (default 2026-06-01 summer, 2026-12-01 winter)"
+    )
+    sim.add_argument("--days", type=int, help="number of days (default 92 summer, 62 winter)")
     sim.add_argument(
         "--chunk-premises",
         type=int,
@@ -142,6 +158,23 @@ def build_parser() -> argparse.ArgumentParser:
             p.add_argument(
                 "--no-prefect", action="store_true", help="run the stages directly, without a Prefect flow"
             )
+    report = sub.add_parser(
+        "report",
+        help="write the run's report: one self-contained HTML file and its figures as PNGs, from the ledger",
+        description="Write <out>/report/<run_id>/report.html (program, trust and home pages; opens with no"
+        " network) and each figure as figures/<name>.png beside it, from the ledger of one run (default:"
+        " the newest). `run` writes it too.",
+        epilog=SETTINGS_HINT,
+    )
+    _common(report)
+    report.add_argument("--run", dest="run_id", metavar="RUN_ID", help="the run to report (default: newest)")
+    report.add_argument(
+        "--premise",
+        action="append",
+        default=[],
+        metavar="PREMISE_ID",
+        help="also give this home a page (repeatable; the setting report_premises lists more)",
+    )
     serve = sub.add_parser(
         "serve",
         help="register the run as a Prefect deployment on a cron schedule and run it here until stopped",
@@ -171,6 +204,32 @@ def build_parser() -> argparse.ArgumentParser:
     bench.add_argument(
         "--reuse", action="store_true", help="require the lake already simulated there (never simulate)"
     )
+    sql = sub.add_parser(
+        "sql",
+        help="run a SQL query against the analyst views of a ledger; print a table or write CSV/Parquet",
+        description="Run one DuckDB SQL query against the analyst views over a ledger (sql/views*.sql:"
+        " run_latest, savings_latest, savings_by_premise, savings_comfort_by_cohort, recommendation_latest,"
+        " program_totals, schedule_latest, estimator_disagreement and one view per ledger table) and print"
+        " the result, or write it with --out. Every saving is measured against the residents' current"
+        " behaviour.",
+        epilog='Example: thermal-ledger sql "select * from program_totals" --ledger out/ledger',
+    )
+    sql.add_argument("query", help="the SQL query, quoted")
+    sql.add_argument(
+        "--ledger",
+        type=Path,
+        help="the ledger folder a run wrote (OUT/ledger, or OUT; default out/ledger when present)",
+    )
+    sql.add_argument(
+        "--out", type=Path, help="write the result to this .csv or .parquet file instead of printing"
+    )
+    sql.add_argument(
+        "--max-rows",
+        type=int,
+        default=200,
+        metavar="N",
+        help="rows printed at most (default 200; --out writes all)",
+    )
     ref = sub.add_parser(
         "settings",
         help="list every setting: meaning, unit, default, allowed values and the stages it shapes",
@@ -199,10 +258,10 @@ def flags_from(args: argparse.Namespace) -> dict[str, Any]:
 # ---- output ------------------------------------------------------------------------------------
 
 
-def _console() -> Console:
-    # Off a terminal: no colour, and wide enough that no header wraps.
+def _console(width: int = 240) -> Console:
+    # Off a terminal: no colour, and wide enough (``width``) that no header wraps.
     tty = sys.stdout.isatty()
-    return Console(file=sys.stdout, no_color=not tty, highlight=False, width=None if tty else 240)
+    return Console(file=sys.stdout, no_color=not tty, highlight=False, width=None if tty else width)
 
 
 def _table(title: str | None, columns: Sequence[str], rows: Sequence[Sequence[Any]]) -> Table:
@@ -212,7 +271,8 @@ def _table(title: str | None, columns: Sequence[str], rows: Sequence[Sequence[An
     for label, is_number in zip(columns, numeric, strict=True):
         table.add_column(label, justify="right" if is_number and rows else "left", no_wrap=True)
     for row in rows:
-        table.add_row(*(_cell(v) for v in row))
+        # Text, not markup: values from files or queries may hold square brackets.
+        table.add_row(*(Text(_cell(v)) for v in row))
     return table
 
 
@@ -253,15 +313,6 @@ def print_ingest(summary: stages.IngestSummary, console: Console | None = None) 
         )
     for row in files.filter(pl.col("status").is_in(["refused", "missing"])).iter_rows(named=True):
         console.print(f"{row['status']}: {row['message']}", markup=False)
-
-
-def _progress(done: int, total: int, result: ingestion.FileResult) -> None:
-    print(
-        f"[{done}/{total}] {result.source_file}: {result.status}, {result.rows_read:,} rows read,"
-        f" {result.rows_quarantined:,} quarantined ({result.seconds:.1f} s)",
-        file=sys.stderr,
-        flush=True,
-    )
 
 
 def print_episodes(counts: stages.EpisodeCounts, console: Console | None = None) -> None:
@@ -362,6 +413,46 @@ def print_evaluation(
         " see the ledger's savings table (scope = 'premise')"
         " or the analyst view savings_by_premise (sql/views.sql)."
     )
+    print_recommendation(evaluation.recommendation_total, level, console)
+    if (evaluation.savings["mode"] == "heat").any():
+        from pipeline.evaluate import BILL_NOTES
+
+        console.print(f"Heating rows: {BILL_NOTES['heat']} (column bill_note).")
+
+
+def print_recommendation(totals: pl.DataFrame, level: str, console: Console) -> None:
+    """The program's recommendation: homes per policy (or kept, by reason) and their annual bill and kWh."""
+    if totals.is_empty():
+        return
+    rows = (
+        totals.filter(pl.col("scope") == "program")
+        .select(
+            "mode",
+            "decision",
+            pl.col("policy").fill_null("-"),
+            "reason",
+            "homes",
+            pl.col("bill_savings_usd_annual", "bill_ci_low_annual", "bill_ci_high_annual").round(0),
+            pl.col("savings_kwh_annual", "savings_kwh_ci_low_annual", "savings_kwh_ci_high_annual").round(0),
+        )
+        .rows()
+    )
+    labels = (
+        "mode",
+        "decision",
+        "policy",
+        "reason",
+        "homes",
+        "bill USD/year",
+        "low",
+        "high",
+        "kWh/year",
+        "low",
+        "high",
+    )
+    title = f"recommendation for the program: annual bill and kWh savings with {level} intervals"
+    console.print(_table(title, labels, rows))
+    console.print(SAVINGS_BASELINE)
 
 
 def print_improvement(result: stages.ImprovementSummary, console: Console | None = None) -> None:
@@ -402,6 +493,13 @@ def print_summary(
         print_improvement(summary.improvement, console)
     console.print(
         "Estimates only: local codes, program rules and licensed practice govern what is sent to a device."
+    )
+
+
+def print_report_path(path: Path, console: Console | None = None) -> None:
+    """Where the run's report is."""
+    (console or _console()).print(
+        f"report: {path} (opens in any browser, no network needed)", markup=False, soft_wrap=True
     )
 
 
@@ -474,9 +572,16 @@ def _run_flow(args: argparse.Namespace, overrides: dict[str, Any]) -> stages.Run
 def _run_stage(args: argparse.Namespace) -> int:
     overrides, flags = overrides_from(args), flags_from(args)
     config = config_module.load(args.config, overrides, flags)
+    with exclusive_output(config.out, f"(thermal-ledger {args.stage})"):
+        return _stage_locked(args, config, overrides, flags)
+
+
+def _stage_locked(
+    args: argparse.Namespace, config: Config, overrides: dict[str, Any], flags: dict[str, Any]
+) -> int:
     if args.stage == "ingest":
         _require_lake(config)
-        summary = stages.ingest(config, Run(config), progress=_progress)
+        summary = stages.ingest(config, Run(config))
         print_ingest(summary)
         return EXIT_REFUSED if summary.refused else EXIT_OK
     if args.stage == "run":
@@ -485,7 +590,23 @@ def _run_stage(args: argparse.Namespace) -> int:
         console = _console()
         print_ingest(result.ingest, console)
         print_summary(result, config.confidence, console)
+        if args.no_prefect:
+            from pipeline.report import report_run
+
+            report_run(config, result.run_id)
+        print_report_path(report_path(config.out, result.run_id), console)
         return EXIT_REFUSED if result.ingest.refused else EXIT_OK
+    if args.stage == "report":
+        from pipeline.report import report_run
+
+        made = report_run(config, args.run_id, tuple(args.premise))
+        _console().print(
+            f"report of run {made.run_id}: {made.html} ({len(made.pngs)} figures, also as PNG in"
+            f" {made.html.parent / 'figures'}; home pages: {', '.join(made.homes) or 'none'})",
+            markup=False,
+            soft_wrap=True,
+        )
+        return EXIT_OK
     run = Run(config)
     result = stages.STAGE_FUNCTIONS[args.stage](config, run)
     if args.stage == "episodes":
@@ -545,6 +666,61 @@ def _serve(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _ledger_folder(given: Path | None) -> Path:
+    """The ledger folder to query: the one given (or its ledger/), else out/ledger when a run wrote it."""
+    if given is None:
+        default = Path("out") / "ledger"
+        if (default / "run").is_dir():
+            return default
+        raise StoreError(
+            "no ledger folder given: pass --ledger OUT/ledger, the ledger/ a run wrote under its --out folder"
+            ' (e.g. thermal-ledger sql "select * from program_totals" --ledger out/ledger)'
+        )
+    if not (given / "run").is_dir() and (given / "ledger" / "run").is_dir():
+        return given / "ledger"
+    return given
+
+
+def _sql(args: argparse.Namespace) -> int:
+    """``thermal-ledger sql``: one query against the analyst views; a table on screen or a file."""
+    import duckdb
+
+    from pipeline import store
+
+    if args.out is not None and args.out.suffix.lower() not in (".csv", ".parquet"):
+        raise StoreError(f"--out {args.out}: give a file ending in .csv or .parquet")
+    con = store.connect_ledger(_ledger_folder(args.ledger))
+    try:
+        relation = con.sql(args.query)
+        result = pl.DataFrame() if relation is None else relation.pl()
+    except duckdb.Error as exc:
+        detail = str(exc).splitlines()[0]
+        views = [
+            r[0] for r in con.execute("select view_name from duckdb_views() where not internal").fetchall()
+        ]
+        absent = " (a view over a table no run of this ledger wrote is absent)" if "Catalog" in detail else ""
+        raise StoreError(f"query refused: {detail}{absent}; views: {', '.join(sorted(views))}") from None
+    finally:
+        con.close()
+    if args.out is not None:
+        args.out.parent.mkdir(parents=True, exist_ok=True)
+        if args.out.suffix.lower() == ".csv":
+            result.write_csv(args.out)
+        else:
+            result.write_parquet(args.out)
+        print(f"{result.height:,} rows written to {args.out}")
+        return EXIT_OK
+    # Off a terminal every column is printed whole, however wide the result.
+    console = _console(width=100_000)
+    shown = result.head(max(args.max_rows, 0))
+    console.print(_table(None, shown.columns, shown.rows()))
+    more = result.height - shown.height
+    console.print(
+        f"{result.height:,} rows" + (f", {more:,} not shown (use --out to write all)" if more else "")
+    )
+    return EXIT_OK
+
+
 # glibc's mallopt parameters and the values the command sets (bytes).
 _M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3
 _MMAP_THRESHOLD = 32 << 20
@@ -585,14 +761,23 @@ def main(argv: list[str] | None = None) -> int:
     if args.stage == "bench":
         from pipeline.bench import main_bench
 
-        return main_bench(args.premises, args.days, args.seed, args.work, args.csv, args.reuse)
+        with progress.shown():
+            return main_bench(args.premises, args.days, args.seed, args.work, args.csv, args.reuse)
     if args.stage == "settings":
         print_settings(args.markdown)
         return EXIT_OK
     try:
         if args.stage == "truth":
             return _truth(args)
-        return _serve(args) if args.stage == "serve" else _run_stage(args)
+        if args.stage == "sql":
+            return _sql(args)
+        if args.stage == "serve":
+            return _serve(args)
+        with progress.shown():
+            return _run_stage(args)
+    except OutputInUseError as exc:
+        print(f"thermal-ledger: {exc}", file=sys.stderr)
+        return EXIT_BUSY
     except (*USER_ERRORS, TruthError, SimulationError) as exc:
         print(f"thermal-ledger: {exc}", file=sys.stderr)
         return EXIT_USAGE

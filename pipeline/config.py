@@ -32,7 +32,7 @@ from pipeline.features import StateSpace
 from pipeline.policies import DEFAULT_ACTIONS, SetbackRule
 from pipeline.store import DuckDBSettings
 
-STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "evaluate", "improve")
+STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "improve", "evaluate")
 """The stages a setting can shape, in the order they run."""
 
 PRESENCE_SOURCES: tuple[str, ...] = ("occupancy_flag", "schedule", "setback_hold")
@@ -286,7 +286,15 @@ class Config:
     cooling_days_per_year: Annotated[int, Strict(), Field(ge=1, le=366)] = _setting(
         122, stages=("evaluate", "improve"), unit="days"
     )
-    """Days a year the cooling schedule is in force, for annualising per-episode savings."""
+    """Season length for cooling: annual figures are episodes per observed cooling day times this."""
+    heating_days_per_year: Annotated[int, Strict(), Field(ge=1, le=366)] = _setting(
+        151, stages=("evaluate",), unit="days"
+    )
+    """Season length for heating (default November to March): annual figures of heating episodes use it."""
+    comfort_rise_limit_degree_hours: Annotated[float, Strict(), Field(ge=0)] = _setting(
+        0.0, stages=("evaluate",), unit="°C·h per episode"
+    )
+    """A policy is sent to a home only if the upper end of its comfort-change interval is at most this."""
     state: Annotated[StateSpace, BeforeValidator(_no_booleans("state"))] = _setting(
         stages=("episodes", "learn", "evaluate", "improve"), factory=StateSpace
     )
@@ -294,7 +302,13 @@ class Config:
     candidates: Annotated[
         tuple[SetbackRule, ...], BeforeValidator(_no_booleans("candidate")), Field(min_length=1)
     ] = _setting(stages=("evaluate",), factory=_default_candidates)
-    """Candidate setback rules evaluated in every run ([[candidate]] tables)."""
+    """Candidate setback rules evaluated in every run ([[candidate]] tables; candidate_file replaces them)."""
+    schedule_for: Annotated[Name, AfterValidator(_OneOf(("recommended", "every_candidate")))] = _setting(
+        "recommended", stages=("evaluate",)
+    )
+    """Plans in the schedule: 'recommended' (each home's policy to send) or 'every_candidate' (for review)."""
+    candidate_file: Path | None = _setting(None, stages=("evaluate",), unit="file")
+    """Rule file of candidate policies ([[rule]] tables; README), found beside the settings file naming it."""
     columns: dict[str, dict[str, str]] = _setting(stages=("ingest",), factory=dict)
     """Per landing folder, canonical column name -> the name used in the files ([columns.<folder>])."""
     shard_premises: Count = _setting(250, stages=(), execution=True, unit="premises")
@@ -354,12 +368,17 @@ class Config:
     )
     """Threads each DuckDB connection may use; 0 leaves DuckDB's default (one per core)."""
     duckdb_memory_limit: Annotated[Name, AfterValidator(_MEMORY_SIZE)] = _setting(
-        "", stages=(), execution=True, unit="bytes"
+        "2GB", stages=(), execution=True, unit="bytes"
     )
-    """Memory each DuckDB connection may hold before it spills to disk; empty leaves DuckDB's default
-    (80 % of RAM)."""
+    """Memory each DuckDB connection may hold before it spills to disk (beside the warehouse); the default
+    keeps a 10,000-home CSV ingest near 2 GiB; empty leaves DuckDB's default (80 % of RAM)."""
     duckdb_preserve_insertion_order: Annotated[bool, Strict()] = _setting(True, stages=(), execution=True)
     """Whether DuckDB keeps rows in the order read where a query does not sort; false can use less memory."""
+    # ---- the run report (read from the ledger after the stages; shapes no stage) ----
+    report_homes: Annotated[int, Strict(), Field(ge=0)] = _setting(3, stages=(), execution=True, unit="homes")
+    """Homes with the largest and, apart, the smallest estimated savings given a page each in the report."""
+    report_premises: tuple[Name, ...] = _setting((), stages=(), execution=True)
+    """Premises always given a page in the report (`thermal-ledger report --premise` adds more)."""
 
     def __post_init__(self) -> None:
         _check_rules(self)
@@ -442,6 +461,12 @@ def _check_rules(c: Config) -> None:
     for key, ok, allowed in state_rules:
         if not ok:
             raise _Rule((f"state.{key}",), f"must be {allowed}")
+    if c.candidate_file is not None and c.candidates != _default_candidates():
+        raise _Rule(
+            ("candidate_file", "candidate"),
+            "replaces the [[candidate]] tables: give the rules in one place (move them into the rule file)",
+            "tables cannot be given with candidate_file, which replaces them: move them into the rule file",
+        )
     names = [rule.name for rule in c.candidates]
     for i, rule in enumerate(c.candidates):
         for key in ("depth_c", "lead_steps"):
@@ -472,6 +497,8 @@ def _show(value: Any, quote: Callable[[str], str] = repr) -> str:
     """A value as the user would write it in TOML (strings in single quotes unless ``quote`` says)."""
     if isinstance(value, bool):
         return "true" if value else "false"
+    if value is None:
+        return "(unset)"
     if isinstance(value, str | Path):
         return quote(str(value))
     if isinstance(value, list | tuple):
@@ -531,6 +558,9 @@ def _normalise(source: str, key: str, value: Any) -> tuple[str, Any]:
                 if sub not in known:
                     raise _unknown(f"[[candidate]] {i}: unknown key {{}}", sub, known)
         return "candidates", tuple(value)
+    if head == "candidate_file" and isinstance(value, str) and source not in ("--set", "flag", "settings"):
+        # A rule file named in a settings file is found beside it, wherever the command runs from.
+        return head, str(Path(source).parent / value)
     if head == "columns":
         folders = _folders()
         for folder, mapping in _table(source, head, value, "landing folders").items():
@@ -793,6 +823,7 @@ _RULES = {
     "presence_sources": "no repeats",
     "estimators": "no repeats",
     "recommended_estimator": "one of estimators",
+    "candidate_file": "a TOML rule file; not together with [[candidate]] tables",
     "serve_cron": "5 fields (minute hour day-of-month month day-of-week) or @hourly ... @yearly",
     "serve_timezone": "an IANA time zone name",
     "serve_name": "no / % & < >",

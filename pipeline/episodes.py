@@ -136,9 +136,11 @@ def load_steps(con: duckdb.DuckDBPyConnection, table: str = "step") -> pl.DataFr
     decision points (built beside them by the sharded episode stage).
     """
     name = store.quote_identifier(table)
+    # One chunk per column: numpy reads a single chunk in place, several only by copying them,
+    # and every estimator call reads these columns.
     return store.frame(
         con, f"select s.*, p.cohort from {name} s join premise p using (premise_id) order by episode_id, t"
-    )
+    ).rechunk()
 
 
 def other_choice(config: Config) -> Config:

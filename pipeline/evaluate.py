@@ -32,6 +32,7 @@ from pipeline.config import Config
 from pipeline.estimators.registry import off_policy_estimator
 from pipeline.policies import action_index
 from pipeline.qmodel import FittedQ
+from pipeline.rules import Candidate, candidates_for
 
 SCOPES = (("premise", "premise_id"), ("cohort", "cohort"), ("portfolio", None))
 STATUS_OK, STATUS_THIN = "ok", "insufficient_evidence"
@@ -107,6 +108,8 @@ def evaluate_policy(
     refit: tuple[np.ndarray, np.ndarray] | None = None,
     multiplicity: np.ndarray | None = None,
     behavior_sums: tuple[estimators.ReplicateSums, estimators.ReplicateSums] | None = None,
+    season_days: int | None = None,
+    behavior_comfort: estimators.ReplicateSums | None = None,
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Savings rows (one per scope, group and estimator) and diagnostics of one target policy.
 
@@ -123,11 +126,17 @@ def evaluate_policy(
     into each cohort's and the portfolio's (``estimators.combine_sums``), so the pooled
     figures are what a sum over shards of premises gives.
 
+    The recommended estimator's rows also carry the bill alone (energy cost, no comfort
+    penalty), the comfort cost (°C-hours of setback in force after the return, and those
+    priced at the comfort penalty) and kWh, each with its interval from the same bootstrap
+    draws (``_measure_columns``).
+
     Parameters
     ----------
     steps : polars.DataFrame
         Logged decision steps sorted by (episode_id, t), with state_key, action,
-        reward (USD), kwh, recovery_kwh, premise_id and cohort.
+        reward (USD), kwh, recovery_kwh, cost_usd, recovery_cost_usd,
+        comfort_degree_hours, premise_id and cohort.
     pi, b : numpy.ndarray
         Target and behaviour probabilities of each logged action, shape (n_steps,).
     days : polars.DataFrame
@@ -145,6 +154,10 @@ def evaluate_policy(
     behavior_sums : tuple of estimators.ReplicateSums, optional
         ``on_policy_sums`` of the same steps and draws (USD, then kWh): the logged policy's
         value does not depend on the target, so several targets can share it.
+    season_days : int, optional
+        Days of the season annual figures cover (default ``cooling_days_per_year``).
+    behavior_comfort : estimators.ReplicateSums, optional
+        ``on_policy_comfort_sums`` of the same steps and draws, shared like ``behavior_sums``.
     """
     base = steps.select(
         "episode_id",
@@ -168,8 +181,18 @@ def evaluate_policy(
     # the costliest logged episode (stated in the README beside the bound).
     bounds = (1.5 * float(returns.min()), 0.0)
     usd_premise, kwh_premise = _scoped(usd_base, "premise_id"), _scoped(kwh_base, "premise_id")
-    sums = {name: _premise_sums(usd_premise, kwh_premise, name, multiplicity) for name in names}
+    recommended = config.recommended_estimator
+    sums = {
+        name: _premise_sums(usd_premise, kwh_premise, name, multiplicity, name == recommended)
+        for name in names
+    }
     sums["on_policy_value"] = behavior_sums or on_policy_sums(steps, multiplicity)
+    comfort = None
+    if recommended in names:
+        comfort = (
+            _comfort_sums(steps, pi, b, table, multiplicity, config),
+            behavior_comfort or on_policy_comfort_sums(steps, multiplicity),
+        )
     premise_cohort = steps.select("premise_id", "cohort").unique()
     rows, diags = [], []
     for scope, column in SCOPES:
@@ -188,6 +211,12 @@ def evaluate_policy(
         ).select("group", pl.col("lower_bound").alias("lower_bound_usd"))
         scope_days = _scoped(days, column).group_by("group").agg(pl.col("days_observed").sum())
         diag = estimators.diagnostics(usd_frame)
+        measured = None
+        if comfort is not None:
+            scoped_comfort = tuple(p if key is None else estimators.combine_sums([p], key) for p in comfort)
+            measured = _measure_columns(
+                scoped[recommended], scoped["on_policy_value"], scoped_comfort, config
+            )
         for name in names:
             usd, kwh = scoped[name]
             point = usd.frame()
@@ -209,25 +238,153 @@ def evaluate_policy(
                 .join(diag.select("group", "n_unsupported_steps"), on="group", how="left")
                 .with_columns(pl.lit(name).alias("estimator"))
             )
+            if name == recommended and measured is not None:
+                joined = joined.join(measured, on="group", how="left")
+            else:
+                joined = joined.with_columns(pl.lit(None, pl.Float64).alias(c) for c in MEASURE_COLUMNS)
             rows.append(_with_scope(joined, scope))
         diags.append(_with_scope(diag, scope))
-    return _finish_savings(pl.concat(rows), premise_cohort, config), pl.concat(diags)
+    season = config.cooling_days_per_year if season_days is None else season_days
+    return _finish_savings(pl.concat(rows), premise_cohort, config, season), pl.concat(diags)
+
+
+# What the recommended estimator also reports, from the same draws as its savings interval:
+# the energy bill alone, comfort (°C-hours of setback after the return) and kWh.
+MEASURE_COLUMNS = [
+    "bill_usd_behavior",
+    "bill_usd_policy",
+    "bill_savings_usd_per_episode",
+    "bill_ci_low",
+    "bill_ci_high",
+    "bill_lower_bound_usd",
+    "savings_kwh_ci_low",
+    "savings_kwh_ci_high",
+    "comfort_degree_hours_behavior",
+    "comfort_degree_hours_policy",
+    "comfort_degree_hours_ci_low",
+    "comfort_degree_hours_ci_high",
+    "comfort_change_degree_hours",
+    "comfort_change_ci_low",
+    "comfort_change_ci_high",
+    "comfort_cost_usd_behavior",
+    "comfort_cost_usd_policy",
+    "comfort_cost_usd_ci_low",
+    "comfort_cost_usd_ci_high",
+]
+"""Columns of the bill alone, kWh interval and comfort cost, filled on the recommended estimator's rows."""
+
+
+def _comfort_frame(steps: pl.DataFrame, pi: np.ndarray, b: np.ndarray) -> pl.DataFrame:
+    missing = [c for c in ("comfort_degree_hours",) if c not in steps.columns]
+    if missing:
+        raise estimators.EstimatorInputError(f"decision steps lack column(s) {missing} (see sql/step.sql)")
+    return steps.select(
+        "episode_id",
+        "t",
+        pl.col("premise_id").cast(pl.Utf8).alias("group"),
+        pl.col("comfort_degree_hours").alias("reward"),
+    ).with_columns(pl.Series("pi", pi), pl.Series("b", b))
+
+
+def _comfort_sums(
+    steps: pl.DataFrame,
+    pi: np.ndarray,
+    b: np.ndarray,
+    table: np.ndarray | None,
+    multiplicity: np.ndarray,
+    config: Config,
+) -> estimators.ReplicateSums:
+    """The recommended estimator's sums per premise of the °C-hours of setback after the return."""
+    frame = _comfort_frame(steps, pi, b)
+    if off_policy_estimator(config.recommended_estimator).needs_q_model:
+        frame = pl.concat(
+            [frame, _model_columns(steps, table, "comfort_degree_hours", config)], how="horizontal"
+        )
+    return estimators.replicate_sums(frame, config.recommended_estimator, multiplicity)
+
+
+def on_policy_comfort_sums(steps: pl.DataFrame, multiplicity: np.ndarray) -> estimators.ReplicateSums:
+    """The logged policy's °C-hours of setback after the return, sums per premise with replicates."""
+    ones = np.ones(steps.height)
+    return estimators.replicate_sums(_comfort_frame(steps, ones, ones), "on_policy_value", multiplicity)
+
+
+def _measure_columns(
+    policy: tuple[estimators.ReplicateSums, estimators.ReplicateSums],
+    logged: tuple[estimators.ReplicateSums, estimators.ReplicateSums],
+    comfort: tuple[estimators.ReplicateSums, estimators.ReplicateSums],
+    config: Config,
+) -> pl.DataFrame:
+    """The ``MEASURE_COLUMNS`` per group from (USD, kWh) sums of the policy and the logged policy and
+    the (policy, logged) comfort sums, all over the same groups and draws.
+
+    The bill alone is the penalised value plus the priced °C-hours, replicate by replicate: the
+    reward is minus the bill minus price x °C-hours (``sql/step.sql``), and every estimator is
+    linear in the reward for fixed weights (and, for doubly robust, a Q model linear in it).
+    Intervals are percentile intervals of the replicates (the policy's value, or its difference
+    from the logged policy's); the bill's one-sided bound is the (1 - confidence) quantile of its
+    savings replicates, as for ``lower_bound_bootstrap_usd``.
+    """
+    price = config.comfort_penalty_usd_per_degree_hour
+    labels = policy[0].labels
+    comfort_policy, comfort_logged = comfort[0].values(), comfort[1].values()
+    bill_policy = policy[0].values() + price * comfort_policy
+    bill_logged = logged[0].values() + price * comfort_logged
+    kwh_policy, kwh_logged = policy[1].values(), logged[1].values()
+
+    def interval(replicated: np.ndarray, low: str, high: str) -> dict[str, np.ndarray]:
+        found = estimators.percentile_interval(labels, replicated[0], replicated[1:], config.confidence)
+        return {low: found["ci_low"].to_numpy(), high: found["ci_high"].to_numpy()}
+
+    bill_savings = bill_policy - bill_logged
+    bound = _interval_and_bootstrap_bound(labels, bill_savings[0], bill_savings[1:], config)
+    policy_comfort = interval(comfort_policy, "comfort_degree_hours_ci_low", "comfort_degree_hours_ci_high")
+    columns = {
+        "group": labels,
+        "bill_usd_behavior": -bill_logged[0],
+        "bill_usd_policy": -bill_policy[0],
+        "bill_savings_usd_per_episode": bill_savings[0],
+        "bill_ci_low": bound["ci_low"].to_numpy(),
+        "bill_ci_high": bound["ci_high"].to_numpy(),
+        "bill_lower_bound_usd": bound["lower_bound_bootstrap_usd"].to_numpy(),
+        # Both kWh values are negated (rewards), so policy minus logged is kWh saved.
+        **interval(kwh_policy - kwh_logged, "savings_kwh_ci_low", "savings_kwh_ci_high"),
+        "comfort_degree_hours_behavior": comfort_logged[0],
+        "comfort_degree_hours_policy": comfort_policy[0],
+        **policy_comfort,
+        "comfort_change_degree_hours": comfort_policy[0] - comfort_logged[0],
+        **interval(comfort_policy - comfort_logged, "comfort_change_ci_low", "comfort_change_ci_high"),
+        "comfort_cost_usd_behavior": price * comfort_logged[0],
+        "comfort_cost_usd_policy": price * comfort_policy[0],
+        "comfort_cost_usd_ci_low": price * policy_comfort["comfort_degree_hours_ci_low"],
+        "comfort_cost_usd_ci_high": price * policy_comfort["comfort_degree_hours_ci_high"],
+    }
+    return pl.DataFrame(columns).select("group", *MEASURE_COLUMNS)
+
+
+BILL_NOTES = {
+    "cool": "electric meter data: the whole bill effect of cooling",
+    "heat": "electric meter data only: the gas a furnace burns is not in it, so a gas-heated home's"
+    " bill effect is larger than shown",
+}
+"""What a savings row's USD and kWh cover, per mode (column ``bill_note``)."""
 
 
 def _premise_sums(
-    usd: pl.DataFrame, kwh: pl.DataFrame, name: str, multiplicity: np.ndarray
+    usd: pl.DataFrame, kwh: pl.DataFrame, name: str, multiplicity: np.ndarray, kwh_replicates: bool = False
 ) -> tuple[estimators.ReplicateSums, estimators.ReplicateSums]:
-    """An estimator's sums per premise: USD for the point and every replicate, kWh for the point only."""
+    """An estimator's sums per premise: USD for the point and every replicate, kWh for the point only
+    (and every replicate too when ``kwh_replicates``, for the recommended estimator's kWh interval)."""
     return (
         estimators.replicate_sums(usd, name, multiplicity),
-        estimators.replicate_sums(kwh, name, multiplicity[:0]),
+        estimators.replicate_sums(kwh, name, multiplicity if kwh_replicates else multiplicity[:0]),
     )
 
 
 def on_policy_sums(
     steps: pl.DataFrame, multiplicity: np.ndarray
 ) -> tuple[estimators.ReplicateSums, estimators.ReplicateSums]:
-    """The logged policy's value sums per premise: USD with replicates, kWh (reward, kwh, recovery_kwh)."""
+    """The logged policy's value sums per premise, USD and kWh, both with replicates."""
     frame = _scoped(
         steps.select(
             "episode_id",
@@ -239,7 +396,7 @@ def on_policy_sums(
         "premise_id",
     )
     return _premise_sums(
-        frame, frame.with_columns(pl.col("neg_kwh").alias("reward")), "on_policy_value", multiplicity
+        frame, frame.with_columns(pl.col("neg_kwh").alias("reward")), "on_policy_value", multiplicity, True
     )
 
 
@@ -277,6 +434,12 @@ _ANNUAL = {
     "savings_kwh_per_episode": "savings_kwh_annual",
     "shrunk_savings_usd_per_episode": "shrunk_savings_usd_annual",
     "shrunk_savings_kwh_per_episode": "shrunk_savings_kwh_annual",
+    "bill_savings_usd_per_episode": "bill_savings_usd_annual",
+    "bill_ci_low": "bill_ci_low_annual",
+    "bill_ci_high": "bill_ci_high_annual",
+    "savings_kwh_ci_low": "savings_kwh_ci_low_annual",
+    "savings_kwh_ci_high": "savings_kwh_ci_high_annual",
+    "comfort_change_degree_hours": "comfort_change_degree_hours_annual",
 }
 # A premise's own figure and its cohort-shrunk counterpart.
 _SHRUNK = {
@@ -285,14 +448,21 @@ _SHRUNK = {
 }
 
 
-def _finish_savings(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config) -> pl.DataFrame:
+def _finish_savings(
+    rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config, season_days: int | None = None
+) -> pl.DataFrame:
     """Savings, status, recommendation, shrinkage toward the cohort and annual figures.
 
-    ``episodes_per_year`` is the scope's episodes per observed premise-day times
-    ``cooling_days_per_year``, and every annual figure is the per-episode figure
-    beside it times that. A row with insufficient evidence hides its own figures,
-    per episode and annual alike; a premise keeps its cohort-shrunk ones.
+    ``episodes_per_year`` is the scope's episodes per observed premise-day (``days_observed``,
+    summed over the scope's premises) times the season length ``season_days`` (default
+    ``cooling_days_per_year``), both kept on the row, and every annual figure is the
+    per-episode figure beside it times that. A row with insufficient evidence hides its
+    own figures, per episode and annual alike; a premise keeps its cohort-shrunk ones.
     """
+    season = config.cooling_days_per_year if season_days is None else season_days
+    for column in MEASURE_COLUMNS:
+        if column not in rows.columns:
+            rows = rows.with_columns(pl.lit(None, pl.Float64).alias(column))
     supported = (
         (pl.col("ess") >= config.min_ess)
         & (pl.col("n_unsupported_steps") == 0)
@@ -314,15 +484,22 @@ def _finish_savings(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Co
         "ci_high",
         "lower_bound_bootstrap_usd",
         "savings_kwh_per_episode",
+        *MEASURE_COLUMNS,
     ]
     # Outside premise scope the shrunk figure is the row's own figure, so it is hidden with it.
     hidden_shrunk = thin & (pl.col("scope") != "premise")
-    per_year = pl.col("n_episodes") / pl.col("days_observed") * config.cooling_days_per_year
-    return rows.with_columns(
-        *(pl.when(thin).then(None).otherwise(pl.col(c)).alias(c) for c in hidden),
-        *(pl.when(hidden_shrunk).then(None).otherwise(pl.col(c)).alias(c) for c in _SHRUNK.values()),
-        per_year.alias("episodes_per_year"),
-    ).with_columns((pl.col(c) * pl.col("episodes_per_year")).alias(annual) for c, annual in _ANNUAL.items())
+    per_year = pl.col("n_episodes") / pl.col("days_observed") * pl.col("season_days")
+    return (
+        rows.with_columns(pl.lit(season, pl.Int64).alias("season_days"))
+        .with_columns(
+            *(pl.when(thin).then(None).otherwise(pl.col(c)).alias(c) for c in hidden),
+            *(pl.when(hidden_shrunk).then(None).otherwise(pl.col(c)).alias(c) for c in _SHRUNK.values()),
+            per_year.alias("episodes_per_year"),
+        )
+        .with_columns(
+            (pl.col(c) * pl.col("episodes_per_year")).alias(annual) for c, annual in _ANNUAL.items()
+        )
+    )
 
 
 def _shrink_to_cohort(rows: pl.DataFrame, premise_cohort: pl.DataFrame, config: Config) -> pl.DataFrame:
@@ -402,21 +579,85 @@ COLUMNS = [
     "ess",
     "max_weight_share",
     "support_ok",
+    "n_unsupported_steps",
     "savings_kwh_per_episode",
     "shrunk_savings_kwh_per_episode",
+    *MEASURE_COLUMNS,
     "days_observed",
+    "season_days",
     "episodes_per_year",
     "savings_usd_annual",
     "savings_kwh_annual",
     "shrunk_savings_usd_annual",
     "shrunk_savings_kwh_annual",
+    "bill_savings_usd_annual",
+    "bill_ci_low_annual",
+    "bill_ci_high_annual",
+    "savings_kwh_ci_low_annual",
+    "savings_kwh_ci_high_annual",
+    "comfort_change_degree_hours_annual",
 ]
 
 
+def applicable_premises(candidate: Candidate, days: pl.DataFrame) -> pl.Series | None:
+    """Premise ids a candidate applies to, from ``days`` (premise_id, cohort, rate_plan_id); None: all."""
+    if not candidate.scoped:
+        return None
+    return days.filter(pl.Series(candidate.applies(days)))["premise_id"]
+
+
+def _restricted(bundle: tuple, premises: pl.Series) -> tuple:
+    """A mode's shared inputs (steps, b, refit, draws, ``_logged_sums``) kept to the steps of ``premises``.
+
+    The draws are per episode (seeded by the episode id), so keeping an episode's column keeps
+    exactly the draws a frame of the kept episodes alone would get.
+    """
+    in_mode, b, refit, draws, _ = bundle
+    keep = in_mode["premise_id"].is_in(premises.implode()).to_numpy()
+    steps = in_mode.filter(pl.Series(keep))
+    if steps.height == 0:
+        return (steps, b[keep], None, draws[:, :0], None)
+    episode = in_mode["episode_id"].to_numpy()
+    kept_episodes = keep[np.r_[True, episode[1:] != episode[:-1]]]
+    kept_draws = draws[:, kept_episodes]
+    kept_refit = None if refit is None else (refit[0][:, kept_episodes], refit[1][:, keep])
+    return steps, b[keep], kept_refit, kept_draws, _logged_sums(steps, kept_draws)
+
+
+def _logged_sums(steps: pl.DataFrame, draws: np.ndarray) -> tuple:
+    """The logged policy's (USD, kWh) sums and its comfort sums: every candidate of a mode shares them."""
+    return on_policy_sums(steps, draws), on_policy_comfort_sums(steps, draws)
+
+
+def season_days(config: Config, mode: str) -> int:
+    """The configured season length annual figures of ``mode``'s episodes cover, days."""
+    return config.heating_days_per_year if mode == "heat" else config.cooling_days_per_year
+
+
+def days_in_mode(days: pl.DataFrame, mode: str) -> pl.DataFrame:
+    """Each premise's observed days in ``mode`` when ``days`` has a mode column, else ``days`` as given."""
+    if "mode" not in days.columns:
+        return days
+    return days.filter(pl.col("mode") == mode).drop("mode")
+
+
 def evaluate_candidates(
-    steps: pl.DataFrame, behavior: BehaviorModel, days: pl.DataFrame, config: Config
+    steps: pl.DataFrame,
+    behavior: BehaviorModel,
+    days: pl.DataFrame,
+    config: Config,
+    candidates: tuple[Candidate, ...] | None = None,
 ) -> Evaluation:
-    """Evaluate every configured candidate rule, per mode (cooling and heating never mix)."""
+    """Evaluate every candidate, per mode (cooling and heating never mix).
+
+    ``candidates`` default to the run's (``rules.candidates_for``). A candidate that applies
+    to some cohorts or rate plans only is scored on the episodes of the premises it applies
+    to (``applicable_premises``; ``days`` then needs rate_plan_id when it names rate plans):
+    its cohort and portfolio rows pool those premises alone. ``days`` holds premise_id,
+    cohort and days_observed, optionally per ``mode`` (the days the thermostat was in that
+    mode), for annualising over the mode's season.
+    """
+    candidates = candidates_for(config) if candidates is None else candidates
     visits = steps.group_by("mode", "state_key").agg(pl.len().alias("visits"))
     savings, diags, policies = [], [], []
     # What every candidate of a mode shares: its steps, behaviour probabilities and bootstrap draws.
@@ -425,11 +666,16 @@ def evaluate_candidates(
         in_mode = steps.filter(pl.col("mode") == mode)
         refit = behavior_replicates(in_mode, behavior, config) if config.bootstrap_refit_behavior else None
         draws = estimators.frame_multiplicity(in_mode, config.bootstrap_replicates, config.seed)
-        logged = on_policy_sums(in_mode, draws)
+        logged = _logged_sums(in_mode, draws)
         modes[mode] = (in_mode, behavior.probabilities(in_mode), refit, draws, logged)
-    for rule in config.candidates:
-        table = rule.table(config.state, config.actions, config.target_epsilon)
-        for mode, (in_mode, b, refit, draws, logged) in modes.items():
+    for rule in candidates:
+        table = rule.table
+        premises = applicable_premises(rule, days)
+        rule_days = days if premises is None else days.filter(pl.col("premise_id").is_in(premises.implode()))
+        for mode, bundle in modes.items():
+            in_mode, b, refit, draws, logged = bundle if premises is None else _restricted(bundle, premises)
+            if in_mode.height == 0:
+                continue
             q_model = FittedQ(config.state, config.actions).fit(in_mode, table)
             policies.append(
                 policy_frame(rule.name, table, config, q_model.q_)
@@ -437,7 +683,19 @@ def evaluate_candidates(
                 .join(visits, on=["mode", "state_key"], how="left")
             )
             pi = target_probabilities(in_mode, table, config)
-            s, d = evaluate_policy(in_mode, pi, b, days, config, table, refit, draws, logged)
+            s, d = evaluate_policy(
+                in_mode,
+                pi,
+                b,
+                days_in_mode(rule_days, mode),
+                config,
+                table,
+                refit,
+                draws,
+                logged[0],
+                season_days(config, mode),
+                logged[1],
+            )
             tag = (pl.lit(rule.name).alias("policy_name"), pl.lit(mode).alias("mode"))
             savings.append(s.with_columns(*tag))
             diags.append(d.with_columns(*tag))
@@ -445,7 +703,10 @@ def evaluate_candidates(
         pl.concat(savings)
         .select(*COLUMNS)
         .with_columns(
-            pl.lit(config.comfort_penalty_usd_per_degree_hour).alias("comfort_penalty_usd_per_degree_hour")
+            pl.lit(config.comfort_penalty_usd_per_degree_hour).alias("comfort_penalty_usd_per_degree_hour"),
+            pl.col("mode")
+            .replace_strict(BILL_NOTES, default=None, return_dtype=pl.String)
+            .alias("bill_note"),
         )
         .sort("policy_name", "mode", "scope", "key", "estimator")
     )
@@ -513,7 +774,11 @@ def state_values(steps: pl.DataFrame) -> pl.DataFrame:
 
 
 def horizon_report(
-    steps_by_choice: dict[str, pl.DataFrame], config: Config, fitted: dict[str, BehaviorModel]
+    steps_by_choice: dict[str, pl.DataFrame],
+    config: Config,
+    fitted: dict[str, BehaviorModel],
+    candidates: tuple[Candidate, ...] | None = None,
+    days: pl.DataFrame | None = None,
 ) -> pl.DataFrame:
     """Weight spread of each candidate under each decision-point choice (the curse of horizon).
 
@@ -523,6 +788,8 @@ def horizon_report(
         Decision steps built with each choice of decision points ('fixed', 'anchored').
     fitted : dict of str to BehaviorModel
         The behaviour model fitted (by the learn stage) on each choice's steps.
+    candidates : tuple of Candidate, optional
+        Default: the run's. With ``days``, a scoped candidate is weighed on its premises only.
 
     Returns
     -------
@@ -530,6 +797,7 @@ def horizon_report(
         decision_points, mode, policy_name, mean_decisions, n_episodes, ess, ess_share,
         max_weight_share and weight_max over the whole portfolio.
     """
+    candidates = candidates_for(config) if candidates is None else candidates
     rows = []
     for choice, steps in steps_by_choice.items():
         behavior = fitted[choice]
@@ -537,10 +805,16 @@ def horizon_report(
             in_mode = steps.filter(pl.col("mode") == mode)
             b = behavior.probabilities(in_mode)
             decisions = in_mode.group_by("episode_id").len()["len"].mean()
-            for rule in config.candidates:
-                table = rule.table(config.state, config.actions, config.target_epsilon)
-                frame = in_mode.select("episode_id", "t").with_columns(
-                    pl.Series("pi", target_probabilities(in_mode, table, config)), pl.Series("b", b)
+            for rule in candidates:
+                premises = None if days is None else applicable_premises(rule, days)
+                keep = np.ones(in_mode.height, dtype=bool)
+                if premises is not None:
+                    keep = in_mode["premise_id"].is_in(premises.implode()).to_numpy()
+                if not keep.any():
+                    continue
+                kept = in_mode.filter(pl.Series(keep))
+                frame = kept.select("episode_id", "t").with_columns(
+                    pl.Series("pi", target_probabilities(kept, rule.table, config)), pl.Series("b", b[keep])
                 )
                 diag = estimators.diagnostics(frame).row(0, named=True)
                 rows.append(

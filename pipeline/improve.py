@@ -88,51 +88,16 @@ SAFETY_COLUMNS = [
     "min_probability",
 ]
 """Columns of the ``safety_test`` ledger table, one row per mode and scope key."""
-
-
-SAFETY_SCHEMA = {
-    **dict.fromkeys(
-        ["policy_name", "mode", "scope", "key", "outcome", "reason", "learner", "bound_method"], pl.Utf8
-    ),
-    "confidence": pl.Float64,
-    **dict.fromkeys(
-        ["n_premises", "n_learning_episodes", "n_held_out_episodes", "n_bound_episodes"], pl.Int64
-    ),
-    "held_out_from_utc": pl.Datetime("us", "UTC"),
-    **dict.fromkeys(
-        [
-            "savings_estimate_usd",
-            "lower_bound_usd",
-            "comfort_change_usd",
-            "residual_low_usd",
-            "residual_high_usd",
-        ],
-        pl.Float64,
-    ),
-    "outside_range_episodes": pl.Int64,
-    "min_count": pl.Int64,
-    "epsilon": pl.Float64,
-    "min_probability": pl.Float64,
-}
-"""Types of the ``safety_test`` columns (a run where no scope had enough evidence still has them)."""
-
-_FLAGS = ("recommended", "support_ok")
-_TEXT = ("policy_name", "mode", "scope", "key", "estimator", "status")
-
-
-def _empty_savings() -> pl.DataFrame:
-    """The savings columns with no rows, typed as evaluation writes them."""
-    schema = {
-        c: pl.Utf8
-        if c in _TEXT
-        else pl.Boolean
-        if c in _FLAGS
-        else pl.Int64
-        if c == "n_episodes"
-        else pl.Float64
-        for c in evaluation.COLUMNS
-    }
-    return pl.DataFrame(schema=schema | {"comfort_penalty_usd_per_degree_hour": pl.Float64})
+SAFETY_FLOATS = [
+    "confidence",
+    "savings_estimate_usd",
+    "lower_bound_usd",
+    "comfort_change_usd",
+    "residual_low_usd",
+    "residual_high_usd",
+    "epsilon",
+]
+SAFETY_TEXT = ["outcome", "reason", "learner", "bound_method"]
 
 
 @dataclass(frozen=True)
@@ -792,8 +757,19 @@ def improve_mode(
     return Improvement(
         policy=pl.concat(policies) if policies else _empty_policy(),
         savings=pl.concat(savings, how="vertical_relaxed") if savings else _empty_savings(),
-        safety_test=pl.DataFrame(tests, schema=SAFETY_SCHEMA).select(SAFETY_COLUMNS),
+        safety_test=pl.DataFrame(tests, infer_schema_length=None)
+        .select(SAFETY_COLUMNS)
+        .with_columns(
+            # Columns no scope filled (nothing had enough evidence) keep their types.
+            pl.col(SAFETY_FLOATS).cast(pl.Float64),
+            pl.col(SAFETY_TEXT).cast(pl.Utf8),
+        ),
     )
+
+
+def _empty_savings() -> pl.DataFrame:
+    """No learned policy's savings rows (nothing had enough evidence): the key columns, no rows."""
+    return pl.DataFrame(schema=dict.fromkeys(("policy_name", "mode", "scope", "key", "estimator"), pl.Utf8))
 
 
 def _empty_policy() -> pl.DataFrame:

@@ -17,14 +17,17 @@ from __future__ import annotations
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import polars as pl
 
+from pipeline import convergence, ledger, lineage, rules, schedule, shards, store
 from pipeline import evaluate as evaluation
 from pipeline import improve as improvement
 from pipeline import ingest as ingestion
-from pipeline import lineage, shards, store
+from pipeline import progress as reporting
+from pipeline import recommend as recommending
 from pipeline.behavior import BEHAVIOR_TABLES, BehaviorModel, fit_behavior, load_behavior
 from pipeline.config import Config
 from pipeline.episodes import (
@@ -51,7 +54,7 @@ __all__ = [
     "run_all",
 ]
 
-STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "evaluate", "improve")
+STAGES: tuple[str, ...] = ("ingest", "episodes", "learn", "improve", "evaluate")
 """The stages of a run, in order; each reads what the ones before it left in the warehouse."""
 
 
@@ -116,6 +119,8 @@ class EvaluationSummary:
     horizon: pl.DataFrame
     tables: Mapping[str, int] = field(default_factory=dict)
     work: StageWork = field(default_factory=lambda: StageWork("evaluate"))
+    recommendation_total: pl.DataFrame = field(default_factory=pl.DataFrame)
+    """Homes per policy (or kept on current behaviour, by reason) and their annual totals."""
 
 
 @dataclass(frozen=True)
@@ -166,7 +171,8 @@ def ingest(config: Config, run: Run, progress: ingestion.Progress | None = None)
     if config.warehouse_path.exists():
         with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
             reread = bool(lineage.changed(con, "ingest", config.stage_settings("ingest")))
-    results = ingestion.results_frame(ingestion.ingest(config, progress=progress, reread=reread))
+    files = ingestion.ingest(config, progress=progress or reporting.counter("ingest"), reread=reread)
+    results = ingestion.results_frame(files)
     with store.warehouse(config.warehouse_path, settings=config.duckdb) as con, store.transaction(con):
         loaded = store.execute(
             con,
@@ -183,12 +189,16 @@ def plan_episodes(config: Config) -> tuple[shards.Shard, ...]:
     """The episode stage's shards of premises, each with the fingerprint of its inputs."""
     _checked(config, "episodes")
     with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
-        return shards.plan(con, config, sql_params(config))
+        plan = shards.plan(con, config, sql_params(config))
+    reporting.begin("episodes", len(plan), "episodes: shards of premises")
+    return plan
 
 
 def episode_shard(config: Config, shard: shards.Shard) -> shards.ShardWork:
     """Build (or reuse) one shard's hourly grid, episodes and steps; runs on any worker."""
-    return shards.build_shard(config, shard, sql_params(config))
+    work = shards.build_shard(config, shard, sql_params(config))
+    reporting.advance("episodes")
+    return work
 
 
 def finish_episodes(
@@ -212,6 +222,7 @@ def finish_episodes(
             )
         summary = store.query(con, "episode_summary")
     shards.remove_stale(config, plan)
+    reporting.done("episodes")
     tables = {"hourly": counts.hours, "episode": counts.episodes, "step": counts.steps}
     tables |= run.write("episode_summary", summary)
     tables |= run.write("state_lookup", config.state.lookup())
@@ -261,6 +272,7 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
     """
     started = time.perf_counter()
     _checked(config, "learn")
+    reporting.begin("learn", None, "learn: fitting the behaviour model")
     build_id = _build_id(config, "learn")
     if build_id is not None:
         with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
@@ -286,6 +298,7 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
         counts = top.group_by("habit_type").len()
         found = dict(zip(counts["habit_type"].to_list(), counts["len"].to_list(), strict=True))
         per_type = tuple(found.get(z, 0) for z in range(1, model.n_types + 1))
+    reporting.done("learn")
     return BehaviorSummary(
         config.behavior_model,
         model.n_types,
@@ -297,18 +310,28 @@ def learn(config: Config, run: Run) -> BehaviorSummary:
     )
 
 
-EVALUATION_TABLES: tuple[str, ...] = ("horizon", "state_value", "savings", "policy", "diagnostics")
+EVALUATION_TABLES: tuple[str, ...] = (
+    "horizon",
+    "state_value",
+    "savings",
+    "policy",
+    "diagnostics",
+    "schedule",
+    "recommendation",
+    "recommendation_total",
+    "estimate_path",
+)
 """The ledger tables the evaluate stage writes, also kept in the warehouse as ``evaluation_<name>``."""
 
 
-def _build_id(config: Config, stage: str) -> str | None:
+def _build_id(config: Config, stage: str, inputs: str = "") -> str | None:
     """The current build's id of ``stage`` if this run would build it the same, else None."""
     with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
-        build_id = lineage.build_id_for(con, stage, config.stage_settings(stage), _upstream(stage))
+        build_id = lineage.build_id_for(con, stage, config.stage_settings(stage), _upstream(stage), inputs)
         return build_id if lineage.reusable(con, stage, build_id) else None
 
 
-def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
+def _evaluation_tables(config: Config, candidates: tuple[rules.Candidate, ...]) -> dict[str, pl.DataFrame]:
     """Every frame the evaluate stage publishes, computed from the warehouse's steps and behaviour model."""
     steps = _steps(config)
     other = other_choice(config)
@@ -318,20 +341,45 @@ def _evaluation_tables(config: Config) -> dict[str, pl.DataFrame]:
             config.decision_points: behavior,
             other.decision_points: _load_behavior(con, f"behavior_{other.decision_points}", config),
         }
+        # Days the thermostat was in each mode: a mode's episodes are annualised over its season.
         days = store.frame(
             con,
-            "select premise_id, p.cohort, count(distinct h.local_date) as days_observed"
-            " from hourly h join premise p using (premise_id) group by all",
+            "select premise_id, p.cohort, p.rate_plan_id, h.mode_end as mode,"
+            " count(distinct h.local_date) as days_observed"
+            " from hourly h join premise p using (premise_id) where h.mode_end in ('cool', 'heat')"
+            " group by all",
         )
         by_choice = {config.decision_points: steps, other.decision_points: load_steps(con, "step_alternate")}
-    result = evaluation.evaluate_candidates(steps, behavior, days, config)
-    return {
-        "horizon": evaluation.horizon_report(by_choice, config, fitted),
+        premises = store.query(con, "premise_coverage")
+        # Learned policies count only when their stage runs before this one, so lineage keeps them current.
+        learned_savings, safety = (
+            recommending.learned_tables(con) if "improve" in _upstream("evaluate") else (None, None)
+        )
+    result = evaluation.evaluate_candidates(steps, behavior, days, config, candidates)
+    every_savings = result.savings
+    if learned_savings is not None:
+        every_savings = pl.concat([result.savings, learned_savings], how="diagonal_relaxed")
+    decided = recommending.recommend(every_savings, premises, config, safety)
+    frames = {
+        "horizon": evaluation.horizon_report(by_choice, config, fitted, candidates, days),
         "state_value": evaluation.state_values(steps),
         "savings": result.savings,
         "policy": result.policy,
         "diagnostics": result.diagnostics,
+        "recommendation": decided.homes,
+        "recommendation_total": decided.totals,
+        # The run report's "estimates as episodes accumulate" (program-wide policies).
+        "estimate_path": convergence.estimate_path(steps, behavior, result.policy, config),
     }
+    # Schedules: each home's recommended policy, a candidate or a learned one (or, for review,
+    # every candidate that applies to it: schedule_for).
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
+        learned = schedule.learned_policy(con) if "improve" in _upstream("evaluate") else None
+        plannable = result.policy if learned is None else pl.concat([result.policy, learned], how="diagonal")
+        frames["schedule"] = schedule.for_run(
+            con, config, candidates, plannable, frames.get("recommendation")
+        )
+    return frames
 
 
 def evaluate(config: Config, run: Run) -> EvaluationSummary:
@@ -342,8 +390,11 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
     evaluating again.
     """
     started = time.perf_counter()
+    # The rule file is read first, so a mistake in it is reported before any work.
+    candidates = rules.candidates_for(config)
     _checked(config, "evaluate")
-    build_id = _build_id(config, "evaluate")
+    reporting.begin("evaluate", None, "evaluate: candidate policies")
+    build_id = _build_id(config, "evaluate", rules.digest(candidates))
     if build_id is not None:
         with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
             frames = {
@@ -351,18 +402,26 @@ def evaluate(config: Config, run: Run) -> EvaluationSummary:
                 for name in EVALUATION_TABLES
             }
     else:
-        frames = _evaluation_tables(config)
+        frames = _evaluation_tables(config, candidates)
         with store.warehouse(config.warehouse_path, settings=config.duckdb) as con, store.transaction(con):
             for name in EVALUATION_TABLES:
                 store.replace_table(con, f"evaluation_{name}", frames[name])
             lineage.record(
-                con, "evaluate", config.stage_settings("evaluate"), _upstream("evaluate"), run.run_id
+                con,
+                "evaluate",
+                config.stage_settings("evaluate"),
+                _upstream("evaluate"),
+                run.run_id,
+                rules.digest(candidates),
             )
     tables: dict[str, int] = {}
     for name in EVALUATION_TABLES:
         tables |= run.write(name, frames[name])
+    reporting.done("evaluate")
     work = StageWork("evaluate", build_id is not None, time.perf_counter() - started)
-    return EvaluationSummary(frames["savings"], frames["horizon"], tables, work)
+    return EvaluationSummary(
+        frames["savings"], frames["horizon"], tables, work, frames["recommendation_total"]
+    )
 
 
 # ---- improve: learned policies and their safety test (pipeline/improve.py) ----
@@ -434,14 +493,29 @@ def improve(config: Config, run: Run) -> ImprovementSummary:
     return ImprovementSummary(frames["safety_test"], frames["savings"], tables, work)
 
 
+def schedule_folder(config: Config, run: Run) -> Path:
+    """Where a published run's schedule files for operations teams go: one CSV per rate plan."""
+    return config.out / "schedules" / f"run_date={run.run_date:%Y-%m-%d}" / run.run_id
+
+
 def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
     """Write the run record with the row counts the stages' results report; return its file's path."""
     row_counts: dict[str, int] = {}
     for result in results.values():
         row_counts |= dict(result.tables)
     row_counts |= run.write("stage_work", stage_work_frame([result.work for result in results.values()]))
+    row_counts |= run.write("abandoned_run", ledger.sweep_abandoned(config.ledger_path, run.run_id))
     with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
-        return str(run.finish(row_counts, con))
+        record = str(run.finish(row_counts, con))
+        enrolled = schedule.programs(con)
+    if "evaluate" in results:
+        # Operations teams' files appear only once the run record has published the run.
+        written = (
+            config.ledger_path / "schedule" / f"run_date={run.run_date:%Y-%m-%d}" / f"{run.run_id}.parquet"
+        )
+        plans = pl.read_parquet(written).drop("run_id")
+        schedule.write_program_files(plans, schedule_folder(config, run), enrolled)
+    return record
 
 
 def stage_work_frame(work: list[StageWork]) -> pl.DataFrame:
@@ -480,7 +554,8 @@ def summary(run: Run, results: Mapping[str, Any]) -> RunSummary:
 
 def run_all(config: Config) -> RunSummary:
     """Every stage in order, without Prefect."""
-    run = Run(config)
-    results = {name: STAGE_FUNCTIONS[name](config, run) for name in STAGES}
-    finish(config, run, results)
+    with ledger.exclusive_output(config.out, "(thermal-ledger run)"):
+        run = Run(config)
+        results = {name: STAGE_FUNCTIONS[name](config, run) for name in STAGES}
+        finish(config, run, results)
     return summary(run, results)

@@ -7,7 +7,9 @@ loaded by name; values always go in as bound parameters.
 from __future__ import annotations
 
 import datetime as dt
+import os
 import re
+import signal
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -181,19 +183,63 @@ def write_ledger(
     path = folder / (f"{run_id}-{part}.parquet" if part else f"{run_id}.parquet")
     tmp = path.with_suffix(".parquet.tmp")
     frame.write_parquet(tmp)
+    fault_point("ledger-write")
     tmp.replace(path)
     return path
 
 
+FAULT_VARIABLE = "THERMAL_LEDGER_FAULT"
+_fault_counts: dict[str, int] = {}
+
+
+def fault_point(name: str) -> None:
+    """Kill this process with SIGKILL at the n-th pass of point ``name`` if the environment asks.
+
+    For fault-injection tests: ``THERMAL_LEDGER_FAULT=ledger-write:3`` kills the process at its
+    third ledger write, after the temporary file is written and before it is renamed.
+    Does nothing when the variable is unset.
+    """
+    spec = os.environ.get(FAULT_VARIABLE)
+    if not spec:
+        return
+    point, _, nth = spec.partition(":")
+    if point != name:
+        return
+    _fault_counts[name] = _fault_counts.get(name, 0) + 1
+    if _fault_counts[name] == int(nth or 1):
+        os.kill(os.getpid(), signal.SIGKILL)
+
+
+def view_files() -> list[str]:
+    """Names of the SQL files of analyst views: ``views`` first, then every ``views_<topic>`` in order."""
+    return ["views", *sorted(p.stem for p in SQL_DIR.glob("views_*.sql"))]
+
+
 def connect_ledger(ledger: Path, settings: DuckDBSettings | None = None) -> duckdb.DuckDBPyConnection:
-    """An in-memory DuckDB connection with the analyst views of ``sql/views.sql`` over the ledger."""
+    """An in-memory DuckDB connection with the analyst views of ``sql/views*.sql`` over the ledger.
+
+    Views of tables the ledger holds no file of are left out (a query naming one says the
+    table does not exist) rather than failing the whole connection; each appears on the
+    first connection after a run writes its table. A folder with no ``run`` table is no
+    ledger and is refused (``StoreError``).
+    """
+    root = Path(ledger).resolve()
+    if not (root / "run").is_dir():
+        raise StoreError(
+            f"no ledger at {root}: give the ledger folder a run wrote (the ledger/ inside its --out folder)"
+        )
     con = duckdb.connect()
     execute(con, "set TimeZone = 'UTC'")
     apply_settings(con, settings or DuckDBSettings())
-    execute(con, "set variable ledger_root = $root", {"root": str(Path(ledger).resolve())})
-    run_sql(con, "views")
-    if (Path(ledger) / "policy_truth").is_dir():
-        run_sql(con, "views_truth")
+    execute(con, "set variable ledger_root = $root", {"root": str(root)})
+    for name in view_files():
+        for statement in [s for s in sql_text(name).split(";\n") if _has_code(s)]:
+            try:
+                execute(con, statement)
+            except (duckdb.IOException, duckdb.CatalogException, duckdb.BinderException):
+                # A table this ledger does not hold yet (written by a newer version, or not by
+                # any run so far): its view, and the views built on it, are left out.
+                continue
     return con
 
 

@@ -100,18 +100,23 @@ actions as (
     from steps
 ),
 -- Degrees outside comfort at the return: the indoor reading when asked for and logged,
--- else the setback still in force; priced per degree-hour over the recovery hours.
-penalised as (
+-- else the setback still in force, times the recovery hours (comfort_degree_hours, kept
+-- apart so comfort can be estimated on its own); priced per degree-hour into the reward.
+discomfort as (
     select
         *,
         case when t = n_steps - 1
-            then $penalty_usd * $recovery_hours * greatest(
+            then $recovery_hours * greatest(
                 case when $indoor_basis then coalesce(return_indoor_excess_c, offset_end_c) else offset_end_c end,
                 0
             )
             else 0.0
-        end as comfort_penalty_usd
+        end as comfort_degree_hours
     from actions
+),
+penalised as (
+    select *, $penalty_usd * comfort_degree_hours as comfort_penalty_usd
+    from discomfort
 ),
 rewarded as (
     select *, -(cost_usd + recovery_cost_usd + comfort_penalty_usd) as reward

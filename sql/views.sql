@@ -5,36 +5,42 @@
 -- (pipeline.store.connect_ledger does this for you from Python.)
 -- Files are read with union_by_name so runs written before a column was added still read
 -- (their rows give null there).
+-- Only published runs are visible: a run is published by its `run` record, written after
+-- every other table of the run, so the rows of a run killed part-way never reach a view.
+create or replace macro ledger_files(tbl) as table
+    select * from read_parquet(
+        getvariable('ledger_root') || '/' || tbl || '/*/*.parquet', hive_partitioning = true, union_by_name = true
+    );
+create or replace macro published(tbl) as table
+    select * from ledger_files(tbl) where run_id in (select run_id from run);
 create or replace view run as
-    select * from read_parquet(getvariable('ledger_root') || '/run/*/*.parquet', hive_partitioning = true, union_by_name = true);
+    select * from ledger_files('run');
 create or replace view savings as
-    select * from read_parquet(getvariable('ledger_root') || '/savings/*/*.parquet', hive_partitioning = true, union_by_name = true);
+    select * from published('savings');
 create or replace view policy as
-    select * from read_parquet(getvariable('ledger_root') || '/policy/*/*.parquet', hive_partitioning = true, union_by_name = true);
+    select * from published('policy');
 create or replace view behavior_policy as
-    select * from read_parquet(
-        getvariable('ledger_root') || '/behavior_policy/*/*.parquet', hive_partitioning = true, union_by_name = true
-    );
+    select * from published('behavior_policy');
 create or replace view behavior_type as
-    select * from read_parquet(
-        getvariable('ledger_root') || '/behavior_type/*/*.parquet', hive_partitioning = true, union_by_name = true
-    );
+    select * from published('behavior_type');
 create or replace view diagnostics as
-    select * from read_parquet(getvariable('ledger_root') || '/diagnostics/*/*.parquet', hive_partitioning = true, union_by_name = true);
+    select * from published('diagnostics');
 create or replace view episode_summary as
-    select * from read_parquet(
-        getvariable('ledger_root') || '/episode_summary/*/*.parquet', hive_partitioning = true, union_by_name = true
-    );
+    select * from published('episode_summary');
 create or replace view state_value as
-    select * from read_parquet(getvariable('ledger_root') || '/state_value/*/*.parquet', hive_partitioning = true, union_by_name = true);
+    select * from published('state_value');
 create or replace view horizon as
-    select * from read_parquet(getvariable('ledger_root') || '/horizon/*/*.parquet', hive_partitioning = true, union_by_name = true);
+    select * from published('horizon');
 create or replace view state_lookup as
-    select * from read_parquet(getvariable('ledger_root') || '/state_lookup/*/*.parquet', hive_partitioning = true, union_by_name = true);
+    select * from published('state_lookup');
 create or replace view shard_work as
-    select * from read_parquet(getvariable('ledger_root') || '/shard_work/*/*.parquet', hive_partitioning = true, union_by_name = true);
+    select * from published('shard_work');
 create or replace view stage_work as
-    select * from read_parquet(getvariable('ledger_root') || '/stage_work/*/*.parquet', hive_partitioning = true, union_by_name = true);
+    select * from published('stage_work');
+-- Program savings of each program-wide policy as episodes accumulate (in the order they
+-- happened): ordinary and weighted IS with normal-approximation bands (pipeline/convergence.py).
+create or replace view estimate_path as
+    select * from published('estimate_path');
 create or replace view latest_run as
     select run_id from run order by finished_at desc limit 1;
 create or replace view savings_latest as
@@ -66,9 +72,13 @@ create or replace view savings_by_premise as
     from savings_latest
     where scope = 'premise' and recommended
     order by premise_id, policy_name, mode;
+-- Runs killed part-way that a later run found and removed (one row per abandoned run id,
+-- with the tables it had written); `run_id` is the run that removed them.
+create or replace view abandoned_run as
+    select * from published('abandoned_run');
 -- ---- learned policies and their safety test (the improve stage) ----
 create or replace view safety_test as
-    select * from read_parquet(getvariable('ledger_root') || '/safety_test/*/*.parquet', hive_partitioning = true, union_by_name = true);
+    select * from published('safety_test');
 -- Per mode and scope of the latest run: was a learned policy proposed, and why (not).
 create or replace view safety_test_latest as
     select

@@ -124,8 +124,14 @@ def test_true_is_not_a_number_in_the_nested_tables():
 
 
 def test_sample_settings_file_loads_and_states_the_defaults():
-    """sample_lake/settings.toml is valid and spells out the defaults, so the demo means the same with it."""
-    assert config_module.load(ROOT / "sample_lake" / "settings.toml") == Config()
+    """sample_lake/settings.toml is valid and spells out the defaults, so the demo means the same with it.
+
+    Its one addition is the demo's rule file, found beside it; the rule file's first three rules are
+    the default candidates (tests/test_rules.py).
+    """
+    loaded = config_module.load(ROOT / "sample_lake" / "settings.toml")
+    assert loaded.candidate_file == ROOT / "sample_lake" / "candidates.toml"
+    assert dataclasses.replace(loaded, candidate_file=None) == Config()
 
 
 def test_every_setting_but_the_paths_shapes_at_least_one_stage():

@@ -214,6 +214,53 @@ def test_long_episodes_with_groups_match_reference_loop(estimator, gamma):
     assert_allclose([got[g] for g in groups], [want[g] for g in groups], rtol=1e-12, atol=1e-12)
 
 
+def _positive_steps(lengths: np.ndarray, seed: int) -> pl.DataFrame:
+    """Steps of the given episode lengths in five groups, every pi and b positive."""
+    rng = np.random.default_rng(seed)
+    n = int(lengths.sum())
+    names = np.array([f"home-{k}" for k in range(5)])
+    return _frame(
+        {
+            "episode_id": np.repeat(np.arange(lengths.size) * 7 + 3, lengths),
+            "t": np.concatenate([np.arange(k) for k in lengths]),
+            "reward": rng.normal(-1.0, 0.7, n),
+            "pi": rng.uniform(0.05, 1.0, n),
+            "b": rng.uniform(0.05, 1.0, n),
+            "q_hat": rng.normal(-1.0, 0.5, n),
+            "v_hat": rng.normal(-1.0, 0.5, n),
+            "group": np.repeat(names[rng.integers(0, 5, lengths.size)], lengths),
+        }
+    )
+
+
+@pytest.mark.parametrize("gamma", [1.0, 0.9])
+@pytest.mark.parametrize("by_decision", [True, False])
+@pytest.mark.parametrize("estimator", OFF_POLICY)
+def test_both_step_layouts_match_the_reference_loop(estimator, by_decision, gamma):
+    """Short episodes are summed row by row of the layout by decision index, one long episode among
+    short ones (padding would more than double the steps) over the flat steps; both equal the plain
+    loop, and doubly robust with a zero model equals per-decision IS bit for bit in each."""
+    rng = np.random.default_rng(5)
+    lengths = rng.integers(1, 5, 300)
+    if not by_decision:
+        lengths[17] = 200
+    steps = _positive_steps(lengths, seed=6)
+    prepared = est._steps._prepare(steps, ("episode_id", "t", "reward"), 1.0)
+    assert (prepared.by_decision is not None) == by_decision
+    # Products of ratios taken directly, not in log space.
+    assert est._steps._products_stay_normal(prepared, est._steps._checked_probabilities(steps)[2])
+    got = _by_group(estimator(steps, gamma=gamma))
+    want = ref_estimate(steps, estimator.__name__, gamma)
+    groups = sorted(want)
+    assert sorted(got) == groups
+    assert_allclose([got[g] for g in groups], [want[g] for g in groups], rtol=1e-12, atol=1e-12)
+    zero_model = steps.with_columns(q_hat=pl.lit(0.0), v_hat=pl.lit(0.0))
+    assert_array_equal(
+        doubly_robust(zero_model, gamma=gamma)["estimate"].to_numpy(),
+        per_decision_is(zero_model, gamma=gamma)["estimate"].to_numpy(),
+    )
+
+
 def test_weights_that_underflow_midway_are_summed_in_log_space():
     """A running weight that dips below the float64 range and recovers keeps its exact final value
     (1e-200 * 1e-200 * 1e150 * 1e150 = 1e-100), where a direct product would stick at 0."""
@@ -765,6 +812,28 @@ def test_poisson_multiplicities_follow_poisson_one_and_depend_only_on_the_episod
     later = est.poisson_multiplicity(ids, 500, seed=9, first=1_500)
     assert_array_equal(later, draws[1_500:])
     assert not np.array_equal(est.poisson_multiplicity(ids, 50, seed=10), draws[:50])
+
+
+def test_poisson_multiplicities_are_the_inverse_distribution_function_of_each_episodes_stream():
+    """Each draw is the smallest k with P(K <= k) above the uniform (bits >> 11) * 2**-53, bits the
+    SplitMix64 stream (Steele, Lea and Flood 2014) seeded by the episode's output of the run's stream;
+    the Poisson(1) distribution function summed from e^-1 / k! with Python floats, so the fast lookup
+    by top bits must agree with a plain inverse-CDF draw on every uniform."""
+    from math import exp, factorial
+
+    ids = np.array([1, 2, 5, 17, 40, 99])
+    n_replicates = 1_500
+    draws = est.poisson_multiplicity(ids, n_replicates, seed=3)
+    key = est.bootstrap.seed_key(3)
+    cdf, total = [], 0.0
+    for k in range(20):
+        total += exp(-1.0) / factorial(k)
+        cdf.append(total)
+    for column, episode in enumerate(ids):
+        episode_seed = int(est.bootstrap.splitmix64(key, int(episode))[-1])
+        bits = est.bootstrap.splitmix64(episode_seed, n_replicates).tolist()
+        expected = [next(k for k, c in enumerate(cdf) if (b >> 11) * 2.0**-53 < c) for b in bits]
+        assert draws[:, column].tolist() == expected, episode
 
 
 def test_nan_quantiles_equal_numpy_nanquantile():

@@ -54,20 +54,37 @@ def test_target_probability_of_logged_actions_reads_the_rule_table():
     np.testing.assert_allclose(pi, [0.7 + 0.1, 0.1])
 
 
+def _priced(steps: pl.DataFrame, rng: np.random.Generator, horizon: int, price: float = 0.10) -> pl.DataFrame:
+    """Random energy costs per step, °C-hours on each episode's last step; reward as sql/step.sql makes it."""
+    last = steps["t"].to_numpy() == horizon - 1
+    return steps.with_columns(
+        pl.Series("cost_usd", rng.uniform(0.1, 1.0, steps.height)),
+        pl.Series("recovery_cost_usd", np.where(last, rng.uniform(0.0, 0.3, steps.height), 0.0)),
+        pl.Series("comfort_degree_hours", np.where(last, rng.integers(0, 3, steps.height), 0).astype(float)),
+    ).with_columns(
+        (-(pl.col("cost_usd") + pl.col("recovery_cost_usd") + price * pl.col("comfort_degree_hours"))).alias(
+            "reward"
+        )
+    )
+
+
 def test_target_equal_to_behaviour_gives_zero_savings_at_every_scope():
     """When pi equals b every estimate is the on-policy average, so savings are exactly zero."""
     rng = np.random.default_rng(7)
     n_episodes, horizon = 40, 3
-    steps = pl.DataFrame(
-        {
-            "episode_id": np.repeat(np.arange(n_episodes), horizon),
-            "t": np.tile(np.arange(horizon), n_episodes),
-            "reward": -rng.uniform(0.1, 1.0, n_episodes * horizon),
-            "kwh": rng.uniform(0.5, 2.0, n_episodes * horizon),
-            "recovery_kwh": np.zeros(n_episodes * horizon),
-            "premise_id": np.repeat(np.where(np.arange(n_episodes) < 20, "A", "B"), horizon),
-            "cohort": "c",
-        }
+    steps = _priced(
+        pl.DataFrame(
+            {
+                "episode_id": np.repeat(np.arange(n_episodes), horizon),
+                "t": np.tile(np.arange(horizon), n_episodes),
+                "kwh": rng.uniform(0.5, 2.0, n_episodes * horizon),
+                "recovery_kwh": np.zeros(n_episodes * horizon),
+                "premise_id": np.repeat(np.where(np.arange(n_episodes) < 20, "A", "B"), horizon),
+                "cohort": "c",
+            }
+        ),
+        rng,
+        horizon,
     )
     b = rng.uniform(0.2, 0.9, steps.height)
     days = pl.DataFrame({"premise_id": ["A", "B"], "cohort": ["c", "c"], "days_observed": [30, 30]})
@@ -197,7 +214,6 @@ def _logged_steps(config: Config, seed: int = 11) -> pl.DataFrame:
             "t": np.tile(np.arange(horizon), n_episodes),
             "state_key": keys,
             "action": rng.integers(-1, 2, n_episodes * horizon),
-            "reward": -rng.uniform(0.1, 1.0, n_episodes * horizon),
             "kwh": rng.uniform(0.5, 2.0, n_episodes * horizon),
             "recovery_kwh": 0.0,
             "premise_id": np.repeat(np.where(np.arange(n_episodes) % 2 == 0, "A", "B"), horizon),
@@ -205,7 +221,7 @@ def _logged_steps(config: Config, seed: int = 11) -> pl.DataFrame:
             "mode": "cool",
         }
     )
-    return steps
+    return _priced(steps, rng, horizon, config.comfort_penalty_usd_per_degree_hour)
 
 
 DAYS = pl.DataFrame({"premise_id": ["A", "B"], "cohort": ["c", "c"], "days_observed": [30, 30]})
@@ -230,7 +246,8 @@ def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_
 
 # ---------------------------------------------------------------- grain of the ledger tables
 
-SCOPES = {"premise", "cohort", "portfolio"}
+# habit_type: a learned policy's own row at the scope it was learned for (the improve stage).
+SCOPES = {"premise", "cohort", "portfolio", "habit_type"}
 MODES = {"cool", "heat"}
 # Key columns and allowed codes of each ledger table evaluate writes (DESIGN.md, "Ledger contracts").
 GRAIN = {
@@ -314,14 +331,19 @@ def test_every_ledger_table_of_an_inline_evaluation_has_its_grain():
     np.testing.assert_allclose(totals["probability"].to_numpy(), 1.0)
 
 
+def ledger_frame(ledger, table: str) -> pl.DataFrame:
+    """Every file of a ledger table, columns united by name (a run's learned rows are a second file)."""
+    files = sorted((ledger / table).glob("*/*.parquet"))
+    return pl.concat([pl.read_parquet(f, hive_partitioning=False) for f in files], how="diagonal_relaxed")
+
+
 def test_sample_lake_ledger_tables_have_their_grain_and_consistent_annual_figures(sample_lake_run):
     """On the sample lake's ledger, every evaluated table keeps its grain and every annual figure is its
     per-episode figure times the row's episodes per year (same sign in every row)."""
     config = sample_lake_run.config
     for table in GRAIN:
-        frame = pl.read_parquet(config.ledger_path / table / "*" / "*.parquet", hive_partitioning=False)
-        _assert_grain(table, frame)
-    savings = pl.read_parquet(config.ledger_path / "savings" / "*" / "*.parquet", hive_partitioning=False)
+        _assert_grain(table, ledger_frame(config.ledger_path, table))
+    savings = ledger_frame(config.ledger_path, "savings")
     _assert_savings_rules(savings, config)
     assert savings.filter((pl.col("scope") == "premise") & (pl.col("status") == "ok")).height >= 30
 
@@ -332,3 +354,90 @@ def test_an_estimator_outside_the_registry_is_refused_by_name():
         Config(estimators=("diagnostics",))
     with pytest.raises(estimators.EstimatorInputError, match="not an off-policy estimator; use one of"):
         off_policy_estimator("diagnostics")
+
+
+# ---------------------------------------------------------------- comfort, bill alone, seasons
+
+
+def _three_episode_steps() -> pl.DataFrame:
+    """THREE with costs and comfort: premise A, last steps 1, 2 and 0 °C-hours, energy costs per step."""
+    return (
+        THREE.drop("reward", "pi", "b")
+        .with_columns(
+            pl.Series("cost_usd", [1.0, 1.5, 3.0, 1.0, 1.0, 0.0]),
+            pl.Series("recovery_cost_usd", [0.0, 0.3, 0.7, 0.0, 0.0, 0.0]),
+            pl.Series("comfort_degree_hours", [0.0, 2.0, 3.0, 0.0, 0.0, 0.0]),
+            pl.Series("kwh", [1.0, 1.0, 2.0, 1.0, 1.0, 0.5]),
+            pl.lit(0.0).alias("recovery_kwh"),
+            pl.lit("A").alias("premise_id"),
+            pl.lit("c").alias("cohort"),
+        )
+        .with_columns(
+            (
+                -(pl.col("cost_usd") + pl.col("recovery_cost_usd") + 0.1 * pl.col("comfort_degree_hours"))
+            ).alias("reward")
+        )
+    )
+
+
+def test_comfort_and_bill_alone_are_weighted_is_of_their_own_rewards_by_hand():
+    """With weights 4, 0.5 and 1 (THREE), the policy's comfort cost is (4*2 + 0.5*3 + 1*0) / 5.5 °C-hours and
+    its bill (4*2.8 + 0.5*3.7 + 1*2) / 5.5 USD; the logged policy's are the plain means (Sutton and Barto
+    2018, eq. 5.6, applied to each reward)."""
+    steps = _three_episode_steps()
+    days = pl.DataFrame({"premise_id": ["A"], "cohort": ["c"], "days_observed": [10]})
+    config = Config(estimators=("weighted_is",), bootstrap_replicates=30, min_ess=0.0, max_weight_share=1.0)
+    savings, _ = evaluate_policy(steps, THREE["pi"].to_numpy(), THREE["b"].to_numpy(), days, config)
+    row = savings.filter(pl.col("scope") == "portfolio").row(0, named=True)
+    assert row["comfort_degree_hours_policy"] == pytest.approx((4 * 2 + 0.5 * 3) / 5.5)
+    assert row["comfort_degree_hours_behavior"] == pytest.approx(5 / 3)
+    assert row["comfort_cost_usd_policy"] == pytest.approx(0.1 * (4 * 2 + 0.5 * 3) / 5.5)
+    assert row["comfort_change_degree_hours"] == pytest.approx((4 * 2 + 0.5 * 3) / 5.5 - 5 / 3)
+    assert row["bill_usd_policy"] == pytest.approx((4 * 2.8 + 0.5 * 3.7 + 1 * 2) / 5.5)
+    assert row["bill_usd_behavior"] == pytest.approx((2.8 + 3.7 + 2) / 3)
+    assert row["bill_savings_usd_per_episode"] == pytest.approx(
+        row["bill_usd_behavior"] - row["bill_usd_policy"]
+    )
+    assert row["comfort_degree_hours_ci_low"] <= row["comfort_degree_hours_ci_high"]
+
+
+@pytest.mark.parametrize("recommended", ["weighted_is", "weighted_per_decision_is", "doubly_robust"])
+def test_penalised_savings_are_bill_savings_less_the_priced_comfort_change(recommended):
+    """Each estimator is linear in the reward for fixed weights, and the reward is minus the bill minus the
+    priced °C-hours (sql/step.sql), so savings = bill savings - price x comfort change, row by row."""
+    config = Config(
+        bootstrap_replicates=20,
+        estimators=("weighted_is", "weighted_per_decision_is", "doubly_robust"),
+        recommended_estimator=recommended,
+    )
+    steps = _logged_steps(config)
+    behavior = CohortCounts(actions=config.actions).fit(steps)
+    rows = evaluate_candidates(steps, behavior, DAYS, config).savings.filter(
+        pl.col("recommended") & (pl.col("status") == "ok")
+    )
+    assert rows.height > 0
+    expected = rows["bill_savings_usd_per_episode"] - 0.10 * rows["comfort_change_degree_hours"]
+    np.testing.assert_allclose(rows["savings_usd_per_episode"].to_numpy(), expected.to_numpy(), atol=1e-9)
+    others = evaluate_candidates(steps, behavior, DAYS, config).savings.filter(~pl.col("recommended"))
+    assert others.select(pl.col("comfort_degree_hours_policy").is_null().all()).item()
+
+
+def test_heating_episodes_are_annualised_over_the_heating_season_and_the_row_says_so():
+    """Annual figures of a mode use that mode's observed days and season length, both on the row:
+    60 episodes over 60 heating days are 1 a day, times a 151-day heating season."""
+    config = Config(bootstrap_replicates=20, estimators=("weighted_is",))
+    steps = _logged_steps(config).with_columns(pl.lit("heat").alias("mode"))
+    days = pl.DataFrame(
+        {
+            "premise_id": ["A", "B", "A", "B"],
+            "cohort": "c",
+            "mode": ["heat", "heat", "cool", "cool"],
+            "days_observed": [30, 30, 90, 90],
+        }
+    )
+    behavior = CohortCounts(actions=config.actions).fit(steps)
+    savings = evaluate_candidates(steps, behavior, days, config).savings
+    portfolio = savings.filter(pl.col("scope") == "portfolio").row(0, named=True)
+    assert portfolio["mode"] == "heat" and portfolio["season_days"] == config.heating_days_per_year == 151
+    assert portfolio["days_observed"] == 60
+    assert portfolio["episodes_per_year"] == pytest.approx(60 / 60 * 151)

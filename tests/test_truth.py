@@ -106,3 +106,44 @@ def test_bootstrap_lower_bound_is_below_the_truth_in_most_supported_rows(evaluat
     record_property("bootstrap_bound_below_truth", below)
     print(f"bootstrap lower bound below the truth in {below:.3f} of {rows.height} supported rows")
     assert rows.height >= 30 and below >= 0.85
+
+
+def _true_parts(config, policy_name):
+    """The simulator's true comfort cost (USD and °C-hours) and bill savings per visible episode."""
+    values = pl.read_parquet(SAMPLE_LAKE / "truth" / "policy_values.parquet").filter(
+        pl.col("premise_id").is_null()
+    )
+    policy = values.filter(
+        (pl.col("policy_name") == policy_name) & (pl.col("epsilon") == config.target_epsilon)
+    ).row(0, named=True)
+    logged = values.filter(pl.col("policy_name") == "behavior").row(0, named=True)
+    # value = -(bill) - comfort penalty (pipeline.simulate.episode_return), so bill = -value - penalty.
+    bill = -policy["value_usd"] - policy["comfort_penalty_usd"]
+    logged_bill = -logged["value_usd"] - logged["comfort_penalty_usd"]
+    return SimpleNamespace(
+        comfort_usd=policy["comfort_penalty_usd"],
+        comfort_degree_hours=policy["comfort_penalty_usd"] / config.comfort_penalty_usd_per_degree_hour,
+        bill_savings=logged_bill - bill,
+    )
+
+
+@pytest.mark.parametrize("policy_name", ["setback-1", "setback-2", "setback-2-early"])
+def test_portfolio_comfort_cost_interval_covers_the_true_comfort_cost(evaluated, policy_name):
+    """The portfolio's 95 % comfort-cost interval (USD and °C-hours) covers the candidate's true comfort
+    cost from the simulator's on-policy roll-out (truth/policy_values.parquet)."""
+    row = _portfolio(evaluated, policy_name)
+    truth = _true_parts(evaluated.config, policy_name)
+    assert row["comfort_cost_usd_ci_low"] <= truth.comfort_usd <= row["comfort_cost_usd_ci_high"], (
+        row,
+        truth,
+    )
+    low, high = row["comfort_degree_hours_ci_low"], row["comfort_degree_hours_ci_high"]
+    assert low <= truth.comfort_degree_hours <= high
+
+
+@pytest.mark.parametrize("policy_name", ["setback-1", "setback-2", "setback-2-early"])
+def test_portfolio_bill_savings_interval_covers_the_true_energy_only_savings(evaluated, policy_name):
+    """The energy-only bill savings interval covers the true bill savings (true value plus its penalty)."""
+    row = _portfolio(evaluated, policy_name)
+    truth = _true_parts(evaluated.config, policy_name)
+    assert row["bill_ci_low"] <= truth.bill_savings <= row["bill_ci_high"], (row, truth)

@@ -17,6 +17,7 @@ import polars as pl
 ALL_GROUP = "all"
 """Group label used when the steps carry no ``group`` column."""
 
+_ALL_LABELS = pl.Series("group", [ALL_GROUP], dtype=pl.String)
 _STEP_COLUMNS = ("episode_id", "t", "reward")
 _PROB_COLUMNS = ("pi", "b")
 # exp(709.8) is the largest finite float64; beyond this a weight cannot be represented.
@@ -24,6 +25,8 @@ _MAX_LOG_WEIGHT = 700.0
 _MAX_WEIGHT = float(np.exp(_MAX_LOG_WEIGHT))
 # Below this a weight would be a subnormal float64 and lose precision.
 _MIN_LOG_WEIGHT = float(np.log(np.finfo(np.float64).tiny))
+# The layout by decision index (``_Steps.by_decision``) is used up to this many padded cells per step.
+_MAX_PADDED = 2
 
 
 class EstimatorInputError(ValueError):
@@ -76,6 +79,24 @@ class _Steps:
         """(n_steps,) gamma ** t."""
         return np.power(self.gamma, self.t.astype(np.float64))
 
+    @cached_property
+    def by_decision(self) -> np.ndarray | None:
+        """(longest, n_episodes) row of step k of each episode, ``n_steps`` past its end.
+
+        Row k holds every episode's k-th step, so a reduction within episodes is a few
+        whole-row operations (no per-segment work, which costs more than the arithmetic
+        when episodes hold a handful of steps). None when padding every episode to the
+        longest would more than double the steps; callers then use the flat helpers.
+        """
+        longest = int(self.lengths.max())
+        if longest * self.n_episodes > _MAX_PADDED * self.t.size:
+            return None
+        rows = np.add.outer(np.arange(longest), self.starts)
+        # Rows below the shortest episode's length have no padding (row 0 never has).
+        for k in range(int(self.lengths.min()), longest):
+            rows[k][self.lengths <= k] = self.t.size
+        return rows
+
 
 # ---------------------------------------------------------------- validation
 
@@ -100,8 +121,9 @@ def _prepare(
         )
     if steps.height == 0:
         raise EstimatorInputError("steps has no rows; there is nothing to estimate")
-    for name in required + (("group",) if "group" in steps.columns else ()):
-        dtype = steps.schema[name]
+    schema = steps.schema  # built afresh on each access
+    for name in required + (("group",) if "group" in schema else ()):
+        dtype = schema[name]
         if name in ("episode_id", "t") and not dtype.is_integer():
             raise EstimatorInputError(f"column {name!r} must be an integer column, got {dtype}")
         if name not in ("episode_id", "t", "group") and not dtype.is_numeric():
@@ -116,10 +138,10 @@ def _prepare(
     starts = np.empty(np.count_nonzero(new_episode) + 1, dtype=np.int64)
     starts[0] = 0
     np.add(np.flatnonzero(new_episode), 1, out=starts[1:])
-    # Sorted exactly when each episode's id is above the one before (ids are constant within).
-    first_ids = episode_id[starts]
-    if (first_ids[1:] < first_ids[:-1]).any():  # no diff: unsigned ids would wrap
-        row = int(starts[1:][np.argmax(first_ids[1:] < first_ids[:-1])])
+    # Sorted exactly when the ids never fall (they are constant within an episode).
+    falls = episode_id[1:] < episode_id[:-1]  # no diff: unsigned ids would wrap
+    if falls.any():
+        row = int(np.argmax(falls)) + 1
         raise EstimatorInputError(
             f"steps must be sorted by (episode_id, t): row {row} has episode_id {episode_id[row]} "
             f"after {episode_id[row - 1]}; call steps.sort(['episode_id', 't'])"
@@ -127,11 +149,9 @@ def _prepare(
     lengths = np.empty_like(starts)
     np.subtract(starts[1:], starts[:-1], out=lengths[:-1])
     lengths[-1] = t.size - starts[-1]
-    # t counts 0, 1, 2, ... within each episode exactly when it starts at 0, ends at length - 1
-    # and rises at every step in between: integer rises of at least 1 adding up to length - 1
-    # are all 1. Rising is checked as "t goes up exactly where the id stays the same".
-    rises = np.greater(t[1:], t[:-1])
-    if t[starts].any() or (t[starts + lengths - 1] != lengths - 1).any() or (rises == new_episode).any():
+    # t counts 0, 1, 2, ... within each episode exactly when the first is 0 and each later t is
+    # the one before plus 1 within an episode and 0 where a new one starts.
+    if t[0] != 0 or (t[1:] != (t[:-1] + 1) * ~new_episode).any():
         _raise_t_error(episode_id, t, new_episode)
     if "group" in steps.columns:
         column = steps["group"]
@@ -154,7 +174,7 @@ def _prepare(
         group = first.replace_strict(labels, codes).to_numpy()
     else:
         group = np.zeros(starts.size, dtype=np.int64)
-        labels = pl.Series("group", [ALL_GROUP], dtype=pl.String)
+        labels = _ALL_LABELS
 
     reward = None
     if "reward" in required:
@@ -248,8 +268,57 @@ def _segment_cumsum(values: np.ndarray, s: _Steps) -> np.ndarray:
 
 
 def _episode_sum(values: np.ndarray, s: _Steps) -> np.ndarray:
-    """Sum of ``values`` (n_steps,) per episode, shape (n_episodes,)."""
-    return np.bincount(s.episode, weights=values, minlength=s.n_episodes)
+    """Sum of ``values`` (n_steps,) per episode, shape (n_episodes,).
+
+    Added in step order within each episode, as a plain loop adds them (the bincount adds
+    each bin's values in frame order; the layout by decision adds its rows in order).
+    """
+    if s.by_decision is None:
+        return np.bincount(s.episode, weights=values, minlength=s.n_episodes)
+    return _row_sums(_by_decision(values, s, 0.0))
+
+
+def _padded(n_steps: int, fill: float) -> np.ndarray:
+    """A buffer of ``n_steps`` values plus one ``fill`` at index n_steps, where padding reads."""
+    out = np.empty(n_steps + 1)
+    out[n_steps] = fill
+    return out
+
+
+def _by_decision(values: np.ndarray, s: _Steps, fill: float) -> np.ndarray:
+    """``values`` (n_steps,) laid out as ``s.by_decision`` (longest, n_episodes), ``fill`` past each end."""
+    padded = _padded(values.size, fill)
+    padded[:-1] = values
+    return np.take(padded, s.by_decision)
+
+
+def _from_decisions(laid_out: np.ndarray, s: _Steps) -> np.ndarray:
+    """The (n_steps,) values of a (longest, n_episodes) layout; padding lands in a spare cell."""
+    flat = np.empty(s.t.size + 1)
+    flat[s.by_decision] = laid_out  # an index assignment; numpy.put is slower here
+    return flat[:-1]
+
+
+def _row_sums(laid_out: np.ndarray) -> np.ndarray:
+    """Sum over decision indices of a (longest, n_episodes) layout, row 0 first."""
+    total = laid_out[0].copy()
+    for row in laid_out[1:]:
+        total += row
+    return total
+
+
+def _row_cumprod(laid_out: np.ndarray) -> np.ndarray:
+    """Running product over decision indices of a layout, in place (row k times row k - 1, in order)."""
+    for k in range(1, laid_out.shape[0]):
+        laid_out[k] *= laid_out[k - 1]
+    return laid_out
+
+
+def _ratios_by_decision(pi: np.ndarray, b: np.ndarray, s: _Steps) -> np.ndarray:
+    """pi / b laid out by decision index, 1 past each episode's end (so products carry through)."""
+    padded = _padded(pi.size, 1.0)
+    np.divide(pi, b, out=padded[:-1])
+    return np.take(padded, s.by_decision)
 
 
 def _group_sums(values: np.ndarray, group: np.ndarray | None, n_groups: int) -> np.ndarray:
@@ -271,15 +340,6 @@ def _group_counts(group: np.ndarray, n_groups: int) -> np.ndarray:
 def _discounted(values: np.ndarray, s: _Steps) -> np.ndarray:
     """gamma ** t * ``values`` (n_steps,); the values themselves when gamma is 1, as 1.0 * x == x."""
     return values if s.gamma == 1.0 else s.discount * values
-
-
-def _keyed_sums(key: np.ndarray, values: np.ndarray, n_keys: int) -> np.ndarray:
-    """Sums of ``values`` (B, m) by ``key`` (m,), shape (B, n_keys); ``key`` must be non-decreasing."""
-    out = np.zeros((values.shape[0], n_keys))
-    if key.size:
-        first = np.flatnonzero(np.concatenate(([True], key[1:] != key[:-1])))
-        out[:, key[first]] = np.add.reduceat(values, first, axis=1)
-    return out
 
 
 def _products_stay_normal(s: _Steps, ranges: tuple[float, ...]) -> bool:
@@ -312,6 +372,8 @@ def _cumulative_weights(
     at the products.
     """
     if ranges is not None and _products_stay_normal(s, ranges):
+        if s.by_decision is not None:
+            return _from_decisions(_row_cumprod(_ratios_by_decision(pi, b, s)), s)
         return _segment_cumprod(np.divide(pi, b), s, in_place=True)
     if pi.min() > 0.0:
         weights = _segment_cumprod(np.divide(pi, b), s, in_place=True)
@@ -330,6 +392,9 @@ def _trajectory_weights(
     ``ranges`` (min pi, max pi, min b, max b), when known, saves passes over the arrays.
     """
     if _products_stay_normal(s, ranges or (pi.min(), pi.max(), b.min(), b.max())):
+        if s.by_decision is not None:
+            # Left to right, as the loop multiplies; the padding's 1s change no product.
+            return _row_cumprod(_ratios_by_decision(pi, b, s))[-1]
         return np.multiply.reduceat(np.divide(pi, b), s.starts)
     return _cumulative_weights(pi, b, s)[s.ends]
 

@@ -34,7 +34,7 @@ from pipeline.estimators._steps import (
     _Steps,
 )
 from pipeline.estimators.importance_sampling import (
-    _in_key_order,
+    _GroupBlocks,
     _on_policy_terms,
     _ratios,
     _sums,
@@ -51,6 +51,25 @@ _MIX1 = np.uint64(0xBF58476D1CE4E5B9)
 _MIX2 = np.uint64(0x94D049BB133111EB)
 # P(K <= k) for K ~ Poisson(1), k = 0 .. 19; P(K > 19) < 1e-18 is below a 53-bit uniform's resolution.
 _POISSON_CDF = np.cumsum(np.exp(-1.0) / np.cumprod(np.r_[1.0, np.arange(1.0, 20.0)]))
+_TOP_BITS = 16
+_UNDECIDED = 255
+
+
+def _poisson_by_top_bits() -> np.ndarray:
+    """The inverse distribution function's value for each range of uniforms sharing their top 16 bits.
+
+    Ranges that straddle a step of the distribution function hold ``_UNDECIDED``; their
+    uniforms are looked up in full, so the table changes nothing but the speed.
+    """
+    ulp = 2.0**-53
+    width = 2.0**-_TOP_BITS
+    low = np.arange(2**_TOP_BITS) * width
+    first = np.searchsorted(_POISSON_CDF, low, side="right")
+    last = np.searchsorted(_POISSON_CDF, low + width - ulp, side="right")
+    return np.where(first == last, first, _UNDECIDED).astype(np.uint8)
+
+
+_POISSON_TABLE = _poisson_by_top_bits()
 
 
 def _mix(z: np.ndarray) -> np.ndarray:
@@ -109,8 +128,12 @@ def poisson_multiplicity(
             rows = min(chunk, n_replicates - start)
             number = np.arange(first + start + 1, first + start + rows + 1, dtype=np.uint64)
             bits = _mix(episode_seed[None, :] + _GOLDEN * number[:, None])
-            uniform = (bits >> np.uint64(11)).astype(np.float64) * 2.0**-53
-            out[start : start + rows] = np.searchsorted(_POISSON_CDF, uniform, side="right")
+            # The uniform is (bits >> 11) * 2**-53; most are decided by their top 16 bits alone.
+            counts = _POISSON_TABLE[bits >> np.uint64(64 - _TOP_BITS)]
+            undecided = np.flatnonzero(counts == _UNDECIDED)
+            uniform = (bits.ravel()[undecided] >> np.uint64(11)).astype(np.float64) * 2.0**-53
+            counts.ravel()[undecided] = np.searchsorted(_POISSON_CDF, uniform, side="right")
+            out[start : start + rows] = counts
     return out
 
 
@@ -302,20 +325,14 @@ def replicate_sums(
 
 
 def _replicate_sums(s: _Steps, terms, multiplicity: np.ndarray) -> ReplicateSums:
-    # Sorted once here so every chunk of replicates sums contiguous segments without re-sorting.
-    terms = _in_key_order(terms, s)
     n_replicates = multiplicity.shape[0]
     point = _sums(terms, s)
     numerator = np.empty((1 + n_replicates, s.n_groups, terms.n_cells))
     denominator = np.empty_like(numerator)
     numerator[:1], denominator[:1] = point
-    entries = terms.episode.size + (0 if terms.carry is None else terms.carry[0].size)
-    chunk = _chunk_rows(entries, s.n_episodes)
-    # Loop over chunks of replicates only, to bound memory; episodes stay vectorised.
-    for first in range(0, n_replicates, chunk):
-        rows = slice(1 + first, 1 + min(first + chunk, n_replicates))
-        u = multiplicity[first : first + chunk].astype(np.float64)
-        numerator[rows], denominator[rows] = _sums(terms, s, u)
+    if n_replicates:
+        # Every replicate at once, as matrix products over blocks of groups.
+        _GroupBlocks.of(terms, s, n_replicates).replicate(multiplicity, numerator[1:], denominator[1:])
     weights = terms.weights
     largest = np.zeros(s.n_groups)
     np.maximum.at(largest, s.group, weights)

@@ -21,16 +21,23 @@ import numpy as np
 import polars as pl
 
 from pipeline.estimators._steps import (
+    _PROB_COLUMNS,
     _STEP_COLUMNS,
     EstimatorInputError,
+    _by_decision,
+    _checked_probabilities,
+    _cumulative_weights,
     _discounted,
     _episode_sum,
     _group_counts,
     _group_sums,
-    _keyed_sums,
     _prepare,
     _previous_weights,
+    _products_stay_normal,
+    _ratios_by_decision,
     _returns,
+    _row_cumprod,
+    _row_sums,
     _Steps,
     _weight_summary,
     _weighted_episodes,
@@ -89,8 +96,17 @@ def _weighted_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Term
 
 
 def _per_decision_is_terms(steps: pl.DataFrame, gamma: float) -> tuple[_Steps, _Terms]:
-    s, w = _weighted_steps(steps, gamma)
-    # Same expression as the doubly robust term with a zero model, so the two agree bit for bit.
+    s = _prepare(steps, _STEP_COLUMNS + _PROB_COLUMNS, gamma)
+    pi, b, ranges = _checked_probabilities(steps)
+    # The products and sums of the doubly robust term with a zero model, in the same order, so
+    # the two agree bit for bit whichever layout each uses.
+    if s.by_decision is not None and _products_stay_normal(s, ranges):
+        w = _row_cumprod(_ratios_by_decision(pi, b, s))
+        step_terms = w * _by_decision(s.reward, s, 0.0)
+        if gamma != 1.0:
+            step_terms *= np.power(gamma, np.arange(w.shape[0], dtype=np.float64))[:, None]
+        return s, _scalar_terms(_row_sums(step_terms), np.ones(s.n_episodes), w[-1])
+    w = _cumulative_weights(pi, b, s, ranges)
     per_episode = _episode_sum(_discounted(w * s.reward, s), s)
     return s, _scalar_terms(per_episode, np.ones(s.n_episodes), w[s.ends])
 
@@ -126,67 +142,90 @@ def _entry_keys(terms: _Terms, s: _Steps) -> tuple[np.ndarray, np.ndarray]:
     return key, carry_key
 
 
-def _in_key_order(terms: _Terms, s: _Steps) -> _Terms:
-    """The same terms with entries sorted by (group, cell), so sums are contiguous segments."""
-    key, carry_key = _entry_keys(terms, s)
-    order = np.argsort(key, kind="stable")
-    carry = terms.carry
-    if carry is not None:
-        carry_order = np.argsort(carry_key, kind="stable")
-        carry = tuple(part[carry_order] for part in carry)
-    return _Terms(
-        terms.episode[order],
-        terms.cell[order],
-        terms.numerator[order],
-        terms.denominator[order],
-        terms.n_cells,
-        terms.weights,
-        carry,
-    )
+def _sums(terms: _Terms, s: _Steps) -> tuple[np.ndarray, np.ndarray]:
+    """Numerator and denominator sums per group and cell, every episode once: (1, n_groups, n_cells).
 
-
-def _sums(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Numerator and denominator sums per row of episode ``multiplicity`` (B, n_episodes), group and cell.
-
-    ``None`` means every episode once (the point estimate, B = 1). Returns two arrays of
-    shape (B, n_groups, n_cells); carried entries are already added into the later cells'
-    denominators, so sums over disjoint sets of episodes add up.
+    Carried entries are already added into the later cells' denominators, so sums over
+    disjoint sets of episodes add up.
     """
     n_cells, n_groups = terms.n_cells, s.n_groups
     n_keys = n_groups * n_cells
     # With a single key (one group, one cell) every entry sums into it: no keys to build.
     key, carry_key = _entry_keys(terms, s) if n_keys > 1 else (None, None)
-    if multiplicity is None:
-        # Every multiplicity is 1: entries are summed by key in any order, with no sort.
-        rows = 1
-        numerator = _group_sums(terms.numerator, key, n_keys)
-        denominator = _group_sums(terms.denominator, key, n_keys)
-        carried = None
-        if terms.carry is not None:
-            carried = _group_sums(terms.carry[2], carry_key, n_keys)
-    else:
-        if key is None:
-            key, carry_key = _entry_keys(terms, s)
-        if (key[1:] < key[:-1]).any() or (carry_key[1:] < carry_key[:-1]).any():
-            terms = _in_key_order(terms, s)
-            key, carry_key = _entry_keys(terms, s)
-        rows = multiplicity.shape[0]
-        # One entry per episode in episode order (the trajectory-wise estimators) needs no gather.
-        per_episode = terms.episode.size == s.n_episodes and bool(
-            (terms.episode == np.arange(s.n_episodes)).all()
-        )
-        u_entries = multiplicity if per_episode else multiplicity[:, terms.episode]
-        numerator = _keyed_sums(key, u_entries * terms.numerator, n_keys)
-        denominator = _keyed_sums(key, u_entries * terms.denominator, n_keys)
-        carried = None
-        if terms.carry is not None:
-            episode, _, value = terms.carry
-            carried = _keyed_sums(carry_key, multiplicity[:, episode] * value, n_keys)
-    numerator = numerator.reshape(rows, n_groups, n_cells)
-    denominator = denominator.reshape(rows, n_groups, n_cells)
-    if carried is not None:
-        denominator += np.cumsum(carried.reshape(rows, n_groups, n_cells), axis=2)
+    # Every multiplicity is 1: entries are summed by key in any order, with no sort.
+    numerator = _group_sums(terms.numerator, key, n_keys).reshape(1, n_groups, n_cells)
+    denominator = _group_sums(terms.denominator, key, n_keys).reshape(1, n_groups, n_cells)
+    if terms.carry is not None:
+        carried = _group_sums(terms.carry[2], carry_key, n_keys).reshape(1, n_groups, n_cells)
+        denominator += np.cumsum(carried, axis=2)
     return numerator, denominator
+
+
+# Bytes of float64 multiplicities one block of groups may gather at a time (bounds memory).
+_BLOCK_BYTES = 1 << 25
+
+
+@dataclass(frozen=True)
+class _GroupBlocks:
+    """An estimator's entries as one row per episode, laid out group by group for matrix products.
+
+    Each episode's numerator and denominator entries per cell form a row of ``values``
+    (n_episodes + 1, 2 * n_cells; carried entries already in the later cells' denominators;
+    the extra last row is zeros). Groups are taken in blocks of similar size, each group's
+    episodes padded with that zero row to the block's largest group, so the sums of a
+    block's groups for every replicate are one stacked matrix product
+    (``numpy.matmul``), with no pass over the entries per replicate.
+    """
+
+    values: np.ndarray
+    n_groups: int
+    n_cells: int
+    blocks: tuple[tuple[np.ndarray, np.ndarray], ...]
+    """Per block: its groups (g,) and their episodes (g, width), padded with n_episodes."""
+
+    @classmethod
+    def of(cls, terms: _Terms, s: _Steps, n_replicates: int) -> _GroupBlocks:
+        n_episodes, n_cells = s.n_episodes, terms.n_cells
+        values = np.zeros((n_episodes + 1, 2 * n_cells))
+        cell = terms.episode * n_cells + terms.cell
+        size = n_episodes * n_cells
+        values[:-1, :n_cells] = np.bincount(cell, terms.numerator, size).reshape(n_episodes, n_cells)
+        values[:-1, n_cells:] = np.bincount(cell, terms.denominator, size).reshape(n_episodes, n_cells)
+        if terms.carry is not None:
+            episode, at, value = terms.carry
+            carried = np.bincount(episode * n_cells + at, value, size).reshape(n_episodes, n_cells)
+            values[:-1, n_cells:] += np.cumsum(carried, axis=1)
+        # Episodes in group order, and the groups from largest to smallest so blocks pad little.
+        count = np.bincount(s.group, minlength=s.n_groups)
+        by_group = np.argsort(s.group, kind="stable")
+        start = np.cumsum(count) - count
+        order = np.argsort(-count, kind="stable")
+        budget = max(1, _BLOCK_BYTES // (8 * max(1, n_replicates)))
+        blocks, i = [], 0
+        while i < order.size:
+            width = int(count[order[i]])
+            groups = order[i : i + max(1, budget // max(1, width))]
+            position = np.arange(width)
+            rows = start[groups][:, None] + position[None, :]
+            inside = position[None, :] < count[groups][:, None]
+            episodes = np.where(inside, by_group[np.minimum(rows, n_episodes - 1)], n_episodes)
+            blocks.append((groups, episodes))
+            i += groups.size
+        return cls(values, s.n_groups, n_cells, tuple(blocks))
+
+    def replicate(self, multiplicity: np.ndarray, numerator: np.ndarray, denominator: np.ndarray) -> None:
+        """Sums into ``numerator`` and ``denominator`` (B, n_groups, n_cells) for each row of episode
+        ``multiplicity`` (B, n_episodes)."""
+        rows, n_cells = multiplicity.shape[0], self.n_cells
+        # Episodes along the first axis, with a zero column for the padding episode.
+        per_episode = np.zeros((multiplicity.shape[1] + 1, rows), dtype=multiplicity.dtype)
+        per_episode[:-1] = multiplicity.T
+        sums = np.empty((self.n_groups, 2 * n_cells, rows))
+        for groups, episodes in self.blocks:
+            u = per_episode[episodes].astype(np.float64)  # (g, width, B)
+            sums[groups] = np.matmul(self.values[episodes].transpose(0, 2, 1), u)
+        numerator[...] = sums[:, :n_cells].transpose(2, 0, 1)
+        denominator[...] = sums[:, n_cells:].transpose(2, 0, 1)
 
 
 def _ratios(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
@@ -199,25 +238,22 @@ def _ratios(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
     return np.where(positive.all(axis=2), ratio.sum(axis=2), np.nan)
 
 
-def _evaluate(terms: _Terms, s: _Steps, multiplicity: np.ndarray | None = None) -> np.ndarray:
-    """Estimates for each row of episode ``multiplicity`` (B, n_episodes), shape (B, n_groups).
-
-    ``None`` means every episode once (the point estimate, B = 1). A group whose
-    denominator is zero in some cell, i.e. no episode with non-zero weight, gets NaN.
-    """
-    return _ratios(*_sums(terms, s, multiplicity))
+def _evaluate(terms: _Terms, s: _Steps) -> np.ndarray:
+    """The point estimate per group, shape (1, n_groups); NaN where a group has no weight in some cell."""
+    return _ratios(*_sums(terms, s))
 
 
 def _estimate_frame(s: _Steps, terms: _Terms) -> pl.DataFrame:
     _, ess, share = _weight_summary(terms.weights, s.group, s.n_groups)
+    # From named series: a dict of arrays costs polars more per call.
     return pl.DataFrame(
-        {
-            "group": s.labels,
-            "estimate": _evaluate(terms, s)[0],
-            "n_episodes": _group_counts(s.group, s.n_groups),
-            "ess": ess,
-            "max_weight_share": share,
-        }
+        [
+            s.labels,
+            pl.Series("estimate", _evaluate(terms, s)[0]),
+            pl.Series("n_episodes", _group_counts(s.group, s.n_groups)),
+            pl.Series("ess", ess),
+            pl.Series("max_weight_share", share),
+        ]
     )
 
 

@@ -138,9 +138,35 @@ def table_chooser(world: World, probs: np.ndarray) -> Chooser:
     return lambda keys, home, day: probs[home, keys]
 
 
+def setback_frame(world: World) -> tuple[np.ndarray, tuple[int, int]]:
+    """Comfort setpoints and safety band seen in the setback direction, for masks and behaviour.
+
+    Offsets raise a cooling setpoint and lower a heating one. A cooling setpoint is
+    comfort + offset; a heating one is comfort - offset, which lies in the band
+    [lo, hi] exactly when -comfort + offset lies in [-hi, -lo]. So the heating season
+    passes the negated comfort and band, and one mask serves both seasons.
+    """
+    h, p = world.homes, world.params
+    if p.heating_season:
+        return -h.comfort_heat_c, (-p.heat_band_c[1], -p.heat_band_c[0])
+    return h.comfort_cool_c, p.cool_band_c
+
+
+def comfort_setpoint(world: World) -> np.ndarray:
+    """Each home's comfort setpoint of the season (cooling in summer, heating in winter), °C."""
+    h = world.homes
+    return h.comfort_heat_c if world.params.heating_season else h.comfort_cool_c
+
+
+def setpoint_of(world: World, comfort_c: np.ndarray, offset_c: np.ndarray) -> np.ndarray:
+    """The season's setpoint for a setback offset: comfort + offset cooling, comfort - offset heating."""
+    return comfort_c - offset_c if world.params.heating_season else comfort_c + offset_c
+
+
 def behavior_chooser(world: World) -> Chooser:
     """Chooser drawing from the residents' true model, hidden 'feeling hot' state included."""
     h, p = world.homes, world.params
+    comfort, band = setback_frame(world)
 
     def choose(keys: np.ndarray, home: np.ndarray, day: np.ndarray) -> np.ndarray:
         return behavior_probs(
@@ -149,8 +175,8 @@ def behavior_chooser(world: World) -> Chooser:
             h.depth_pref[home],
             h.keenness[home],
             h.restore_lead[home],
-            h.comfort_cool_c[home],
-            p.cool_band_c,
+            comfort[home],
+            band,
             world.days.feeling_hot[home, day],
         )
 
@@ -197,7 +223,8 @@ def roll(world: World, episodes: Episodes, chooser: Chooser, choice_stream: int 
     offs = np.zeros((m, MAX_STEPS), dtype=np.int64)
     offset = np.zeros(m, dtype=np.int64)
     home, tz = episodes.home, h.tz[episodes.home]
-    comfort = h.comfort_cool_c[home]
+    frame_comfort, band = setback_frame(world)
+    comfort = frame_comfort[home]
     station, plan = h.station[home], h.plan[home]
     n_dec, dec_hour = episodes.n_decisions, episodes.decision_hour
     for j in range(int(n_dec.max(initial=0))):
@@ -205,12 +232,12 @@ def roll(world: World, episodes: Episodes, chooser: Chooser, choice_stream: int 
         hour = np.where(act, episodes.h0 + dec_hour[:, j], 0)
         k = p.state.encode(
             c.local_hour[tz, hour],
-            p.state.degrees(world.weather.temp_c[station, hour]),
+            p.state.degrees(world.weather.temp_c[station, hour], heating=p.heating_season),
             world.tariffs.tier[plan, tz, hour],
             offset,
             n_dec - j,
         )
-        ok = allowed(offset, comfort, p.cool_band_c, p.state)
+        ok = allowed(offset, comfort, band, p.state)
         probs = mask_and_normalise(chooser(k, home, episodes.day), ok)
         u = uniforms[home, episodes.day, j]
         idx = np.minimum((u[:, None] >= np.cumsum(probs, axis=1)).sum(axis=1), len(ACTIONS) - 1)
@@ -226,14 +253,14 @@ def roll(world: World, episodes: Episodes, chooser: Chooser, choice_stream: int 
 def away_setpoints(world: World, episodes: Episodes, rollout: Rollout) -> np.ndarray:
     """Setpoint in force while nobody is home, per grid hour and premise (comfort elsewhere)."""
     h = world.homes
-    sp = np.broadcast_to(h.comfort_cool_c.astype(float), (world.clock.n_hours, len(h.tz))).copy()
+    offset = np.zeros((world.clock.n_hours, len(h.tz)))
     t = np.arange(MAX_STEPS)[None, :]
     valid = t < episodes.n[:, None]
     rows = (episodes.h0[:, None] + t)[valid]
     cols = np.broadcast_to(episodes.home[:, None], valid.shape)[valid]
-    sp[rows, cols] += rollout.hour_offset(episodes)[valid]
-    sp[episodes.h0 + episodes.n, episodes.home] += rollout.final_offset(episodes)
-    return sp
+    offset[rows, cols] += rollout.hour_offset(episodes)[valid]
+    offset[episodes.h0 + episodes.n, episodes.home] += rollout.final_offset(episodes)
+    return setpoint_of(world, comfort_setpoint(world).astype(float)[None, :], offset)
 
 
 @dataclass(frozen=True)
@@ -246,6 +273,8 @@ class Run:
     """Air-conditioner kWh per 15-minute interval, unrounded, (4 * n_hours, n)."""
     t_in_c: np.ndarray | None
     """Indoor temperature at each sub-step start, (n_substeps, n), when recorded."""
+    fuel_kwh: np.ndarray | None = None
+    """Gas a furnace burnt per 15-minute interval, kWh of fuel energy, (4 * n_hours, n); winter only."""
 
 
 def thermal_homes(world: World) -> physics.ThermalHomes:
@@ -261,16 +290,18 @@ def run_grid(world: World, sp_away: np.ndarray, record: bool = False) -> Run:
     per_quarter = 15 // p.substep_minutes
     dt_h = p.substep_minutes / 60.0
     homes = thermal_homes(world)
+    advance = _heating_step(world, dt_h) if p.heating_season else None
     n = len(h.tz)
     t_out = world.weather.temp_c[h.station].T
     irr = world.weather.irradiance_kw_m2[h.station].T
     lo, hi = away_window(c, h, world.days)
-    comfort = h.comfort_cool_c.astype(float)
+    comfort = comfort_setpoint(world).astype(float)
     internal = 0.8 * world.base_kwh / 0.25
     hot_gain = _hot_gain_per_hour(world)
     t_in = comfort.copy()
     running = np.zeros(n, dtype=bool)
     hvac = np.zeros((4 * c.n_hours, n))
+    fuel = np.zeros((4 * c.n_hours, n)) if advance is not None else None
     trace = np.empty((c.n_hours * per_hour, n), dtype=np.float32) if record else None
     for hr in range(c.n_hours):
         for s in range(per_hour):
@@ -288,12 +319,40 @@ def run_grid(world: World, sp_away: np.ndarray, record: bool = False) -> Run:
             )
             if trace is not None:
                 trace[hr * per_hour + s] = t_in
-            t_in, running, _, electric = physics.substep(
-                homes, t_in, running, to, gains, sp, dt_h, p.deadband_c
-            )
+            if advance is None:
+                t_in, running, _, electric = physics.substep(
+                    homes, t_in, running, to, gains, sp, dt_h, p.deadband_c
+                )
+            else:
+                t_in, running, _, electric, burnt = advance(t_in, running, to, gains, sp)
+                fuel[q] += burnt * dt_h
             hvac[q] += electric * dt_h
     meter = np.round(hvac + world.base_kwh, 3)
-    return Run(meter, hvac, trace)
+    return Run(meter, hvac, trace, fuel)
+
+
+def _heating_step(world: World, dt_h: float) -> Callable:
+    """One heating sub-step of the world's homes: (t_in, running, t_out, gains, setpoint) -> results."""
+    from pipeline.simulate import heating
+
+    h, p = world.homes, world.params
+
+    def advance(t_in, running, t_out, gains, setpoint):
+        return heating.substep(
+            h.r_k_per_kw,
+            h.c_kwh_per_k,
+            world.heating,
+            p.heating,
+            t_in,
+            running,
+            t_out,
+            gains,
+            setpoint,
+            dt_h,
+            p.deadband_c,
+        )
+
+    return advance
 
 
 def _hot_gain_per_hour(world: World) -> np.ndarray:
@@ -312,15 +371,21 @@ def hourly(meter_kwh: np.ndarray) -> np.ndarray:
 
 def _hour_costs(world: World, episodes: Episodes, run: Run) -> tuple[np.ndarray, np.ndarray]:
     """kWh and cost, USD, of each episode hour from h_0 through the recovery window, (n_episodes, k)."""
-    p, h = world.params, world.homes
-    kwh_h = hourly(run.meter_kwh)
+    h = world.homes
     price = world.tariffs.price[h.plan, h.tz][:, : world.clock.n_hours].T
-    t = np.arange(MAX_STEPS + p.recovery_hours + 1)[None, :]
-    in_window = t <= (episodes.n + p.recovery_hours)[:, None]
+    e, hours, cols = _window(world, episodes, hourly(run.meter_kwh))
+    return e, e * price[hours, cols]
+
+
+def _window(
+    world: World, episodes: Episodes, per_hour: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Hourly values of each episode from h_0 through the recovery window (0 beyond), with their indices."""
+    t = np.arange(MAX_STEPS + world.params.recovery_hours + 1)[None, :]
+    in_window = t <= (episodes.n + world.params.recovery_hours)[:, None]
     hours = np.where(in_window, episodes.h0[:, None] + t, 0)
     cols = np.broadcast_to(episodes.home[:, None], hours.shape)
-    e = np.where(in_window, kwh_h[hours, cols], 0.0)
-    return e, e * price[hours, cols]
+    return np.where(in_window, per_hour[hours, cols], 0.0), hours, cols
 
 
 def _utc_start(world: World, hours: np.ndarray) -> np.ndarray:
@@ -337,6 +402,10 @@ def episode_frame(world: World, episodes: Episodes, rollout: Rollout, run: Run) 
     final = rollout.final_offset(episodes)
     pen = comfort_penalty(final, p.recovery_hours, p.penalty_usd_per_degree_hour)
     ret = episode_return(step_cost, rec_cost, final, p.recovery_hours, p.penalty_usd_per_degree_hour)
+    # A furnace's gas never reaches the meter; the truth keeps it beside the electric kWh.
+    gas = {}
+    if run.fuel_kwh is not None:
+        gas["gas_kwh"] = _window(world, episodes, hourly(run.fuel_kwh))[0].sum(axis=1)
     return pl.DataFrame(
         {
             "premise_id": h.premise_id[episodes.home],
@@ -348,6 +417,7 @@ def episode_frame(world: World, episodes: Episodes, rollout: Rollout, run: Run) 
             "comfort_penalty_usd": pen,
             "final_offset_c": final,
             "presence_sensing": h.presence[episodes.home],
+            **gas,
         }
     ).with_columns(pl.col("episode_start").dt.replace_time_zone("UTC"))
 

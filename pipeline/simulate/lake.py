@@ -28,13 +28,16 @@ from pipeline.simulate.engine import (
     Run,
     away_setpoints,
     behavior_chooser,
+    comfort_setpoint,
     episode_frame,
     find_episodes,
     roll,
     run_grid,
+    setback_frame,
+    setpoint_of,
     step_frame,
 )
-from pipeline.simulate.params import SimParams, SimulationError
+from pipeline.simulate.params import SEASONS, SimParams, SimulationError, winter_params
 from pipeline.simulate.rollout import CANDIDATES, policy_runs, summarise_runs
 from pipeline.simulate.world import Shared, World, build_shared, build_world
 
@@ -47,18 +50,18 @@ _ROW_GROUP_ROWS = 100_000
 
 def generate_lake(
     out_dir: str | Path,
-    n_premises: int = 60,
-    seed: int = 20260601,
-    start: date = date(2026, 6, 1),
-    days: int = 92,
+    n_premises: int | None = None,
+    seed: int | None = None,
+    start: date | None = None,
+    days: int | None = None,
     params: SimParams | None = None,
     policy_values: bool = False,
     chunk_premises: int = CHUNK_PREMISES,
 ) -> dict:
     """Simulate homes and write ``landing/`` and ``truth/`` under ``out_dir``; return a summary.
 
-    ``params``, when given, overrides the defaults; ``n_premises``, ``seed``,
-    ``start`` and ``days`` are then applied on top of it. With
+    ``params`` (default ``SimParams()``: the summer sample lake's) sets everything;
+    ``n_premises``, ``seed``, ``start`` and ``days``, when given, are applied on top of it. With
     ``policy_values``, ``truth/policy_values.parquet`` also records the true
     value of the default candidate rules (see ``true_values``). Homes are
     simulated ``chunk_premises`` at a time on the lake's one weather and price
@@ -66,10 +69,12 @@ def generate_lake(
     do not depend on the chunk size and memory is bounded by the chunk.
     """
     began = time.perf_counter()
-    for name, value in (("n_premises", n_premises), ("days", days), ("chunk_premises", chunk_premises)):
+    given = {"n_premises": n_premises, "seed": seed, "start": start, "days": days}
+    params = replace(params or SimParams(), **{k: v for k, v in given.items() if v is not None})
+    counts = (("n_premises", params.n_premises), ("days", params.days), ("chunk_premises", chunk_premises))
+    for name, value in counts:
         if value < 1:
             raise SimulationError(f"{name} must be at least 1, got {value}")
-    params = replace(params or SimParams(), n_premises=n_premises, seed=seed, start=start, days=days)
     out = Path(out_dir)
     shared = build_shared(params)
     landing, truth = out / "landing", out / "truth"
@@ -115,6 +120,7 @@ def generate_lake(
         summarise_runs(whole).write_parquet(truth / "policy_values.parquet", compression="zstd")
     files = {str(f.relative_to(out)): f.stat().st_size for f in sorted(out.rglob("*")) if f.is_file()}
     return {
+        "season": params.season,
         "n_premises": params.n_premises,
         "seed": params.seed,
         "start": params.start.isoformat(),
@@ -308,8 +314,11 @@ def _thermostat_rows(world: World, episodes: Episodes, rollout: Rollout, run: Ru
     trace = run.t_in_c
     parts: list[dict[str, np.ndarray]] = []
 
-    def add(home, hour, minute, setpoint, occupied):
+    comfort = comfort_setpoint(world)
+
+    def add(home, hour, minute, offset, occupied):
         home, hour, minute = (np.asarray(x, dtype=np.int64) for x in (home, hour, minute))
+        setpoint = setpoint_of(world, comfort[home], np.asarray(offset, dtype=np.int64))
         indoor = np.round(trace[hour * per_hour + minute // p.substep_minutes, home].astype(float), 1)
         occ = np.where(h.presence[home], np.asarray(occupied, dtype=float), np.nan)
         month = c.month[h.tz[home], hour] + 100 * _year_of(world, c.local_day[h.tz[home], hour])
@@ -327,14 +336,14 @@ def _thermostat_rows(world: World, episodes: Episodes, rollout: Rollout, run: Ru
 
     n = len(h.tz)
     first_hour = c.hour_index[h.tz, 1, 0]
-    add(np.arange(n), first_hour, np.zeros(n), h.comfort_cool_c, np.ones(n))
+    add(np.arange(n), first_hour, np.zeros(n), np.zeros(n), np.ones(n))
     home, day = np.nonzero(world.days.away)
     dep, ret = world.days.depart_min[home, day], world.days.return_min[home, day]
     dep_hour = c.hour_index[h.tz[home], day + 1, dep // 60]
     ret_hour = c.hour_index[h.tz[home], day + 1, ret // 60]
     ok = (dep_hour >= 0) & (ret_hour >= 0)
     sens = ok & h.presence[home]
-    add(home[sens], dep_hour[sens], dep[sens] % 60, h.comfort_cool_c[home[sens]], np.zeros(sens.sum()))
+    add(home[sens], dep_hour[sens], dep[sens] % 60, np.zeros(sens.sum()), np.zeros(sens.sum()))
     t = np.arange(MAX_STEPS)[None, :]
     changed = (t < episodes.n_decisions[:, None]) & (rollout.action != 0)
     e_idx, t_idx = np.nonzero(changed)
@@ -343,27 +352,30 @@ def _thermostat_rows(world: World, episodes: Episodes, rollout: Rollout, run: Ru
         ehome,
         episodes.h0[e_idx] + episodes.decision_hour[e_idx, t_idx],
         np.zeros(len(e_idx)),
-        h.comfort_cool_c[ehome] + rollout.offset[e_idx, t_idx],
+        rollout.offset[e_idx, t_idx],
         np.zeros(len(e_idx)),
     )
     final = np.zeros(world.days.away.shape, dtype=np.int64)
     if len(episodes.n):
         final[episodes.home, episodes.day] = rollout.final_offset(episodes)
     back = ok & (h.presence[home] | (final[home, day] != 0))
-    add(home[back], ret_hour[back], ret[back] % 60, h.comfort_cool_c[home[back]], np.ones(back.sum()))
+    add(home[back], ret_hour[back], ret[back] % 60, np.zeros(back.sum()), np.ones(back.sum()))
     cat = {k: np.concatenate([part[k] for part in parts]) for k in parts[0]}
     stamps = (
         np.datetime64(c.t0.replace(tzinfo=None), "m")
         + cat["hour"].astype("timedelta64[h]")
         + cat["minute"].astype("timedelta64[m]")
     )
+    # The setpoint of the other season's system stays at its comfort value.
+    heating = p.heating_season
+    other = (h.comfort_cool_c if heating else h.comfort_heat_c)[cat["home"]].astype(float)
     return pl.DataFrame(
         {
             "premise_id": h.premise_id[cat["home"]],
             "stamp": stamps.astype("datetime64[ms]"),
-            "mode": np.full(len(stamps), "cool"),
-            "cool_setpoint_c": cat["sp"],
-            "heat_setpoint_c": h.comfort_heat_c[cat["home"]].astype(float),
+            "mode": np.full(len(stamps), "heat" if heating else "cool"),
+            "cool_setpoint_c": other if heating else cat["sp"],
+            "heat_setpoint_c": cat["sp"] if heating else other,
             "occupied": pl.Series(cat["occ"], nan_to_null=True).cast(pl.Int8),
             "indoor_c": cat["indoor"],
             "month_key": cat["month"],
@@ -390,10 +402,9 @@ def _behavior_parts(world: World, parts: _Parts) -> None:
     space = p.state
     states = space.n_states
     hot_levels = (False, True) if p.hidden_confounder else (False,)
+    comfort, band = setback_frame(world)
     for hot in hot_levels:
-        tables = behavior_tables(
-            space, h.depth_pref, h.keenness, h.restore_lead, h.comfort_cool_c, p.cool_band_c, hot
-        )
+        tables = behavior_tables(space, h.depth_pref, h.keenness, h.restore_lead, comfort, band, hot)
         n, k = len(h.tz), len(ACTIONS)
         cols = {
             "premise_id": np.repeat(h.premise_id, states * k),
@@ -408,22 +419,41 @@ def _behavior_parts(world: World, parts: _Parts) -> None:
 
 def _parameter_rows(world: World) -> pl.DataFrame:
     h = world.homes
-    return pl.DataFrame(
-        {
-            "premise_id": h.premise_id,
-            "r_k_per_kw": h.r_k_per_kw,
-            "c_kwh_per_k": h.c_kwh_per_k,
-            "time_constant_h": h.r_k_per_kw * h.c_kwh_per_k,
-            "capacity_kw": h.capacity_kw,
-            "cop_nominal": h.cop_nominal,
-            "fan_kw": h.fan_kw,
-            "solar_aperture_m2": h.solar_aperture_m2,
-            "base_kw": h.base_kw,
-            "depth_pref_c": h.depth_pref,
-            "keenness": h.keenness,
-            "restore_lead": h.restore_lead,
-            "presence_sensing": h.presence,
-        }
+    return _heating_rows(
+        world,
+        pl.DataFrame(
+            {
+                "premise_id": h.premise_id,
+                "r_k_per_kw": h.r_k_per_kw,
+                "c_kwh_per_k": h.c_kwh_per_k,
+                "time_constant_h": h.r_k_per_kw * h.c_kwh_per_k,
+                "capacity_kw": h.capacity_kw,
+                "cop_nominal": h.cop_nominal,
+                "fan_kw": h.fan_kw,
+                "solar_aperture_m2": h.solar_aperture_m2,
+                "base_kw": h.base_kw,
+                "depth_pref_c": h.depth_pref,
+                "keenness": h.keenness,
+                "restore_lead": h.restore_lead,
+                "presence_sensing": h.presence,
+            }
+        ),
+    )
+
+
+def _heating_rows(world: World, frame: pl.DataFrame) -> pl.DataFrame:
+    """The homes' heating systems beside their other parameters, in the heating season."""
+    s = world.heating
+    if s is None:
+        return frame
+    return frame.with_columns(
+        heating_system=pl.Series(np.where(s.heat_pump, "heat_pump", "gas_furnace")),
+        heating_capacity_kw=s.capacity_kw,
+        heat_pump_cop_rated=pl.Series(s.cop_rated, nan_to_null=True),
+        balance_point_c=pl.Series(s.balance_c, nan_to_null=True),
+        backup_kw=s.backup_kw,
+        furnace_efficiency=pl.Series(s.efficiency, nan_to_null=True),
+        heating_fan_kw=s.fan_kw,
     )
 
 
@@ -477,32 +507,44 @@ def read_manifest(path: str | Path) -> dict[str, str]:
 def main_simulate(args: argparse.Namespace | Sequence[str] | None = None) -> dict:
     """Entry for ``thermal-ledger simulate --premises N --seed S --out DIR [--start D --days K]``.
 
-    Raises SimulationError, before anything is written, when the premises, days or
+    ``--season winter`` simulates the heating season (``winter_params``); the premises,
+    seed, start and days left out are the season's own defaults. Raises
+    SimulationError, before anything is written, when the premises, days or
     ``--chunk-premises`` are below one.
     """
     if not isinstance(args, argparse.Namespace):
         parser = argparse.ArgumentParser(prog="thermal-ledger simulate")
-        parser.add_argument("--premises", type=int, default=60)
+        parser.add_argument("--season", choices=SEASONS, default="summer")
+        parser.add_argument("--premises", type=int)
         parser.add_argument("--chunk-premises", type=int, default=CHUNK_PREMISES)
-        parser.add_argument("--seed", type=int, default=SimParams().seed)
+        parser.add_argument("--seed", type=int)
         parser.add_argument("--out", required=True)
-        parser.add_argument("--start", type=date.fromisoformat, default=SimParams().start)
-        parser.add_argument("--days", type=int, default=SimParams().days)
+        parser.add_argument("--start", type=date.fromisoformat)
+        parser.add_argument("--days", type=int)
         parser.add_argument("--hidden-confounder", action="store_true")
         parser.add_argument("--manifest", action="store_true")
         parser.add_argument("--policy-values", action="store_true")
         args = parser.parse_args(args)
-    checks = (("--premises", args.premises), ("--days", getattr(args, "days", 1)))
+    hidden = bool(getattr(args, "hidden_confounder", False))
+    if getattr(args, "season", "summer") == "winter":
+        params = winter_params(hidden_confounder=hidden)
+    else:
+        params = SimParams(hidden_confounder=hidden)
+
+    def given(name: str):
+        value = getattr(args, name, None)
+        return getattr(params, {"premises": "n_premises"}.get(name, name)) if value is None else value
+
+    checks = (("--premises", given("premises")), ("--days", given("days")))
     for flag, value in (*checks, ("--chunk-premises", getattr(args, "chunk_premises", CHUNK_PREMISES))):
         if value < 1:
             raise SimulationError(f"{flag} {value}: must be at least 1")
-    params = SimParams(hidden_confounder=bool(getattr(args, "hidden_confounder", False)))
     summary = generate_lake(
         args.out,
-        n_premises=args.premises,
-        seed=args.seed,
-        start=getattr(args, "start", params.start),
-        days=getattr(args, "days", params.days),
+        n_premises=given("premises"),
+        seed=given("seed"),
+        start=given("start"),
+        days=given("days"),
         params=params,
         policy_values=bool(getattr(args, "policy_values", False)),
         chunk_premises=getattr(args, "chunk_premises", CHUNK_PREMISES),

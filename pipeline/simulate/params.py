@@ -36,6 +36,8 @@ class Station:
     """How the station writes UTC in observed_at: "Z" or "+00:00"."""
     share: float
     """Share of premises attached to this station."""
+    winter_mean_c: float = 0.0
+    """Daily mean outdoor temperature in the depth of winter (about January 20), °C."""
 
 
 @dataclass(frozen=True)
@@ -82,14 +84,55 @@ def _flat_rows() -> tuple[RateRow, ...]:
 
 def _default_stations() -> tuple[Station, ...]:
     return (
-        Station("VRW-01", "Varrow Creek", "America/Chicago", 29.0, 5.5, "c", "Z", 0.40),
-        Station("DNM-02", "Dunmere", "America/Chicago", 28.0, 4.5, "c", "+00:00", 0.35),
-        Station("OST-03", "Ostrel Mesa", "America/Denver", 25.5, 8.0, "f", "Z", 0.25),
+        Station("VRW-01", "Varrow Creek", "America/Chicago", 29.0, 5.5, "c", "Z", 0.40, winter_mean_c=-1.0),
+        Station("DNM-02", "Dunmere", "America/Chicago", 28.0, 4.5, "c", "+00:00", 0.35, winter_mean_c=0.5),
+        Station("OST-03", "Ostrel Mesa", "America/Denver", 25.5, 8.0, "f", "Z", 0.25, winter_mean_c=-3.0),
     )
 
 
 def _default_plans() -> tuple[tuple[str, tuple[RateRow, ...]], ...]:
     return (("TOU-SUMMER", _tou_rows()), ("FLAT-STD", _flat_rows()))
+
+
+SEASONS = ("summer", "winter")
+"""Seasons the simulator plays out."""
+
+
+@dataclass(frozen=True)
+class HeatingParams:
+    """Heating systems and winter weather of the heating season, each range drawn uniformly per home."""
+
+    heat_pump_share: float = 0.5
+    """Share of homes heated by an air-source heat pump; the rest burn gas in a furnace."""
+    cop_rated: tuple[float, float] = (2.8, 3.6)
+    """Range of the heat pump's COP at 8.3 °C (47 °F) outdoors."""
+    cop_slope: float = 0.025
+    """Share of the rated COP lost per °C colder outdoors (gained per °C warmer)."""
+    cop_share: tuple[float, float] = (0.45, 1.2)
+    """Bounds of the COP as a share of the rated one, so COP lies in 0.45 * 2.8 .. 1.2 * 3.6."""
+    capacity_slope: float = 0.02
+    """Share of the rated heat pump capacity lost per °C colder outdoors."""
+    capacity_share: tuple[float, float] = (0.35, 1.1)
+    """Bounds of the heat pump capacity as a share of the rated one."""
+    balance_c: tuple[float, float] = (-6.0, 0.0)
+    """Range of the heat pump's balance point, °C outdoors; the resistance back-up runs only below it."""
+    design_c: float = -20.0
+    """Outdoor design temperature, °C: the back-up alone, or the furnace with its margin, carries the
+    home at comfort there."""
+    heat_pump_fan_kw_per_kw: float = 0.04
+    """Heat pump indoor fan power per kW of rated capacity, kW."""
+    furnace_margin: tuple[float, float] = (1.2, 1.6)
+    """Range of furnace output over the home's conduction load at the design temperature."""
+    furnace_efficiency: tuple[float, float] = (0.80, 0.96)
+    """Range of the furnace's fixed efficiency, heat delivered per unit of gas energy."""
+    furnace_fan_kw: tuple[float, float] = (0.3, 0.6)
+    """Range of the furnace blower's electric power while firing, kW (all the meter sees of it)."""
+    seasonal_rise_c: float = 6.0
+    """Half the rise of the daily mean from January 20 to July 20, °C."""
+    cold_snap_every_days: float = 20.0
+    """Mean days between cold snaps shared by the region."""
+    cold_snap_depth_c: tuple[float, float] = (6.0, 12.0)
+    """Range of the drop in daily mean at the height of a cold snap, °C."""
 
 
 @dataclass(frozen=True)
@@ -142,3 +185,33 @@ class SimParams:
     """Invented rate plans (id, rows): the time-of-use one first, the flat one second."""
     state: StateSpace = field(default_factory=StateSpace)
     """State binning shared with the pipeline."""
+    season: str = "summer"
+    """"summer" (air conditioning, cooling setpoints) or "winter" (heating systems, heating setpoints)."""
+    heat_band_c: tuple[int, int] = (13, 23)
+    """Safety band for heating setpoints, °C; 13 °C guards against frozen pipes (common practice)."""
+    heating: HeatingParams = field(default_factory=HeatingParams)
+    """Heating systems and winter weather, used when ``season`` is "winter"."""
+
+    def __post_init__(self) -> None:
+        if self.season not in SEASONS:
+            raise SimulationError(f"season {self.season!r}: must be one of {', '.join(SEASONS)}")
+
+    @property
+    def heating_season(self) -> bool:
+        """Whether homes heat (winter) rather than cool (summer)."""
+        return self.season == "winter"
+
+
+def winter_params(**overrides) -> SimParams:
+    """The winter demo scenario: December to February, deeper habitual setbacks, more early restores."""
+    values = {
+        "season": "winter",
+        "seed": 20261201,
+        "start": date(2026, 12, 1),
+        "days": 62,
+        "n_premises": 40,
+        "depth_pref_probs": (0.30, 0.45, 0.25),
+        "early_restore_share": 0.45,
+        **overrides,
+    }
+    return SimParams(**values)

@@ -10,11 +10,15 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
+from typing import TYPE_CHECKING
 from zoneinfo import ZoneInfo
 
 import numpy as np
 
 from pipeline.simulate.params import SimParams, SimulationError
+
+if TYPE_CHECKING:
+    from pipeline.simulate.heating import HeatingSystems
 
 STREAM_WEATHER = 0
 STREAM_PREMISE = 1
@@ -88,8 +92,13 @@ class Weather:
 
 
 def build_weather(params: SimParams, clock: Clock) -> Weather:
-    """Invent hot summers: seasonal mean, shared heat waves and cool spells, clouds, a diurnal cycle."""
+    """Invent hot summers (seasonal mean, shared heat waves and cool spells, clouds, a diurnal cycle),
+    or cold winters with cold snaps when the season is winter (``heating.build_winter_weather``)."""
     rng = stream(params.seed, STREAM_WEATHER)
+    if params.heating_season:
+        from pipeline.simulate.heating import build_winter_weather
+
+        return _published(params, *build_winter_weather(params, clock, rng))
     n_days = params.days + 2
     day_ord = params.start.toordinal() - 1 + np.arange(n_days)
     doy = np.array([datetime.fromordinal(int(o)).timetuple().tm_yday for o in day_ord])
@@ -119,6 +128,11 @@ def build_weather(params: SimParams, clock: Clock) -> Weather:
         temp[j] = mean_h + amp_h * np.cos(2 * np.pi * (hour - 16.0) / 24.0) + noise
         clear = np.clip(np.sin(np.pi * (hour - 6.5) / 14.0), 0.0, None) * (hour >= 6.5) * (hour <= 20.5)
         irr[j] = 0.85 * clear * (1.0 - 0.65 * cloud[np.clip(day, 0, n_days - 1)])
+    return _published(params, temp, irr)
+
+
+def _published(params: SimParams, temp: np.ndarray, irr: np.ndarray) -> Weather:
+    """Round each station's temperatures to 0.1 in its unit, and read them back as °C."""
     published = np.empty_like(temp)
     temp_c = np.empty_like(temp)
     for j, st in enumerate(params.stations):
@@ -259,6 +273,8 @@ class World:
     """Non-HVAC energy per 15-minute interval, kWh, (4 * n_hours, n_premises)."""
     estimated: np.ndarray
     """Meter intervals flagged "estimated", (4 * n_hours, n_premises)."""
+    heating: HeatingSystems | None = None
+    """Each home's heating system in the heating season; None in summer."""
 
 
 def _base_shape(hour: np.ndarray, occupied: np.ndarray) -> np.ndarray:
@@ -357,7 +373,12 @@ def build_world(params: SimParams, premises: range | None = None, shared: Shared
     hot_q = _daily_to_quarter(clock, homes, days.feeling_hot)
     shape = _base_shape(local_hour_q, occ_q) * (1.0 + 0.2 * hot_q)
     base_kwh = homes.base_kw[None, :] * shape * noise * 0.25
-    return World(params, clock, weather, tariffs, homes, days, base_kwh, estimated)
+    systems = None
+    if params.heating_season:
+        from pipeline.simulate.heating import draw_systems
+
+        systems = draw_systems(params, homes.index, homes.r_k_per_kw, homes.comfort_heat_c)
+    return World(params, clock, weather, tariffs, homes, days, base_kwh, estimated, systems)
 
 
 def _off_the_hour(minutes: np.ndarray) -> np.ndarray:
