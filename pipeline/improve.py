@@ -638,11 +638,18 @@ def improve_mode(
     low = 1.5 * float(learn_res.min()) if learn_res.size else -np.inf
     high = 1.5 * float(learn_res.max()) if learn_res.size else np.inf
     policies, savings, tests = [], [], []
+    premise_code = np.unique(m.steps["premise_id"].to_numpy(), return_inverse=True)[1].reshape(-1)
     for scope in config.improve_scopes:
-        labels = keys[scope]
-        known = np.array([v is not None for v in labels])
-        for key in sorted({v for v in labels[known]}):
-            rows = np.flatnonzero(known & (labels == key))
+        # Each key's rows at once: sort the steps by key (no pass over all steps per key).
+        labels = pl.Series(keys[scope], dtype=pl.Utf8)
+        known = labels.is_not_null().to_numpy()
+        values, inverse = np.unique(labels.fill_null("").to_numpy().astype(str), return_inverse=True)
+        inverse = np.where(known, inverse.reshape(-1), -1)
+        order = np.argsort(inverse, kind="stable")
+        bounds = np.searchsorted(inverse[order], np.arange(values.size + 1))
+        for index in np.flatnonzero(np.diff(bounds) > 0):
+            key = str(values[index])
+            rows = np.sort(order[bounds[index] : bounds[index + 1]])
             eps = np.unique(m.code[rows])
             held_eps, learn_eps = eps[m.held[eps]], eps[~m.held[eps]]
             name = _policy_name(scope, key)
@@ -654,7 +661,7 @@ def improve_mode(
                 "learner": None,
                 "bound_method": config.safety_bound,
                 "confidence": config.confidence,
-                "n_premises": int(np.unique(m.steps["premise_id"].to_numpy()[rows]).size),
+                "n_premises": int(np.unique(premise_code[rows]).size),
                 "n_learning_episodes": int(learn_eps.size),
                 "n_held_out_episodes": int(held_eps.size),
                 "n_bound_episodes": None,
