@@ -24,6 +24,8 @@ $(STAMP): pyproject.toml | $(BIN)/python
 demo: $(STAMP)
 	@PREFECT_SERVER_ANALYTICS_ENABLED=false $(BIN)/thermal-ledger run --lake $(LAKE) --out $(OUT) \
 		$(if $(wildcard $(LAKE)/settings.toml),--config $(LAKE)/settings.toml)
+	@# Simulated lakes only (the sample lake is one): every policy of the run against the simulator's truth.
+	@if [ -d $(LAKE)/truth ]; then $(BIN)/thermal-ledger truth --lake $(LAKE) --out $(OUT); fi
 	@$(BIN)/thermal-ledger run --no-prefect --lake $(LAKE)/winter --out $(OUT)/winter \
 		--config $(LAKE)/winter/settings.toml
 
