@@ -471,6 +471,7 @@ def improve(config: Config, run: Run) -> ImprovementSummary:
     """
     started = time.perf_counter()
     _checked(config, "improve")
+    reporting.begin("improve", None, "improve: learning policies, safety test")
     build_id = _build_id(config, "improve")
     if build_id is not None:
         with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
@@ -489,6 +490,7 @@ def improve(config: Config, run: Run) -> ImprovementSummary:
     if frames["savings"].height:
         tables |= run.write("savings", frames["savings"], part="learned")
     tables |= run.write("safety_test", frames["safety_test"])
+    reporting.done("improve")
     work = StageWork("improve", build_id is not None, time.perf_counter() - started)
     return ImprovementSummary(frames["safety_test"], frames["savings"], tables, work)
 
