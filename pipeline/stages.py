@@ -475,15 +475,22 @@ def improve(config: Config, run: Run) -> ImprovementSummary:
     build_id = _build_id(config, "improve")
     if build_id is not None:
         with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
+            kept = {row[0] for row in store.execute(con, "select table_name from duckdb_tables()")}
+            # A frame with no columns (no scope had savings to learn from) is stored as no table.
             frames = {
                 name: store.frame(con, f"select * from {store.quote_identifier(f'improvement_{name}')}")
+                if f"improvement_{name}" in kept
+                else pl.DataFrame()
                 for name in IMPROVEMENT_TABLES
             }
     else:
         frames = _improvement_tables(config)
         with store.warehouse(config.warehouse_path, settings=config.duckdb) as con, store.transaction(con):
             for name in IMPROVEMENT_TABLES:
-                store.replace_table(con, f"improvement_{name}", frames[name])
+                if frames[name].width:
+                    store.replace_table(con, f"improvement_{name}", frames[name])
+                else:
+                    store.execute(con, f"drop table if exists {store.quote_identifier(f'improvement_{name}')}")
             lineage.record(con, "improve", config.stage_settings("improve"), _upstream("improve"), run.run_id)
     tables: dict[str, int] = {}
     tables |= run.write("policy", frames["policy"], part="learned")
