@@ -403,7 +403,7 @@ def test_flow_writes_the_report_and_publishes_two_keyed_artifacts(flow_state):
 
     out, state, summary = flow_state
     html = out / "report" / summary.run_id / "report.html"
-    assert html.is_file() and "Program savings per policy" in html.read_text()
+    assert html.is_file() and "Savings per policy, whole program" in html.read_text()
     with get_client(sync_client=True) as client:
         made = client.read_artifacts(
             artifact_filter=ArtifactFilter(
