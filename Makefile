@@ -21,9 +21,15 @@ $(STAMP): pyproject.toml | $(BIN)/python
 # start of Prefect's temporary server (about 35 s of the winter run's 44 s).
 # The embedded Prefect server would otherwise try to send usage analytics (and log a
 # failure on a machine without network).
+# The run writes its report (out/report/<run_id>/report.html); on a simulated lake the truth
+# check then adds policy_truth to the ledger and the report is written again to show it.
 demo: $(STAMP)
 	@PREFECT_SERVER_ANALYTICS_ENABLED=false $(BIN)/thermal-ledger run --lake $(LAKE) --out $(OUT) \
 		$(if $(wildcard $(LAKE)/settings.toml),--config $(LAKE)/settings.toml)
+	@$(if $(wildcard $(LAKE)/truth),$(BIN)/thermal-ledger truth --lake $(LAKE) --out $(OUT) \
+		$(if $(wildcard $(LAKE)/settings.toml),--config $(LAKE)/settings.toml) && \
+		$(BIN)/thermal-ledger report --lake $(LAKE) --out $(OUT) \
+		$(if $(wildcard $(LAKE)/settings.toml),--config $(LAKE)/settings.toml),true)
 	@$(BIN)/thermal-ledger run --no-prefect --lake $(LAKE)/winter --out $(OUT)/winter \
 		--config $(LAKE)/winter/settings.toml
 

@@ -12,6 +12,9 @@ DEVELOPERS.md ("Choosing the behaviour model and the estimator") quotes these ru
     PYTHONPATH=. python bench/coverage_study.py --seeds $(seq 11 26) --work /tmp/cov
     PYTHONPATH=. python bench/coverage_study.py --seeds $(seq 11 26) --work /tmp/cov --behavior-model counts
     PYTHONPATH=. python bench/coverage_study.py --seeds $(seq 11 26) --work /tmp/cov --behavior-model true
+
+``--season winter`` studies heating lakes (``winter_params``: 40 homes, December and January)
+instead, kept under ``<work>/winter-seed<S>``.
 """
 
 from __future__ import annotations
@@ -29,12 +32,15 @@ from pipeline.behavior import fit_behavior
 from pipeline.episodes import build, load_steps
 from pipeline.evaluate import _model_columns, target_probabilities
 from pipeline.simulate import generate_lake, true_step_probabilities
+from pipeline.simulate.params import winter_params
 
 ESTIMATORS = ("weighted_is", "weighted_per_decision_is", "doubly_robust")
 
 
-def study_lake(seed: int, work: Path, replicates: int, behavior_model: str) -> list[dict]:
-    root = work / f"seed{seed}"
+def study_lake(
+    seed: int, work: Path, replicates: int, behavior_model: str, season: str = "summer"
+) -> list[dict]:
+    root = work / (f"seed{seed}" if season == "summer" else f"{season}-seed{seed}")
     config = config_module.load(
         overrides={
             "lake": str(root / "lake"),
@@ -45,7 +51,10 @@ def study_lake(seed: int, work: Path, replicates: int, behavior_model: str) -> l
     )
     if not (root / "lake" / "truth" / "policy_values.parquet").exists() or not config.warehouse_path.exists():
         shutil.rmtree(root, ignore_errors=True)
-        generate_lake(root / "lake", n_premises=60, seed=seed, policy_values=True)
+        if season == "winter":
+            generate_lake(root / "lake", params=winter_params(seed=seed), policy_values=True)
+        else:
+            generate_lake(root / "lake", n_premises=60, seed=seed, policy_values=True)
         ingest.ingest(config)
         with store.warehouse(config.warehouse_path) as con:
             build(con, config)
@@ -120,11 +129,12 @@ def main() -> None:
         default="types",
         help="behaviour probabilities: a fitted model, or the simulator's own (the ideal)",
     )
+    parser.add_argument("--season", choices=("summer", "winter"), default="summer")
     args = parser.parse_args()
     rows = [
         row
         for seed in args.seeds
-        for row in study_lake(seed, args.work, args.replicates, args.behavior_model)
+        for row in study_lake(seed, args.work, args.replicates, args.behavior_model, args.season)
     ]
     result = pl.DataFrame(rows)
     summary = (

@@ -32,7 +32,8 @@ POWER_THRESHOLD_USD = 0.20
 
 def one_lake(seed: int, work: Path, premises: int, days: int, overrides: dict) -> pl.DataFrame:
     """Simulate, run and score one lake; its policy_truth rows with the seed."""
-    lake, out = work / f"lake-s{seed}", work / f"out-s{seed}"
+    tag = "-".join(f"{k}{v}" for k, v in sorted(overrides.items()) if k.startswith(("improve_", "safety_")))
+    lake, out = work / f"lake-s{seed}", work / f"out-s{seed}-{tag}"
     if not (lake / "truth" / "episodes.parquet").is_file():
         generate_lake(lake, n_premises=premises, seed=seed, days=days)
     config = config_module.load(overrides={"lake": str(lake), "out": str(out), "seed": seed, **overrides})
@@ -95,6 +96,13 @@ def main(argv: list[str] | None = None) -> dict:
     parser.add_argument("--days", type=int, default=92)
     parser.add_argument("--replicates", type=int, default=200, help="bootstrap replicates (default 200)")
     parser.add_argument("--bound", default="student_t", help="safety_bound setting (default student_t)")
+    parser.add_argument(
+        "--set",
+        action="append",
+        default=[],
+        metavar="KEY=JSON",
+        help="another setting, e.g. improve_min_count=20",
+    )
     args = parser.parse_args(argv)
     args.work.mkdir(parents=True, exist_ok=True)
     overrides = {
@@ -102,16 +110,20 @@ def main(argv: list[str] | None = None) -> dict:
         "safety_bound": args.bound,
         "presence_sources": ["occupancy_flag"],
     }
+    for item in args.set:
+        key, value = item.split("=", 1)
+        overrides[key] = json.loads(value)
     frames = []
     for seed in args.seeds:
         began = time.perf_counter()
         frames.append(one_lake(seed, args.work, args.premises, args.days, overrides))
         print(f"seed {seed}: {time.perf_counter() - began:.0f} s", flush=True)
     rows = pl.concat(frames, how="diagonal_relaxed")
-    rows.write_parquet(args.work / "safety-study.parquet")
+    stem = "-".join(["safety-study", *(item.replace("=", "") for item in args.set), args.bound])
+    rows.write_parquet(args.work / f"{stem}.parquet")
     result = {"seeds": args.seeds, "premises": args.premises, "days": args.days, **overrides}
     result |= figures(rows)
-    (args.work / "safety-study.json").write_text(json.dumps(result, indent=2, default=str))
+    (args.work / f"{stem}.json").write_text(json.dumps(result, indent=2, default=str))
     print(json.dumps(result, indent=2, default=str))
     return result
 

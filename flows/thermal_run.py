@@ -142,7 +142,7 @@ def episodes_mapped(config: Config, run: Run) -> stages.EpisodeSummary:
 def thermal_ledger_run(
     config_path: str | None = None, overrides: dict[str, Any] | None = None
 ) -> stages.RunSummary:
-    """Ingest, build episodes, learn and evaluate; write the ledger for one run, then its report."""
+    """Ingest, build episodes, learn, improve and evaluate; write the ledger for one run, then its report."""
     config = config_module.load(config_path, overrides)
     with exclusive_output(config.out, "(thermal-ledger flow)"):
         run = Run(config)

@@ -41,6 +41,7 @@ ROW_COUNTS: dict[str, tuple[str, str]] = {
     "ingest": ("meter rows loaded", "select count(*) from meter_read"),
     "episodes": ("premise-hours", "select count(*) from hourly"),
     "learn": ("decision steps", "select count(*) from step"),
+    "improve": ("decision steps", "select count(*) from step"),
     "evaluate": ("decision steps", "select count(*) from step"),
 }
 """What each stage's rows per second counts, read from the warehouse after the run."""

@@ -303,6 +303,10 @@ class Config:
         tuple[SetbackRule, ...], BeforeValidator(_no_booleans("candidate")), Field(min_length=1)
     ] = _setting(stages=("evaluate",), factory=_default_candidates)
     """Candidate setback rules evaluated in every run ([[candidate]] tables; candidate_file replaces them)."""
+    schedule_for: Annotated[Name, AfterValidator(_OneOf(("recommended", "every_candidate")))] = _setting(
+        "recommended", stages=("evaluate",)
+    )
+    """Plans in the schedule: 'recommended' (each home's policy to send) or 'every_candidate' (for review)."""
     candidate_file: Path | None = _setting(None, stages=("evaluate",), unit="file")
     """Rule file of candidate policies ([[rule]] tables; README), found beside the settings file naming it."""
     columns: dict[str, dict[str, str]] = _setting(stages=("ingest",), factory=dict)
@@ -344,6 +348,10 @@ class Config:
         0.0, stages=("improve",), unit="probability"
     )
     """Share of the moved probability spread over well-sampled allowed actions the residents take."""
+    improve_min_probability: Annotated[float, Strict(), Field(ge=0, lt=1)] = _setting(
+        0.0, stages=("improve",), unit="probability"
+    )
+    """A home's action below this behaviour probability keeps it and gets none of the moved mass."""
     improve_min_episodes: Count = _setting(200, stages=("improve",), unit="episodes")
     """Fewest learning and held-out episodes a scope needs for a policy to be learned and tested."""
     improve_scopes: Annotated[
@@ -360,10 +368,10 @@ class Config:
     )
     """Threads each DuckDB connection may use; 0 leaves DuckDB's default (one per core)."""
     duckdb_memory_limit: Annotated[Name, AfterValidator(_MEMORY_SIZE)] = _setting(
-        "", stages=(), execution=True, unit="bytes"
+        "2GB", stages=(), execution=True, unit="bytes"
     )
-    """Memory each DuckDB connection may hold before it spills to disk; empty leaves DuckDB's default
-    (80 % of RAM)."""
+    """Memory each DuckDB connection may hold before it spills to disk (beside the warehouse); the default
+    keeps a 10,000-home CSV ingest near 2 GiB; empty leaves DuckDB's default (80 % of RAM)."""
     duckdb_preserve_insertion_order: Annotated[bool, Strict()] = _setting(True, stages=(), execution=True)
     """Whether DuckDB keeps rows in the order read where a query does not sort; false can use less memory."""
     # ---- the run report (read from the ledger after the stages; shapes no stage) ----

@@ -109,6 +109,7 @@ def evaluate_policy(
     multiplicity: np.ndarray | None = None,
     behavior_sums: tuple[estimators.ReplicateSums, estimators.ReplicateSums] | None = None,
     season_days: int | None = None,
+    behavior_comfort: estimators.ReplicateSums | None = None,
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Savings rows (one per scope, group and estimator) and diagnostics of one target policy.
 
@@ -155,6 +156,8 @@ def evaluate_policy(
         value does not depend on the target, so several targets can share it.
     season_days : int, optional
         Days of the season annual figures cover (default ``cooling_days_per_year``).
+    behavior_comfort : estimators.ReplicateSums, optional
+        ``on_policy_comfort_sums`` of the same steps and draws, shared like ``behavior_sums``.
     """
     base = steps.select(
         "episode_id",
@@ -178,13 +181,18 @@ def evaluate_policy(
     # the costliest logged episode (stated in the README beside the bound).
     bounds = (1.5 * float(returns.min()), 0.0)
     usd_premise, kwh_premise = _scoped(usd_base, "premise_id"), _scoped(kwh_base, "premise_id")
-    sums = {name: _premise_sums(usd_premise, kwh_premise, name, multiplicity) for name in names}
+    recommended = config.recommended_estimator
+    sums = {
+        name: _premise_sums(usd_premise, kwh_premise, name, multiplicity, name == recommended)
+        for name in names
+    }
     sums["on_policy_value"] = behavior_sums or on_policy_sums(steps, multiplicity)
-    measures = (
-        _measure_sums(steps, pi, b, table, multiplicity, config)
-        if config.recommended_estimator in names
-        else {}
-    )
+    comfort = None
+    if recommended in names:
+        comfort = (
+            _comfort_sums(steps, pi, b, table, multiplicity, config),
+            behavior_comfort or on_policy_comfort_sums(steps, multiplicity),
+        )
     premise_cohort = steps.select("premise_id", "cohort").unique()
     rows, diags = [], []
     for scope, column in SCOPES:
@@ -203,13 +211,12 @@ def evaluate_policy(
         ).select("group", pl.col("lower_bound").alias("lower_bound_usd"))
         scope_days = _scoped(days, column).group_by("group").agg(pl.col("days_observed").sum())
         diag = estimators.diagnostics(usd_frame)
-        measured = _measure_columns(
-            {
-                m: tuple(p if key is None else estimators.combine_sums([p], key) for p in pair)
-                for m, pair in measures.items()
-            },
-            config,
-        )
+        measured = None
+        if comfort is not None:
+            scoped_comfort = tuple(p if key is None else estimators.combine_sums([p], key) for p in comfort)
+            measured = _measure_columns(
+                scoped[recommended], scoped["on_policy_value"], scoped_comfort, config
+            )
         for name in names:
             usd, kwh = scoped[name]
             point = usd.frame()
@@ -231,7 +238,7 @@ def evaluate_policy(
                 .join(diag.select("group", "n_unsupported_steps"), on="group", how="left")
                 .with_columns(pl.lit(name).alias("estimator"))
             )
-            if name == config.recommended_estimator and measures:
+            if name == recommended and measured is not None:
                 joined = joined.join(measured, on="group", how="left")
             else:
                 joined = joined.with_columns(pl.lit(None, pl.Float64).alias(c) for c in MEASURE_COLUMNS)
@@ -241,13 +248,8 @@ def evaluate_policy(
     return _finish_savings(pl.concat(rows), premise_cohort, config, season), pl.concat(diags)
 
 
-# What the recommended estimator also reports, each from the same draws as the bill's interval:
+# What the recommended estimator also reports, from the same draws as its savings interval:
 # the energy bill alone, comfort (°C-hours of setback after the return) and kWh.
-_MEASURES = {
-    "bill": -(pl.col("cost_usd") + pl.col("recovery_cost_usd")),
-    "comfort": pl.col("comfort_degree_hours"),
-    "kwh": -(pl.col("kwh") + pl.col("recovery_kwh")),
-}
 MEASURE_COLUMNS = [
     "bill_usd_behavior",
     "bill_usd_policy",
@@ -272,61 +274,71 @@ MEASURE_COLUMNS = [
 """Columns of the bill alone, kWh interval and comfort cost, filled on the recommended estimator's rows."""
 
 
-def _measure_sums(
+def _comfort_frame(steps: pl.DataFrame, pi: np.ndarray, b: np.ndarray) -> pl.DataFrame:
+    missing = [c for c in ("comfort_degree_hours",) if c not in steps.columns]
+    if missing:
+        raise estimators.EstimatorInputError(f"decision steps lack column(s) {missing} (see sql/step.sql)")
+    return steps.select(
+        "episode_id",
+        "t",
+        pl.col("premise_id").cast(pl.Utf8).alias("group"),
+        pl.col("comfort_degree_hours").alias("reward"),
+    ).with_columns(pl.Series("pi", pi), pl.Series("b", b))
+
+
+def _comfort_sums(
     steps: pl.DataFrame,
     pi: np.ndarray,
     b: np.ndarray,
     table: np.ndarray | None,
     multiplicity: np.ndarray,
     config: Config,
-) -> dict[str, tuple[estimators.ReplicateSums, estimators.ReplicateSums]]:
-    """Per measure, the recommended estimator's sums per premise and the logged policy's (same draws)."""
-    missing = [c for c in ("cost_usd", "recovery_cost_usd", "comfort_degree_hours") if c not in steps.columns]
-    if missing:
-        raise estimators.EstimatorInputError(f"decision steps lack column(s) {missing} (see sql/step.sql)")
-    name = config.recommended_estimator
-    needs_q = off_policy_estimator(name).needs_q_model
-    if needs_q and table is None:
-        return {}
-    out = {}
-    for measure, expr in _MEASURES.items():
-        frame = steps.select(
-            "episode_id", "t", pl.col("premise_id").cast(pl.Utf8).alias("group"), expr.alias("reward")
-        ).with_columns(pl.Series("pi", pi), pl.Series("b", b))
-        logged = estimators.replicate_sums(frame, "on_policy_value", multiplicity)
-        if needs_q:
-            scored = steps.with_columns(expr.alias("_measure"))
-            frame = pl.concat([frame, _model_columns(scored, table, "_measure", config)], how="horizontal")
-        out[measure] = (estimators.replicate_sums(frame, name, multiplicity), logged)
-    return out
+) -> estimators.ReplicateSums:
+    """The recommended estimator's sums per premise of the °C-hours of setback after the return."""
+    frame = _comfort_frame(steps, pi, b)
+    if off_policy_estimator(config.recommended_estimator).needs_q_model:
+        frame = pl.concat(
+            [frame, _model_columns(steps, table, "comfort_degree_hours", config)], how="horizontal"
+        )
+    return estimators.replicate_sums(frame, config.recommended_estimator, multiplicity)
+
+
+def on_policy_comfort_sums(steps: pl.DataFrame, multiplicity: np.ndarray) -> estimators.ReplicateSums:
+    """The logged policy's °C-hours of setback after the return, sums per premise with replicates."""
+    ones = np.ones(steps.height)
+    return estimators.replicate_sums(_comfort_frame(steps, ones, ones), "on_policy_value", multiplicity)
 
 
 def _measure_columns(
-    scoped: dict[str, tuple[estimators.ReplicateSums, estimators.ReplicateSums]], config: Config
+    policy: tuple[estimators.ReplicateSums, estimators.ReplicateSums],
+    logged: tuple[estimators.ReplicateSums, estimators.ReplicateSums],
+    comfort: tuple[estimators.ReplicateSums, estimators.ReplicateSums],
+    config: Config,
 ) -> pl.DataFrame:
-    """The ``MEASURE_COLUMNS`` per group from the policy's and the logged policy's sums of each measure.
+    """The ``MEASURE_COLUMNS`` per group from (USD, kWh) sums of the policy and the logged policy and
+    the (policy, logged) comfort sums, all over the same groups and draws.
 
-    Intervals are percentile intervals of the bootstrap replicates (the policy's value, or
-    its difference from the logged policy's, replicate by replicate); the bill's one-sided
-    bound is the (1 - confidence) quantile of its savings replicates, as for
-    ``lower_bound_bootstrap_usd``.
+    The bill alone is the penalised value plus the priced °C-hours, replicate by replicate: the
+    reward is minus the bill minus price x °C-hours (``sql/step.sql``), and every estimator is
+    linear in the reward for fixed weights (and, for doubly robust, a Q model linear in it).
+    Intervals are percentile intervals of the replicates (the policy's value, or its difference
+    from the logged policy's); the bill's one-sided bound is the (1 - confidence) quantile of its
+    savings replicates, as for ``lower_bound_bootstrap_usd``.
     """
-    if not scoped:
-        return pl.DataFrame(schema={"group": pl.Utf8, **dict.fromkeys(MEASURE_COLUMNS, pl.Float64)})
     price = config.comfort_penalty_usd_per_degree_hour
-    values = {m: (policy.values(), logged.values()) for m, (policy, logged) in scoped.items()}
-    labels = scoped["bill"][0].labels
+    labels = policy[0].labels
+    comfort_policy, comfort_logged = comfort[0].values(), comfort[1].values()
+    bill_policy = policy[0].values() + price * comfort_policy
+    bill_logged = logged[0].values() + price * comfort_logged
+    kwh_policy, kwh_logged = policy[1].values(), logged[1].values()
 
     def interval(replicated: np.ndarray, low: str, high: str) -> dict[str, np.ndarray]:
         found = estimators.percentile_interval(labels, replicated[0], replicated[1:], config.confidence)
         return {low: found["ci_low"].to_numpy(), high: found["ci_high"].to_numpy()}
 
-    bill_policy, bill_logged = values["bill"]
     bill_savings = bill_policy - bill_logged
     bound = _interval_and_bootstrap_bound(labels, bill_savings[0], bill_savings[1:], config)
-    kwh_policy, kwh_logged = values["kwh"]
-    comfort_policy, comfort_logged = values["comfort"]
-    comfort = interval(comfort_policy, "comfort_degree_hours_ci_low", "comfort_degree_hours_ci_high")
+    policy_comfort = interval(comfort_policy, "comfort_degree_hours_ci_low", "comfort_degree_hours_ci_high")
     columns = {
         "group": labels,
         "bill_usd_behavior": -bill_logged[0],
@@ -339,13 +351,13 @@ def _measure_columns(
         **interval(kwh_policy - kwh_logged, "savings_kwh_ci_low", "savings_kwh_ci_high"),
         "comfort_degree_hours_behavior": comfort_logged[0],
         "comfort_degree_hours_policy": comfort_policy[0],
-        **comfort,
+        **policy_comfort,
         "comfort_change_degree_hours": comfort_policy[0] - comfort_logged[0],
         **interval(comfort_policy - comfort_logged, "comfort_change_ci_low", "comfort_change_ci_high"),
         "comfort_cost_usd_behavior": price * comfort_logged[0],
         "comfort_cost_usd_policy": price * comfort_policy[0],
-        "comfort_cost_usd_ci_low": price * comfort["comfort_degree_hours_ci_low"],
-        "comfort_cost_usd_ci_high": price * comfort["comfort_degree_hours_ci_high"],
+        "comfort_cost_usd_ci_low": price * policy_comfort["comfort_degree_hours_ci_low"],
+        "comfort_cost_usd_ci_high": price * policy_comfort["comfort_degree_hours_ci_high"],
     }
     return pl.DataFrame(columns).select("group", *MEASURE_COLUMNS)
 
@@ -359,19 +371,20 @@ BILL_NOTES = {
 
 
 def _premise_sums(
-    usd: pl.DataFrame, kwh: pl.DataFrame, name: str, multiplicity: np.ndarray
+    usd: pl.DataFrame, kwh: pl.DataFrame, name: str, multiplicity: np.ndarray, kwh_replicates: bool = False
 ) -> tuple[estimators.ReplicateSums, estimators.ReplicateSums]:
-    """An estimator's sums per premise: USD for the point and every replicate, kWh for the point only."""
+    """An estimator's sums per premise: USD for the point and every replicate, kWh for the point only
+    (and every replicate too when ``kwh_replicates``, for the recommended estimator's kWh interval)."""
     return (
         estimators.replicate_sums(usd, name, multiplicity),
-        estimators.replicate_sums(kwh, name, multiplicity[:0]),
+        estimators.replicate_sums(kwh, name, multiplicity if kwh_replicates else multiplicity[:0]),
     )
 
 
 def on_policy_sums(
     steps: pl.DataFrame, multiplicity: np.ndarray
 ) -> tuple[estimators.ReplicateSums, estimators.ReplicateSums]:
-    """The logged policy's value sums per premise: USD with replicates, kWh (reward, kwh, recovery_kwh)."""
+    """The logged policy's value sums per premise, USD and kWh, both with replicates."""
     frame = _scoped(
         steps.select(
             "episode_id",
@@ -383,7 +396,7 @@ def on_policy_sums(
         "premise_id",
     )
     return _premise_sums(
-        frame, frame.with_columns(pl.col("neg_kwh").alias("reward")), "on_policy_value", multiplicity
+        frame, frame.with_columns(pl.col("neg_kwh").alias("reward")), "on_policy_value", multiplicity, True
     )
 
 
@@ -594,7 +607,7 @@ def applicable_premises(candidate: Candidate, days: pl.DataFrame) -> pl.Series |
 
 
 def _restricted(bundle: tuple, premises: pl.Series) -> tuple:
-    """A mode's shared inputs (steps, b, refit, draws, logged sums) kept to the steps of ``premises``.
+    """A mode's shared inputs (steps, b, refit, draws, ``_logged_sums``) kept to the steps of ``premises``.
 
     The draws are per episode (seeded by the episode id), so keeping an episode's column keeps
     exactly the draws a frame of the kept episodes alone would get.
@@ -608,7 +621,12 @@ def _restricted(bundle: tuple, premises: pl.Series) -> tuple:
     kept_episodes = keep[np.r_[True, episode[1:] != episode[:-1]]]
     kept_draws = draws[:, kept_episodes]
     kept_refit = None if refit is None else (refit[0][:, kept_episodes], refit[1][:, keep])
-    return steps, b[keep], kept_refit, kept_draws, on_policy_sums(steps, kept_draws)
+    return steps, b[keep], kept_refit, kept_draws, _logged_sums(steps, kept_draws)
+
+
+def _logged_sums(steps: pl.DataFrame, draws: np.ndarray) -> tuple:
+    """The logged policy's (USD, kWh) sums and its comfort sums: every candidate of a mode shares them."""
+    return on_policy_sums(steps, draws), on_policy_comfort_sums(steps, draws)
 
 
 def season_days(config: Config, mode: str) -> int:
@@ -648,7 +666,7 @@ def evaluate_candidates(
         in_mode = steps.filter(pl.col("mode") == mode)
         refit = behavior_replicates(in_mode, behavior, config) if config.bootstrap_refit_behavior else None
         draws = estimators.frame_multiplicity(in_mode, config.bootstrap_replicates, config.seed)
-        logged = on_policy_sums(in_mode, draws)
+        logged = _logged_sums(in_mode, draws)
         modes[mode] = (in_mode, behavior.probabilities(in_mode), refit, draws, logged)
     for rule in candidates:
         table = rule.table
@@ -674,8 +692,9 @@ def evaluate_candidates(
                 table,
                 refit,
                 draws,
-                logged,
+                logged[0],
                 season_days(config, mode),
+                logged[1],
             )
             tag = (pl.lit(rule.name).alias("policy_name"), pl.lit(mode).alias("mode"))
             savings.append(s.with_columns(*tag))

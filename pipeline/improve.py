@@ -85,8 +85,19 @@ SAFETY_COLUMNS = [
     "outside_range_episodes",
     "min_count",
     "epsilon",
+    "min_probability",
 ]
 """Columns of the ``safety_test`` ledger table, one row per mode and scope key."""
+SAFETY_FLOATS = [
+    "confidence",
+    "savings_estimate_usd",
+    "lower_bound_usd",
+    "comfort_change_usd",
+    "residual_low_usd",
+    "residual_high_usd",
+    "epsilon",
+]
+SAFETY_TEXT = ["outcome", "reason", "learner", "bound_method"]
 
 
 @dataclass(frozen=True)
@@ -116,6 +127,7 @@ def premise_policy(
     allowed_rows: np.ndarray,
     min_count: int,
     epsilon: float,
+    min_probability: float = 0.0,
 ) -> np.ndarray:
     """Pi_b-SPIBB of a scope's Q at rows of (premise, state): each row keeps its home's own behaviour.
 
@@ -123,10 +135,18 @@ def premise_policy(
     home's behaviour probabilities and the home's allowed actions there. The behaviour is
     first kept to the allowed actions (``control.restrict``), so a home whose residents
     would leave a setback in force at the return is made to restore comfort.
+
+    Besides the scope's rarely logged pairs, an action the home's own behaviour takes with
+    probability below ``min_probability`` is bootstrapped too (it keeps that probability
+    and receives none of the moved mass): the scope's other homes may take it, but this
+    home's logs cannot speak for it, and an importance ratio over an action its residents
+    (nearly) never take has no support to rest on. It also caps each moved step's ratio at
+    1 / ``min_probability``.
     """
     base = control.restrict(behavior_rows, allowed_rows)
+    q = np.where(base >= min_probability, q_rows, np.nan) if min_probability > 0 else q_rows
     return control.baseline_bootstrapped(
-        q_rows, visits_rows, base, min_count, allowed=allowed_rows, epsilon=epsilon
+        q, visits_rows, base, min_count, allowed=allowed_rows, epsilon=epsilon
     )
 
 
@@ -138,6 +158,7 @@ def premise_tables(
     config: Config,
     min_count: int,
     epsilon: float,
+    min_probability: float = 0.0,
 ) -> np.ndarray:
     """Each premise's full table (n_premises, S, A) of a learned scope policy, from its ledger rows.
 
@@ -165,7 +186,9 @@ def premise_tables(
         heat_band_c=config.heat_band_c,
     ).reshape(-1, n_actions)
     n = premises.height
-    table = premise_policy(np.tile(q, (n, 1)), np.tile(visits, (n, 1)), bvec, mask, min_count, epsilon)
+    table = premise_policy(
+        np.tile(q, (n, 1)), np.tile(visits, (n, 1)), bvec, mask, min_count, epsilon, min_probability
+    )
     return table.reshape(n, n_states, n_actions)
 
 
@@ -543,6 +566,7 @@ def _pi_rows(m: _Mode, learned: control.LearnedQ, rows: np.ndarray, config: Conf
         m.allowed[rows],
         config.improve_min_count,
         config.improve_epsilon,
+        config.improve_min_probability,
     )
 
 
@@ -561,7 +585,13 @@ def _scope_table(m: _Mode, learned: control.LearnedQ, rows: np.ndarray, config: 
     allowed = np.where(everywhere.any(axis=1, keepdims=True), everywhere, anywhere)
     allowed = np.where(allowed.any(axis=1, keepdims=True), allowed, True)
     table = premise_policy(
-        learned.q, learned.visits, base, allowed, config.improve_min_count, config.improve_epsilon
+        learned.q,
+        learned.visits,
+        base,
+        allowed,
+        config.improve_min_count,
+        config.improve_epsilon,
+        config.improve_min_probability,
     )
     bootstrapped = (learned.visits < config.improve_min_count) | ~np.isfinite(learned.q)
     return pl.DataFrame(
@@ -608,11 +638,18 @@ def improve_mode(
     low = 1.5 * float(learn_res.min()) if learn_res.size else -np.inf
     high = 1.5 * float(learn_res.max()) if learn_res.size else np.inf
     policies, savings, tests = [], [], []
+    premise_code = np.unique(m.steps["premise_id"].to_numpy(), return_inverse=True)[1].reshape(-1)
     for scope in config.improve_scopes:
-        labels = keys[scope]
-        known = np.array([v is not None for v in labels])
-        for key in sorted({v for v in labels[known]}):
-            rows = np.flatnonzero(known & (labels == key))
+        # Each key's rows at once: sort the steps by key (no pass over all steps per key).
+        labels = pl.Series(keys[scope], dtype=pl.Utf8)
+        known = labels.is_not_null().to_numpy()
+        values, inverse = np.unique(labels.fill_null("").to_numpy().astype(str), return_inverse=True)
+        inverse = np.where(known, inverse.reshape(-1), -1)
+        order = np.argsort(inverse, kind="stable")
+        bounds = np.searchsorted(inverse[order], np.arange(values.size + 1))
+        for index in np.flatnonzero(np.diff(bounds) > 0):
+            key = str(values[index])
+            rows = np.sort(order[bounds[index] : bounds[index + 1]])
             eps = np.unique(m.code[rows])
             held_eps, learn_eps = eps[m.held[eps]], eps[~m.held[eps]]
             name = _policy_name(scope, key)
@@ -624,7 +661,7 @@ def improve_mode(
                 "learner": None,
                 "bound_method": config.safety_bound,
                 "confidence": config.confidence,
-                "n_premises": int(np.unique(m.steps["premise_id"].to_numpy()[rows]).size),
+                "n_premises": int(np.unique(premise_code[rows]).size),
                 "n_learning_episodes": int(learn_eps.size),
                 "n_held_out_episodes": int(held_eps.size),
                 "n_bound_episodes": None,
@@ -637,6 +674,7 @@ def improve_mode(
                 "outside_range_episodes": None,
                 "min_count": config.improve_min_count,
                 "epsilon": config.improve_epsilon,
+                "min_probability": config.improve_min_probability,
             }
             if min(held_eps.size, learn_eps.size) < config.improve_min_episodes:
                 tests.append(
@@ -725,9 +763,20 @@ def improve_mode(
             )
     return Improvement(
         policy=pl.concat(policies) if policies else _empty_policy(),
-        savings=pl.concat(savings, how="vertical_relaxed") if savings else pl.DataFrame(),
-        safety_test=pl.DataFrame(tests, infer_schema_length=None).select(SAFETY_COLUMNS),
+        savings=pl.concat(savings, how="vertical_relaxed") if savings else _empty_savings(),
+        safety_test=pl.DataFrame(tests, infer_schema_length=None)
+        .select(SAFETY_COLUMNS)
+        .with_columns(
+            # Columns no scope filled (nothing had enough evidence) keep their types.
+            pl.col(SAFETY_FLOATS).cast(pl.Float64),
+            pl.col(SAFETY_TEXT).cast(pl.Utf8),
+        ),
     )
+
+
+def _empty_savings() -> pl.DataFrame:
+    """No learned policy's savings rows (nothing had enough evidence): the key columns, no rows."""
+    return pl.DataFrame(schema=dict.fromkeys(("policy_name", "mode", "scope", "key", "estimator"), pl.Utf8))
 
 
 def _empty_policy() -> pl.DataFrame:
@@ -783,14 +832,19 @@ def improve(
         pl.concat(savings, how="vertical_relaxed")
         .select(*evaluation.COLUMNS)
         .with_columns(
-            pl.lit(config.comfort_penalty_usd_per_degree_hour).alias("comfort_penalty_usd_per_degree_hour")
+            pl.lit(config.comfort_penalty_usd_per_degree_hour).alias("comfort_penalty_usd_per_degree_hour"),
+            pl.col("mode")
+            .replace_strict(evaluation.BILL_NOTES, default=None, return_dtype=pl.String)
+            .alias("bill_note"),
         )
         .sort("policy_name", "mode", "scope", "key", "estimator")
         if savings
-        else pl.DataFrame()
+        else _empty_savings()
     )
     return Improvement(
-        policy=pl.concat([p.policy for p in parts]).select(POLICY_COLUMNS),
+        policy=pl.concat([p.policy for p in parts])
+        .select(POLICY_COLUMNS)
+        .with_columns(pl.col("visits").cast(pl.Int64)),
         savings=savings_frame,
         safety_test=pl.concat([p.safety_test for p in parts], how="vertical_relaxed").sort(
             "mode", "scope", "key"

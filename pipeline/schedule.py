@@ -326,7 +326,11 @@ def for_run(
     policy: pl.DataFrame,
     recommendation: pl.DataFrame | None = None,
 ) -> pl.DataFrame:
-    """The run's schedule table from the warehouse (episodes, hourly tiers, premises) and its policies."""
+    """The run's schedule table from the warehouse (episodes, hourly tiers, premises) and its policies.
+
+    ``policy`` holds the tables of every policy that may be planned (candidates and learned
+    ones, long form). With ``schedule_for = 'every_candidate'`` the recommendation is not read.
+    """
     premise = store.frame(
         con,
         "select premise_id, cohort, rate_plan_id, comfort_cool_c, comfort_heat_c from premise order by all",
@@ -336,6 +340,8 @@ def for_run(
     modes = absences.select("premise_id", "mode").unique()
     premises = premise.join(modes, on="premise_id")
     tiers = store.query(con, "schedule_price_tier")
+    if config.schedule_for == "every_candidate":
+        recommendation = None
     assignments = assignments_for(recommendation, candidates, premise)
     tables = policy_tables(policy, config.state.n_states, config.actions)
     # A policy evaluated in one mode only is planned for that mode only.
@@ -343,6 +349,13 @@ def for_run(
         {"policy_name": [k[0] for k in tables], "mode": [k[1] for k in tables]},
         schema={"policy_name": pl.Utf8, "mode": pl.Utf8},
     )
+    unknown = assignments.join(known, on="policy_name", how="anti")
+    if unknown.height:
+        row = unknown.row(0, named=True)
+        raise ScheduleError(
+            f"premise {row['premise_id']}: policy {row['policy_name']!r} is to be sent but the evaluation"
+            " has no table for it (its policy frame lists the policies it can plan)"
+        )
     plans = premises.join(assignments, on="premise_id").join(known, on=["policy_name", "mode"])
     return setpoint_plans(plans, absences, tiers, tables, config)
 
@@ -351,24 +364,48 @@ def _file_name(program: str | None) -> str:
     return re.sub(r"[^A-Za-z0-9._-]", "_", program or "no-rate-plan") + ".csv"
 
 
-def write_program_files(schedule: pl.DataFrame, folder: Path) -> list[Path]:
+def learned_policy(con: duckdb.DuckDBPyConnection) -> pl.DataFrame | None:
+    """The learned policies' tables (the improve stage's ``improvement_policy``), None when absent."""
+    present = store.execute(
+        con, "select count(*) from duckdb_tables() where table_name = 'improvement_policy'"
+    )
+    if not present[0][0]:
+        return None
+    return store.frame(
+        con, "select policy_name, mode, state_key, action, probability from improvement_policy"
+    )
+
+
+def programs(con: duckdb.DuckDBPyConnection) -> list[str]:
+    """The rate plans of the enrolled premises: one schedule file each, even with nothing to send."""
+    return [row[0] for row in store.execute(con, "select distinct rate_plan_id from premise order by 1")]
+
+
+def write_program_files(schedule: pl.DataFrame, folder: Path, programs: Sequence[str] = ()) -> list[Path]:
     """One CSV per program (the premises of one rate plan) for operations teams; return the paths.
 
-    The files are written into a sibling folder that is renamed to ``folder`` when all are
-    whole, so a reader never sees part of a run's files.
+    Every program in ``programs`` gets a file, with the header only when none of its premises
+    has a plan (nothing to send). The files are written into a sibling folder that is renamed
+    to ``folder`` when all are whole, so a reader never sees part of a run's files.
     """
     scratch = folder.with_name(folder.name + ".tmp")
     if scratch.exists():
         shutil.rmtree(scratch)
     scratch.mkdir(parents=True)
     names = []
-    for (program,), part in schedule.sort("rate_plan_id", "premise_id").group_by(
+    order = ["rate_plan_id", "premise_id", "policy_name", "mode", "day_type", "outdoor_band", "hour"]
+    for (program,), part in schedule.sort(order, nulls_last=False).group_by(
         ["rate_plan_id"], maintain_order=True
     ):
         name = _file_name(program)
         part.drop("rate_plan_id").write_csv(scratch / name)
         store.fault_point("schedule-file-write")
         names.append(name)
+    for program in programs:
+        name = _file_name(program)
+        if name not in names:
+            schedule.drop("rate_plan_id").clear().write_csv(scratch / name)
+            names.append(name)
     if folder.exists():
         shutil.rmtree(folder)
     scratch.rename(folder)

@@ -371,11 +371,13 @@ def _evaluation_tables(config: Config, candidates: tuple[rules.Candidate, ...]) 
         # The run report's "estimates as episodes accumulate" (program-wide policies).
         "estimate_path": convergence.estimate_path(steps, behavior, result.policy, config),
     }
-    # Schedules: for the recommended premises once a recommendation frame is published beside
-    # these, until then for every premise with every candidate that applies to it.
+    # Schedules: each home's recommended policy, a candidate or a learned one (or, for review,
+    # every candidate that applies to it: schedule_for).
     with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
+        learned = schedule.learned_policy(con) if "improve" in _upstream("evaluate") else None
+        plannable = result.policy if learned is None else pl.concat([result.policy, learned], how="diagonal")
         frames["schedule"] = schedule.for_run(
-            con, config, candidates, result.policy, frames.get("recommendation")
+            con, config, candidates, plannable, frames.get("recommendation")
         )
     return frames
 
@@ -469,6 +471,7 @@ def improve(config: Config, run: Run) -> ImprovementSummary:
     """
     started = time.perf_counter()
     _checked(config, "improve")
+    reporting.begin("improve", None, "improve: learning policies, safety test")
     build_id = _build_id(config, "improve")
     if build_id is not None:
         with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
@@ -496,6 +499,7 @@ def improve(config: Config, run: Run) -> ImprovementSummary:
     if frames["savings"].height:
         tables |= run.write("savings", frames["savings"], part="learned")
     tables |= run.write("safety_test", frames["safety_test"])
+    reporting.done("improve")
     work = StageWork("improve", build_id is not None, time.perf_counter() - started)
     return ImprovementSummary(frames["safety_test"], frames["savings"], tables, work)
 
@@ -514,12 +518,14 @@ def finish(config: Config, run: Run, results: Mapping[str, Any]) -> str:
     row_counts |= run.write("abandoned_run", ledger.sweep_abandoned(config.ledger_path, run.run_id))
     with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
         record = str(run.finish(row_counts, con))
+        enrolled = schedule.programs(con)
     if "evaluate" in results:
         # Operations teams' files appear only once the run record has published the run.
         written = (
             config.ledger_path / "schedule" / f"run_date={run.run_date:%Y-%m-%d}" / f"{run.run_id}.parquet"
         )
-        schedule.write_program_files(pl.read_parquet(written).drop("run_id"), schedule_folder(config, run))
+        plans = pl.read_parquet(written).drop("run_id")
+        schedule.write_program_files(plans, schedule_folder(config, run), enrolled)
     return record
 
 

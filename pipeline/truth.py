@@ -127,7 +127,14 @@ def _learned_tables(
         rows = policy.filter(pl.col("policy_name") == test["policy_name"])
         own = premises.filter(pl.col("premise_id").is_in(test["premises"])).sort("premise_id")
         table = improvement.premise_tables(
-            rows, own, test["mode"], behavior, config, int(test["min_count"]), float(test["epsilon"])
+            rows,
+            own,
+            test["mode"],
+            behavior,
+            config,
+            int(test["min_count"]),
+            float(test["epsilon"]),
+            float(test.get("min_probability") or 0.0),
         )
         at = own.select("premise_id").join(
             homes.with_row_index("_i"), on="premise_id", how="left", maintain_order="left"

@@ -180,6 +180,8 @@ def test_unusable_settings_are_one_line_and_exit_2(tmp_path, monkeypatch, capsys
         (["episodes"], "no warehouse at "),
         (["learn"], "no warehouse at "),
         (["evaluate"], "no warehouse at "),
+        (["improve"], "no warehouse at "),
+        (["truth"], "no warehouse at "),
     ],
 )
 def test_a_stage_that_cannot_run_says_what_to_run(tmp_path, monkeypatch, capsys, argv, message):

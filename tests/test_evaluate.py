@@ -246,7 +246,8 @@ def test_bootstrap_that_refits_the_behaviour_model_gives_an_interval_around_the_
 
 # ---------------------------------------------------------------- grain of the ledger tables
 
-SCOPES = {"premise", "cohort", "portfolio"}
+# habit_type: a learned policy's own row at the scope it was learned for (the improve stage).
+SCOPES = {"premise", "cohort", "portfolio", "habit_type"}
 MODES = {"cool", "heat"}
 # Key columns and allowed codes of each ledger table evaluate writes (DESIGN.md, "Ledger contracts").
 GRAIN = {
@@ -330,14 +331,19 @@ def test_every_ledger_table_of_an_inline_evaluation_has_its_grain():
     np.testing.assert_allclose(totals["probability"].to_numpy(), 1.0)
 
 
+def ledger_frame(ledger, table: str) -> pl.DataFrame:
+    """Every file of a ledger table, columns united by name (a run's learned rows are a second file)."""
+    files = sorted((ledger / table).glob("*/*.parquet"))
+    return pl.concat([pl.read_parquet(f, hive_partitioning=False) for f in files], how="diagonal_relaxed")
+
+
 def test_sample_lake_ledger_tables_have_their_grain_and_consistent_annual_figures(sample_lake_run):
     """On the sample lake's ledger, every evaluated table keeps its grain and every annual figure is its
     per-episode figure times the row's episodes per year (same sign in every row)."""
     config = sample_lake_run.config
     for table in GRAIN:
-        frame = pl.read_parquet(config.ledger_path / table / "*" / "*.parquet", hive_partitioning=False)
-        _assert_grain(table, frame)
-    savings = pl.read_parquet(config.ledger_path / "savings" / "*" / "*.parquet", hive_partitioning=False)
+        _assert_grain(table, ledger_frame(config.ledger_path, table))
+    savings = ledger_frame(config.ledger_path, "savings")
     _assert_savings_rules(savings, config)
     assert savings.filter((pl.col("scope") == "premise") & (pl.col("status") == "ok")).height >= 30
 

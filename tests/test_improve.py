@@ -194,14 +194,22 @@ def _tables(scored, name: str):
     members = truth._members(test, scored.premises, scored.behavior)["premises"][0].to_list()
     own = scored.premises.filter(pl.col("premise_id").is_in(members)).sort("premise_id")
     tables = improve.premise_tables(
-        rows, own, "cool", scored.behavior, config, config.improve_min_count, config.improve_epsilon
+        rows,
+        own,
+        "cool",
+        scored.behavior,
+        config,
+        config.improve_min_count,
+        config.improve_epsilon,
+        config.improve_min_probability,
     )
     return own, rows, tables
 
 
 def test_under_sampled_pairs_keep_each_homes_own_behaviour_probabilities(scored):
-    """Pi_b-SPIBB (Laroche et al. 2019): pairs the scope logged fewer than improve_min_count times keep the
-    home's behaviour probability (kept to the allowed actions), exactly."""
+    """Pi_b-SPIBB (Laroche et al. 2019): pairs the scope logged fewer than improve_min_count times, and
+    actions the home takes with probability below improve_min_probability, keep the home's behaviour
+    probability (kept to the allowed actions), exactly."""
     config = scored.config
     names = scored.ledger["safety_test"].filter(pl.col("learner").is_not_null())["policy_name"].to_list()
     assert names
@@ -226,7 +234,8 @@ def test_under_sampled_pairs_keep_each_homes_own_behaviour_probabilities(scored)
             heat_band_c=config.heat_band_c,
         )
         base = control.restrict(bvec.reshape(tables.shape), mask)
-        thin = ((visits < config.improve_min_count) | ~np.isfinite(q))[None] & mask
+        rare = (visits < config.improve_min_count) | ~np.isfinite(q)
+        thin = (rare[None] | (base < config.improve_min_probability)) & mask
         np.testing.assert_allclose(tables[thin], base[thin], rtol=0, atol=1e-12)
         checked += int(thin.sum())
     assert checked > 1000
@@ -319,6 +328,7 @@ def test_stage_policies_keep_the_rules_under_random_bands_and_comfort(
             config,
             min_count,
             epsilon,
+            config.improve_min_probability,
         )
         picks = list(
             zip(rng.integers(0, own.height, 200), rng.integers(0, config.state.n_states, 200), strict=True)
@@ -333,3 +343,10 @@ def test_truth_rows_pair_every_learned_row_with_held_out_episodes_only(scored):
     assert scored.rows.filter(pl.col("true_savings_usd_per_episode").is_null()).is_empty()
     line = truth.summary_line(scored.rows)
     assert "learned portfolio policy true savings" in line and "best candidate" in line
+
+
+def test_truth_refuses_a_lake_the_simulator_did_not_make_and_a_wrong_seed(tmp_path, sample_lake_run):
+    with pytest.raises(truth.TruthError, match="thermal-ledger simulate"):
+        truth.lake_params(tmp_path, 1)
+    with pytest.raises(truth.TruthError, match="--sim-seed"):
+        truth.lake_params(sample_lake_run.config.lake, 7)

@@ -943,6 +943,52 @@ def test_hourly_reads_in_a_half_hour_offset_zone_load_and_keep_their_kwh(tmp_pat
 # --- the landing folder itself ------------------------------------------------------------
 
 
+def test_an_ingest_under_a_memory_limit_below_its_data_spills_and_loads_the_same_rows(tmp_path):
+    """With DuckDB held to 48 MiB (one thread), below what a file of 556,800 reads needs at once
+    (staged as text it alone takes 35 MiB, measured with duckdb_memory(), and its checked rows are
+    built while it is held), the statements spill to disk instead of failing, and the tables and
+    accounting are those of the same lake ingested with DuckDB's own limit (80 % of RAM)."""
+    premises = [f"P{k:03d}" for k in range(200)]
+    starts = pl.datetime_range(
+        dt.datetime(2026, 6, 1, tzinfo=dt.UTC),
+        dt.datetime(2026, 6, 29, 23, 45, tzinfo=dt.UTC),
+        "15m",
+        eager=True,
+    ).dt.strftime("%Y-%m-%dT%H:%M:%SZ")
+    reads = pl.DataFrame({"premise_id": premises}).join(pl.DataFrame({"interval_start": starts}), how="cross")
+    reads = reads.with_columns(
+        interval_minutes=pl.lit(15),
+        kwh=(pl.int_range(pl.len()) % 97 / 100).round(2),
+        quality=pl.lit("actual"),
+    )
+    landing = {
+        "tariffs/t.csv": TARIFF,
+        "premises/p.csv": PREMISES.rstrip()
+        + "\n"
+        + "".join(f"{p},America/Chicago,S1,TOU,24,20,north\n" for p in premises),
+    }
+    tables = {}
+    for limit in ("48MiB", ""):
+        root = write_landing(tmp_path / (limit or "default"), landing)
+        # One bad row, so quarantine is written under the limit too.
+        meter = root / "landing" / "meter"
+        meter.mkdir()
+        reads.write_csv(meter / "m.csv")
+        with (meter / "m.csv").open("a") as fh:
+            fh.write("P001,2026-06-01T00:07:00Z,15,0.5,actual\n")
+        config = lake_config(root, duckdb_memory_limit=limit, duckdb_threads=1)
+        ingest.ingest(config)
+        with duckdb.connect(str(config.warehouse_path), read_only=True) as con:
+            _check_accounting(con)
+            tables[limit] = {
+                name: con.execute(f"select * exclude (source_file) from {name} order by all").fetchall()
+                for name in ("meter_read", "premise")
+            } | {"quarantine": con.execute("select row_number, reason from quarantine").fetchall()}
+    assert len(tables["48MiB"]["meter_read"]) == reads.height
+    assert tables["48MiB"]["quarantine"] == [(reads.height + 1, "interval_not_aligned")]
+    assert tables["48MiB"] == tables[""]
+
+
 def test_an_unknown_folder_is_refused_with_the_nearest_known_name_and_exits_1(tmp_path, capsys):
     """landing/meters next to landing/meter is reported as refused, suggesting meter/, and ingest exits 1."""
     root = write_landing(

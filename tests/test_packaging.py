@@ -56,8 +56,13 @@ def test_wheel_holds_every_package_and_sql_file(wheel):
 
 
 def _savings(out: Path) -> pl.DataFrame:
-    (path,) = (out / "ledger" / "savings").rglob("*.parquet")
-    return pl.read_parquet(path).drop("run_id").sort("scope", "key", "mode", "policy_name", "estimator")
+    paths = sorted((out / "ledger" / "savings").rglob("*.parquet"))
+    frames = [pl.read_parquet(p, hive_partitioning=False) for p in paths]
+    return (
+        pl.concat(frames, how="diagonal_relaxed")
+        .drop("run_id")
+        .sort("scope", "key", "mode", "policy_name", "estimator")
+    )
 
 
 def test_installed_copy_runs_from_another_folder_and_matches_the_checkout(wheel, tmp_path):

@@ -9,6 +9,7 @@ import pytest
 
 from pipeline import recommend as rec
 from pipeline.config import Config
+from tests.test_evaluate import ledger_frame
 
 
 def _row(premise, policy, **changes):
@@ -170,10 +171,7 @@ def test_totals_add_the_homes_that_get_each_policy_with_intervals_in_quadrature(
 @pytest.fixture(scope="module")
 def ledger(sample_lake_run):
     path = sample_lake_run.config.ledger_path
-    return {
-        name: pl.read_parquet(path / name / "*" / "*.parquet", hive_partitioning=False)
-        for name in ("recommendation", "recommendation_total", "savings")
-    }
+    return {name: ledger_frame(path, name) for name in ("recommendation", "recommendation_total", "savings")}
 
 
 def test_sample_lake_recommendation_grain(ledger):

@@ -67,16 +67,24 @@ def test_report_prints_the_caution_and_the_comfort_penalty_price(report, sample_
     assert f"<b>{price:,.2f} USD per °C-hour</b>" in html
 
 
-def test_sections_say_plainly_when_a_table_is_not_in_the_ledger(report):
-    """Tables this run did not write (recommendation, safety test, schedule, truth) are named as absent."""
-    html = report.html.read_text()
+def test_sections_say_plainly_when_a_table_is_not_in_the_ledger(tmp_path, sample_lake_run, report):
+    """A ledger without the later stages' tables (an older run's) gets a plain sentence for each."""
+    ledger = tmp_path / "ledger"
+    later = {"recommendation", "recommendation_total", "safety_test", "schedule", "estimate_path"}
+    _copy_ledger(sample_lake_run.config.ledger_path, ledger, report.run_id, {}, skip=later)
+    html = write_report(ledger, tmp_path, few=1).html.read_text()
     for text in (
         "No recommendation table in this run&#x27;s ledger",
         "No safety_test table in this run&#x27;s ledger",
         "No schedule table in this run&#x27;s ledger",
+        "No estimate_path table in this run&#x27;s ledger",
         "No truth table beside this run&#x27;s ledger",
     ):
         assert text in html
+    # The full run has them: none of those sentences but the truth one (`thermal-ledger truth` not run).
+    full = report.html.read_text()
+    assert "No truth table beside" in full
+    assert not any(t in full for t in ("No recommendation table", "No safety_test table", "No estimate_path"))
 
 
 def test_home_pages_are_the_best_and_worst_few_and_the_premise_asked_for(report, sample_lake_run):
@@ -135,9 +143,13 @@ def test_episode_cost_figure_plots_the_homes_episode_rows(report, sample_lake_ru
 # ---- hostile data and filled-in sections ---------------------------------------------------------
 
 
-def _copy_ledger(source: Path, target: Path, run_id: str, rename: dict[str, str]) -> None:
-    """Copy one run's ledger files, renaming premise ids in every premise column and savings key."""
-    for path in source.glob(f"*/run_date=*/{run_id}.parquet"):
+def _copy_ledger(
+    source: Path, target: Path, run_id: str, rename: dict[str, str], skip: set[str] = frozenset()
+) -> None:
+    """Copy one run's ledger files but ``skip``'s tables, renaming premise ids in premise columns and keys."""
+    for path in source.glob(f"*/run_date=*/{run_id}*.parquet"):
+        if path.parent.parent.name in skip:
+            continue
         frame = pl.read_parquet(path)
         for column in ("premise_id", "key"):
             if column in frame.columns:
@@ -161,30 +173,18 @@ def test_strings_from_data_are_escaped(tmp_path, sample_lake_run, report):
     assert made.homes == [HOSTILE]
 
 
-def test_recommendation_section_counts_the_ledgers_rows_when_the_table_exists(
-    tmp_path, sample_lake_run, report
-):
-    """Once a run writes `recommendation`, the page counts homes per decision from its rows."""
-    ledger = tmp_path / "ledger"
-    _copy_ledger(sample_lake_run.config.ledger_path, ledger, report.run_id, {})
-    rec = pl.DataFrame(
-        {
-            "run_id": [report.run_id] * 4,
-            "premise_id": ["P0001", "P0002", "P0003", "P0004"],
-            "policy": ["setback-2", "setback-2", None, None],
-            "decision": ["send", "send", "keep current", "keep current"],
-            "reason": [None, None, "bound not above zero", "thin evidence"],
-        }
-    )
-    run_id = report.run_id
-    folder = ledger / "recommendation" / f"run_date={run_id[:4]}-{run_id[4:6]}-{run_id[6:8]}"
-    folder.mkdir(parents=True)
-    rec.write_parquet(folder / f"{report.run_id}.parquet")
-    made = write_report(ledger, tmp_path, few=0)
-    counts = _chart(made, "recommendations").plotted.sort("label")
-    assert counts.rows() == [("keep current", 2), ("setback-2", 2)]
-    html = made.html.read_text()
-    assert "bound not above zero" in html and "No recommendation table" not in html
+def test_recommendation_chart_counts_the_ledgers_recommendation_rows(report, sample_lake_run):
+    """The homes-per-recommendation bars are the recommendation table's homes per decision and policy."""
+    con = store.connect_ledger(sample_lake_run.config.ledger_path)
+    expected = con.execute(
+        "select case when decision = 'send' then policy else 'keep current' end as label,"
+        " count(distinct premise_id) from recommendation where run_id = $r group by label order by label",
+        {"r": report.run_id},
+    ).fetchall()
+    counts = _chart(report, "recommendations").plotted.sort("label")
+    assert counts.rows() == expected and sum(n for _, n in expected) == 60
+    ax = _chart(report, "recommendations").figure.axes[0]
+    assert sorted(p.get_width() for p in ax.patches) == sorted(n for _, n in expected)
 
 
 def test_unknown_premise_and_missing_ledger_are_one_line_and_exit_2(tmp_path, capsys, sample_lake_run):
@@ -403,7 +403,7 @@ def test_flow_writes_the_report_and_publishes_two_keyed_artifacts(flow_state):
 
     out, state, summary = flow_state
     html = out / "report" / summary.run_id / "report.html"
-    assert html.is_file() and "Program savings per policy" in html.read_text()
+    assert html.is_file() and "Savings per policy, whole program" in html.read_text()
     with get_client(sync_client=True) as client:
         made = client.read_artifacts(
             artifact_filter=ArtifactFilter(

@@ -18,6 +18,7 @@ from pipeline.features import StateSpace
 from pipeline.policies import SetbackRule
 from pipeline.rules import Candidate, RuleFileError, read_rule_file
 from tests.test_evaluate import _logged_steps
+from tests.test_schedule import assert_schedule_grain
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -418,3 +419,58 @@ def test_a_rule_file_is_found_beside_the_settings_file_and_replaces_candidate_ta
         f"{settings}: candidate_file='{tmp_path / 'conf' / 'rules.toml'}': replaces the [[candidate]] tables:"
         " give the rules in one place (move them into the rule file)"
     )
+
+
+def test_the_demo_rule_file_on_the_sample_lake_scores_each_rule_on_its_premises(sample_lake_run, tmp_path):
+    """On a copy of the sample lake's warehouse: a rate-plan rule has rows and schedules for that plan's
+    premises only, a cohort rule for its cohorts only; the unchanged rule file is reused, an edited one is
+    evaluated again."""
+    import dataclasses
+    import shutil
+
+    from pipeline import stages
+    from pipeline.ledger import Run
+
+    shutil.copytree(sample_lake_run.config.out, tmp_path / "out")
+    rule_file = tmp_path / "candidates.toml"
+    shutil.copy(ROOT / "sample_lake" / "candidates.toml", rule_file)
+    config = dataclasses.replace(
+        sample_lake_run.config, out=tmp_path / "out", candidate_file=rule_file, schedule_for="every_candidate"
+    )
+    run = Run(config)
+    result = stages.evaluate(config, run)
+    stages.finish(config, run, {"evaluate": result})
+    assert not result.work.reused
+    premises = pl.read_csv(ROOT / "sample_lake" / "landing" / "premises" / "premises.csv")
+    tou = set(premises.filter(pl.col("rate_plan_id") == "TOU-SUMMER")["premise_id"])
+    ostrel = set(premises.filter(pl.col("cohort").str.starts_with("ostrel"))["premise_id"])
+    savings = result.savings.filter(pl.col("scope") == "premise")
+    by_rule = {name: set(part["key"]) for (name,), part in savings.group_by(["policy_name"])}
+    assert set(by_rule) == {"setback-1", "setback-2", "setback-2-early", "precool-peak", "setback-3-gradual"}
+    assert by_rule["precool-peak"] and by_rule["precool-peak"] <= tou
+    assert by_rule["setback-3-gradual"] and by_rule["setback-3-gradual"] <= ostrel
+    assert by_rule["setback-1"] - tou and by_rule["setback-1"] - ostrel
+    precool = result.savings.filter((pl.col("policy_name") == "precool-peak") & (pl.col("scope") == "cohort"))
+    assert set(precool["key"]) == {"varrow-tou", "dunmere-tou", "ostrel-tou"}
+    schedule = pl.read_parquet(
+        config.ledger_path / "schedule" / f"run_date={run.run_date:%Y-%m-%d}" / f"{run.run_id}.parquet"
+    )
+    assert set(schedule.filter(pl.col("policy_name") == "precool-peak")["premise_id"]) <= tou
+    assert set(schedule.filter(pl.col("policy_name") == "setback-3-gradual")["premise_id"]) <= ostrel
+    assert schedule["setpoint_c"].is_between(*config.cool_band_c).all()
+    assert_schedule_grain(schedule)
+    # Every premise with usable episodes has a plan for every rule that applies to it.
+    assert set(schedule.filter(pl.col("policy_name") == "setback-1")["premise_id"]) == by_rule["setback-1"]
+    files = {p.stem: pl.read_csv(p) for p in stages.schedule_folder(config, run).glob("*.csv")}
+    assert set(files) == {"TOU-SUMMER", "FLAT-STD"}
+    assert sum(f.height for f in files.values()) == schedule.height
+    order = ["premise_id", "policy_name", "mode", "day_type", "outdoor_band", "hour"]
+    for plan_id, rows in files.items():
+        assert set(rows["premise_id"]) == set(
+            schedule.filter(pl.col("rate_plan_id") == plan_id)["premise_id"]
+        )
+        assert rows.equals(rows.sort(order, nulls_last=False, maintain_order=True))
+    again = stages.evaluate(config, Run(config))
+    assert again.work.reused
+    rule_file.write_text(rule_file.read_text().replace("epsilon = 0.1", "epsilon = 0.2"))
+    assert not stages.evaluate(config, Run(config)).work.reused

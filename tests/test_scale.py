@@ -29,13 +29,19 @@ SKIPPED_TABLES = {"run", "shard_work"}
 RUN_COLUMNS = {"run_id", "run_date", "seconds"}
 
 
+def _read_table(folder: Path) -> pl.DataFrame:
+    """Every file of one ledger table (a stage may add a second file per run, with more columns)."""
+    paths = sorted(folder.glob("run_date=*/*.parquet"))
+    return pl.concat([pl.read_parquet(p, hive_partitioning=False) for p in paths], how="diagonal_relaxed")
+
+
 def ledger(out: Path) -> dict[str, pl.DataFrame]:
     """Every ledger table of the single run in ``out``, without run ids and timings, in a fixed order."""
     tables = {}
     for folder in sorted((out / "ledger").iterdir()):
         if folder.name in SKIPPED_TABLES:
             continue
-        frame = pl.read_parquet(folder / "run_date=*" / "*.parquet", hive_partitioning=False)
+        frame = _read_table(folder)
         frame = frame.drop([c for c in frame.columns if c in RUN_COLUMNS])
         keys = [c for c, t in frame.schema.items() if not t.is_float() and not t.is_nested()]
         tables[folder.name] = frame.sort(keys, nulls_last=True) if keys else frame
@@ -102,9 +108,7 @@ def _work(config, run_id: str) -> pl.DataFrame:
 def assert_same_ledger_rows(config, first: str, again: str) -> None:
     """A reused run republishes the same rows under its own run id, and no more."""
     for table in ("savings", "policy", "behavior_policy", "episode_summary"):
-        rows = pl.read_parquet(
-            config.ledger_path / table / "run_date=*" / "*.parquet", hive_partitioning=False
-        )
+        rows = _read_table(config.ledger_path / table)
         before, after = (rows.filter(pl.col("run_id") == r).drop("run_id") for r in (first, again))
         assert after.height == before.height > 0, table
         assert_frame_equal(after, before), table

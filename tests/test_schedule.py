@@ -148,12 +148,13 @@ def test_a_plan_that_depends_on_the_weather_is_given_per_outdoor_band():
     # Degree bins above the 18.3 °C base (65 °F, common practice): <4, 4-8, 8-12, >=12 °C.
     assert rows[0]["outdoor_from_c"] is None and rows[0]["outdoor_to_c"] == pytest.approx(22.3)
     assert rows[3]["outdoor_from_c"] == pytest.approx(30.3) and rows[3]["outdoor_to_c"] is None
-    assert_grain_of(plan)
+    assert_schedule_grain(plan)
 
 
-def assert_grain_of(plan: pl.DataFrame) -> None:
-    keys = ["premise_id", "policy_name", "mode", "day_type", "outdoor_band", "hour"]
-    assert plan.select(keys).with_columns(pl.col("outdoor_band").fill_null(-1)).is_unique().all()
+def assert_schedule_grain(plan: pl.DataFrame) -> None:
+    """Keys unique and not null (tests/grain.py); a plan for any weather has a null band, keyed -1 here."""
+    keyed = plan.with_columns(pl.col("outdoor_band").fill_null(-1))
+    assert_grain(keyed, None, ["premise_id", "policy_name", "mode", "day_type", "outdoor_band", "hour"])
 
 
 def test_a_premise_whose_comfort_lies_outside_its_band_is_refused():
@@ -283,42 +284,49 @@ def test_no_setpoint_leaves_the_band_and_none_leaves_comfort_while_home(case):
         (pl.col("setpoint_c") < pl.col("comfort_heat_c")) | (pl.col("setpoint_c") > pl.col("comfort_cool_c"))
     )
     assert uncomfortable.height == 0, uncomfortable
-    assert_grain_of(plan)
+    assert_schedule_grain(plan)
 
 
 # ---- the pipeline --------------------------------------------------------------------------------
 
 
-def test_sample_lake_schedule_ledger_and_program_files(sample_lake_run):
-    """The ledger's schedule keeps its grain and the band; one CSV per rate plan holds its premises' rows."""
+def test_sample_lake_schedule_is_the_recommendation_and_every_program_has_its_file(sample_lake_run):
+    """The ledger's schedule holds exactly the premises and policies the recommendation sends (24 hours
+    x 2 day types each, in the band); every enrolled rate plan has its CSV, header only when nothing is
+    sent there. (The grain of a full schedule: tests/test_rules.py, on every candidate.)"""
     config = sample_lake_run.config
     schedule = pl.read_parquet(config.ledger_path / "schedule" / "*" / "*.parquet", hive_partitioning=False)
-    assert_grain(
-        _grain_con(schedule),
-        "schedule",
-        ["premise_id", "policy_name", "mode", "day_type", "band_key", "hour"],
+    recommendation = pl.read_parquet(
+        config.ledger_path / "recommendation" / "*" / "*.parquet", hive_partitioning=False
     )
-    assert set(schedule["policy_name"]) == {"setback-1", "setback-2", "setback-2-early"}
+    sent = recommendation.filter(pl.col("decision") == "send")
+    assert set(schedule.select("premise_id", "policy_name", "mode").unique().iter_rows()) == set(
+        sent.select("premise_id", "policy", "mode").iter_rows()
+    )
+    assert schedule.height >= 48 * sent.height
     assert schedule["setpoint_c"].is_between(*config.cool_band_c).all()
-    # Every premise with usable episodes gets a plan for every candidate (no recommendation yet).
-    assert schedule["premise_id"].n_unique() >= 40
     (run_folder,) = (config.out / "schedules").glob("run_date=*/*")
     files = {path.stem: pl.read_csv(path) for path in run_folder.glob("*.csv")}
-    assert set(files) == set(schedule["rate_plan_id"])
+    assert set(files) == {"TOU-SUMMER", "FLAT-STD"}
     assert sum(f.height for f in files.values()) == schedule.height
-    for plan_id, rows in files.items():
-        assert set(rows["premise_id"]) == set(
-            schedule.filter(pl.col("rate_plan_id") == plan_id)["premise_id"]
+    assert all(f.columns == [c for c in COLUMNS if c != "rate_plan_id"] for f in files.values())
+
+
+def test_a_learned_policy_that_is_sent_gets_its_plan(sample_lake_run):
+    """A recommendation sending a learned policy plans it from the improve stage's table."""
+    from pipeline import rules, store
+    from pipeline.schedule import for_run, learned_policy
+
+    config = sample_lake_run.config
+    with store.warehouse(config.warehouse_path, read_only=True, settings=config.duckdb) as con:
+        learned = learned_policy(con)
+        policy = pl.concat([store.frame(con, "select * from evaluation_policy"), learned], how="diagonal")
+        name = learned["policy_name"][0]
+        sent = pl.DataFrame(
+            {"premise_id": ["P0001"], "policy": [name], "decision": ["send"], "mode": ["cool"]}
         )
-
-
-def _grain_con(schedule: pl.DataFrame):
-    import duckdb
-
-    con = duckdb.connect()
-    con.register(
-        "schedule_frame",
-        schedule.with_columns(pl.col("outdoor_band").fill_null(-1).alias("band_key")).to_arrow(),
-    )
-    con.execute("create table schedule as select * from schedule_frame")
-    return con
+        plan = for_run(con, config, rules.candidates_for(config), policy, sent)
+    assert set(plan["policy_name"]) == {name}
+    # One plan per outdoor band where the learned table reads the weather, else one for any.
+    assert plan.height == 48 * plan.select(pl.col("outdoor_band").n_unique()).item()
+    assert plan["setpoint_c"].is_between(*config.cool_band_c).all()

@@ -32,35 +32,30 @@ def _readme_queries() -> list[str]:
 
 @pytest.fixture(scope="module")
 def ledger(sample_lake_run, tmp_path_factory):
-    """The demo ledger, with a schedule table for its latest run when no stage of this checkout wrote one.
+    """A copy of the demo output with one more evaluate run and the truth table beside it.
 
-    The schedule rows follow the ledger contract (run_id, premise_id, policy_name, day_type, hour,
-    setpoint_c): they exercise the views over the table, not the schedule itself.
+    The sample lake's residents already set back about as well as any policy, so the demo's
+    recommendation sends nothing and its schedule is empty. The extra run allows comfort to rise
+    (``comfort_rise_limit_degree_hours = 10``), so some home is sent a policy and its schedule
+    exists; ``thermal-ledger truth`` then writes ``policy_truth`` for that run, so every view in
+    sql/ has a table under it.
     """
-    source = sample_lake_run.config.ledger_path
-    if (source / "schedule").is_dir():
-        return source
-    copy = tmp_path_factory.mktemp("ledger_with_schedule") / "ledger"
-    shutil.copytree(source, copy)
-    con = store.connect_ledger(copy)
-    run_id, run_date = con.execute(
-        "select run_id, run_date from run semi join latest_run using (run_id)"
-    ).fetchone()
-    hours = list(range(24))
-    frame = pl.DataFrame(
-        {
-            "run_id": run_id,
-            "premise_id": "P0001",
-            "policy_name": "setback-2",
-            "day_type": ["weekday"] * 24,
-            "hour": hours,
-            "setpoint_c": [24.0 + (2.0 if 9 <= h < 16 else 0.0) for h in hours],
-        }
-    )
-    folder = copy / "schedule" / f"run_date={run_date}"
-    folder.mkdir(parents=True)
-    frame.write_parquet(folder / f"{run_id}.parquet")
-    return copy
+    from pipeline import config as config_module
+    from pipeline import stages
+
+    out = tmp_path_factory.mktemp("sql_demo") / "out"
+    shutil.copytree(sample_lake_run.config.out, out)
+    overrides = {
+        "lake": str(sample_lake_run.config.lake),
+        "out": str(out),
+        "presence_sources": ["occupancy_flag"],
+        "comfort_rise_limit_degree_hours": 10.0,
+    }
+    # A whole run (every stage before evaluate reused), so it holds every table a run writes.
+    stages.run_all(config_module.load(overrides=overrides))
+    args = ["--lake", overrides["lake"], "--out", str(out), "--set", 'presence_sources=["occupancy_flag"]']
+    assert main(["truth", *args, "--set", "comfort_rise_limit_degree_hours=10.0"]) == EXIT_OK
+    return out / "ledger"
 
 
 def test_views_are_found_in_every_view_file():

@@ -71,9 +71,12 @@ def test_a_stage_refuses_inputs_made_from_an_earlier_build(built, capsys):
     assert _cli(root, "evaluate", "recovery_hours=2") == EXIT_USAGE
     assert "rerun `thermal-ledger learn`" in capsys.readouterr().err
     assert _cli(root, "learn", "recovery_hours=2") == 0
+    assert _cli(root, "improve", "recovery_hours=2") == 0
     assert _cli(root, "evaluate", "recovery_hours=2") == 0
     assert _cli(root, "episodes") == 0
     assert _cli(root, "learn") == 0
+    assert _cli(root, "improve") == 0
+    assert _cli(root, "evaluate") == 0
 
 
 def test_stages_out_of_order_name_the_command_to_run(tmp_path, capsys):

@@ -128,6 +128,44 @@ def test_portfolio_interval_of_each_heating_candidate_covers_its_true_savings(wi
     assert row["ci_low"] <= truth <= row["ci_high"], (row, truth)
 
 
+def _recommended_with_truth(winter_run) -> pl.DataFrame:
+    """Recommended savings rows joined to each premise's and the portfolio's true savings."""
+    config, summary = winter_run
+    values = pl.read_parquet(WINTER / "truth" / "policy_values.parquet")
+    behavior = values.filter(pl.col("policy_name") == "behavior").select(
+        "premise_id", pl.col("value_usd").alias("behavior_usd")
+    )
+    truth = (
+        values.filter(pl.col("epsilon") == config.target_epsilon)
+        .join(behavior, on="premise_id", how="left", nulls_equal=True)
+        .select(
+            "policy_name",
+            pl.col("premise_id").fill_null("portfolio").alias("key"),
+            (pl.col("value_usd") - pl.col("behavior_usd")).alias("true_savings"),
+        )
+    )
+    return summary.evaluation.savings.filter(pl.col("recommended")).join(truth, on=["policy_name", "key"])
+
+
+def test_per_premise_heating_intervals_cover_the_truth_near_their_nominal_rate(winter_run, record_property):
+    """Across premises with enough evidence, 95 % heating intervals cover the truth at least 85 % of the
+    time (the summer lake's standard, tests/test_truth.py)."""
+    rows = _recommended_with_truth(winter_run).filter(
+        (pl.col("scope") == "premise") & (pl.col("status") == "ok")
+    )
+    covered = (pl.col("ci_low") <= pl.col("true_savings")) & (pl.col("true_savings") <= pl.col("ci_high"))
+    rate = rows.select(covered.mean()).item()
+    record_property("winter_premise_coverage", rate)
+    print(f"per-premise heating coverage {rate:.3f} over {rows.height} supported premise-policy rows")
+    assert rows.height >= 30 and rate >= 0.85
+
+
+def test_heating_lower_bound_is_below_the_truth_at_least_at_its_level(winter_run):
+    """The 95 % lower bound on heating savings lies below the true savings in at least 95 % of rows."""
+    rows = _recommended_with_truth(winter_run)
+    assert rows.select((pl.col("lower_bound_usd") <= pl.col("true_savings")).mean()).item() >= 0.95
+
+
 def test_heating_rows_say_the_furnace_gas_is_not_in_them_and_are_annualised_over_the_heating_season(
     winter_run,
 ):

@@ -17,6 +17,7 @@ from pipeline.config import Config
 from pipeline.report import figures as fig
 from pipeline.report import page
 from pipeline.report.ledger_data import (
+    COMFORT_COLUMNS,
     ReportError,
     RunData,
     comfort_columns,
@@ -157,7 +158,44 @@ def _recommendation_section(data: RunData, out: _Page) -> pl.DataFrame | None:
     return labelled
 
 
+def _interval(low: str, high: str) -> pl.Expr:
+    """Two interval columns as one text cell, 'low to high' (3 decimals), '-' when missing."""
+    return (
+        pl.when(pl.col(low).is_not_null() & pl.col(high).is_not_null())
+        .then(pl.format("{} to {}", pl.col(low).round(3), pl.col(high).round(3)))
+        .otherwise(pl.lit("-"))
+    )
+
+
+def _program_totals(totals: pl.DataFrame) -> str:
+    """The recommendation's program rows: homes per decision and policy, annual figures with intervals."""
+    rows = totals.filter(pl.col("scope") == "program").sort("decision", "policy", "reason", nulls_last=True)
+    wanted = {
+        "decision": "decision",
+        "policy": "policy",
+        "reason": "reason",
+        "mode": "mode",
+        "homes": "homes",
+        "bill_savings_usd_annual": "bill USD/year",
+        "bill_ci_low_annual": "low USD/year",
+        "bill_ci_high_annual": "high USD/year",
+        "savings_kwh_annual": "kWh/year",
+        "savings_kwh_ci_low_annual": "low kWh/year",
+        "savings_kwh_ci_high_annual": "high kWh/year",
+    }
+    columns = [c for c in wanted if c in rows.columns]
+    return (
+        "<p>Program totals over the homes the recommendation sends each policy (annual bill and kWh"
+        " savings with their intervals, summed over those homes; homes kept on their current behaviour"
+        " counted by reason):</p>"
+        + page.table([wanted[c] for c in columns], rows.select(columns).rows(), digits=0)
+    )
+
+
 def _annual_totals(data: RunData, labelled: pl.DataFrame | None) -> str:
+    totals = data.table("recommendation_total")
+    if totals is not None and {"scope", "decision", "homes"} <= set(totals.columns):
+        return _program_totals(totals)
     premise = recommended_rows(data, "premise")
     if premise.is_empty():
         return page.absent("No per-home savings rows in this run's ledger.")
@@ -233,6 +271,17 @@ def program_page(data: RunData, out: _Page) -> None:
         )
     else:
         comfort = comfort_columns(portfolio)
+        shown = portfolio.with_columns(
+            _interval("ci_low", "ci_high").alias("interval"),
+            *(
+                [_interval("comfort_change_ci_low", "comfort_change_ci_high").alias("comfort_interval")]
+                if {"comfort_change_ci_low", "comfort_change_ci_high"} <= set(comfort)
+                else []
+            ),
+        )
+        extra = [c for c in comfort if c in ("bill_savings_usd_per_episode", "comfort_change_degree_hours")]
+        if "comfort_interval" in shown.columns:
+            extra.append("comfort_interval")
         columns = [
             "policy_name",
             "mode",
@@ -240,10 +289,9 @@ def program_page(data: RunData, out: _Page) -> None:
             "status",
             "n_episodes",
             "savings_usd_per_episode",
-            "ci_low",
-            "ci_high",
+            "interval",
             "lower_bound_usd",
-            *comfort,
+            *extra,
             "savings_usd_annual",
             "savings_kwh_annual",
         ]
@@ -254,14 +302,17 @@ def program_page(data: RunData, out: _Page) -> None:
             "status",
             "episodes",
             "savings USD/episode",
-            f"{level:.0%} low USD",
-            f"{level:.0%} high USD",
+            f"{level:.0%} interval USD",
             "lower bound USD",
-            *[c.replace("_", " ") for c in comfort],
+            *[
+                {**COMFORT_COLUMNS, "comfort_interval": f"comfort {level:.0%} interval °C-h"}[c]
+                for c in extra
+            ],
             "USD/home/year",
             "kWh/home/year",
         ]
-        out.add(page.table(labels, portfolio.select(columns).rows(), digits=3))
+        portfolio_rows = shown
+        out.add(page.table(labels, portfolio_rows.select(columns).rows(), digits=3))
         if not comfort:
             out.add(
                 page.absent(
@@ -269,7 +320,7 @@ def program_page(data: RunData, out: _Page) -> None:
                     " not shown; the savings above already subtract the comfort penalty at the price below."
                 )
             )
-        out.chart(fig.savings_by_policy(portfolio, level))
+        out.chart(fig.savings_by_policy(portfolio, level, with_comfort=bool(comfort)))
     out.add("<h3>Savings per home</h3>")
     premise = recommended_rows(data, "premise")
     supported = premise.filter(pl.col("status") == "ok") if not premise.is_empty() else premise
@@ -285,6 +336,23 @@ def program_page(data: RunData, out: _Page) -> None:
 # ---- trust page ----------------------------------------------------------------------------------
 
 
+TRUTH_COLUMNS = {
+    "policy_name": "policy",
+    "scope": "scope",
+    "key": "key",
+    "estimator": "estimator",
+    "n_episodes": "episodes",
+    "savings_usd_per_episode": "estimate USD",
+    "ci_low": "low USD",
+    "ci_high": "high USD",
+    "lower_bound_usd": "bound USD",
+    "true_savings_usd_per_episode": "true USD",
+    "covered": "covered",
+    "bound_held": "bound held",
+}
+"""Columns of a truth table the report lists (the rest stay in the ledger)."""
+
+
 def _truth_table(data: RunData) -> tuple[str, pl.DataFrame] | None:
     names = sorted(p.name for p in data.ledger.iterdir() if p.is_dir() and "truth" in p.name)
     for name in names:
@@ -296,6 +364,49 @@ def _truth_table(data: RunData) -> tuple[str, pl.DataFrame] | None:
 
 def _first(columns: list[str], choices: tuple[str, ...]) -> str | None:
     return next((c for c in choices if c in columns), None)
+
+
+SAFETY_COLUMNS = {
+    "policy_name": "policy",
+    "mode": "mode",
+    "scope": "scope",
+    "key": "key",
+    "outcome": "outcome",
+    "reason": "reason",
+    "n_held_out_episodes": "held-out episodes",
+    "savings_estimate_usd": "held-out savings USD/episode",
+    "lower_bound_usd": "lower bound USD",
+    "comfort_change_usd": "comfort change USD",
+}
+
+
+def _safety(rows: pl.DataFrame) -> str:
+    """Outcomes counted by reason, then the scopes that had evidence enough to be tested."""
+    parts = []
+    if {"outcome", "reason"} <= set(rows.columns):
+        # Reasons carry their figures ("too little evidence: 36 learning and ..."): count by their kind.
+        kind = (
+            pl.when(pl.col("outcome") == "proposed")
+            .then(pl.lit("bound above zero"))
+            .otherwise(pl.col("reason").str.split(":").list.first())
+        )
+        counts = (
+            rows.group_by("outcome", kind.alias("kind"))
+            .agg(pl.len().alias("scopes"))
+            .sort("scopes", "kind", descending=[True, False])
+        )
+        parts.append(page.table(("outcome", "why", "scopes"), counts.rows()))
+    columns = [c for c in SAFETY_COLUMNS if c in rows.columns]
+    if "lower_bound_usd" in rows.columns:
+        tested = rows.filter(pl.col("lower_bound_usd").is_not_null())
+        if "outcome" in tested.columns:
+            tested = tested.sort(pl.col("outcome") != "proposed", "policy_name")
+        parts.append("<p>Scopes with a held-out bound:</p>")
+        parts.append(
+            page.table([SAFETY_COLUMNS[c] for c in columns], tested.select(columns).rows(), digits=3)
+        )
+        return "".join(parts)
+    return "".join(parts) + _generic(rows)
 
 
 def _generic(rows: pl.DataFrame, limit: int = 40) -> str:
@@ -417,7 +528,7 @@ def trust_page(data: RunData, out: _Page) -> None:
             )
         )
     else:
-        out.add(_generic(safety))
+        out.add(_safety(safety))
     out.add("<h3>Estimate against truth</h3>")
     truth = _truth_table(data)
     if truth is None:
@@ -435,7 +546,22 @@ def trust_page(data: RunData, out: _Page) -> None:
         )
         if estimate and true:
             out.chart(fig.estimate_against_truth(rows, estimate, true))
-        out.add(f"<p>From ledger table {page.esc(name)}:</p>" + _generic(rows))
+        checks = [
+            f"{label} in {int(rows[column].sum()):,} of {rows[column].count():,} rows"
+            for column, label in (
+                ("covered", "intervals covered the truth"),
+                ("bound_held", "lower bounds held"),
+            )
+            if column in rows.columns
+        ]
+        shown = rows.filter(pl.col("scope") != "premise") if "scope" in rows.columns else rows
+        out.add(
+            f"<p>From ledger table {page.esc(name)}: {page.esc('; '.join(checks) or 'no coverage columns')}."
+            " Rows other than single homes:</p>"
+            + _generic(
+                shown.select([pl.col(c).alias(t) for c, t in TRUTH_COLUMNS.items() if c in shown.columns])
+            )
+        )
 
 
 # ---- home pages ----------------------------------------------------------------------------------
@@ -469,7 +595,13 @@ def _scoped(table: pl.DataFrame | None, premise: str, cohort: str | None, policy
         if part.height:
             return part, scope
     part = table.filter(pl.col("scope") == "portfolio")
-    return (part, "program") if part.height else (None, None)
+    if part.height:
+        return part, "program"
+    # A learned policy of another scope (a habit type): its one table.
+    if policy is not None and table.height:
+        scope, key = table.row(0, named=True)["scope"], table.row(0, named=True)["key"]
+        return table.filter((pl.col("scope") == scope) & (pl.col("key") == key)), f"{scope} {key}"
+    return None, None
 
 
 def home_page(data: RunData, out: _Page, premise: str, why: str, number: int) -> None:
@@ -553,7 +685,14 @@ def home_page(data: RunData, out: _Page, premise: str, why: str, number: int) ->
     else:
         out.add(page.absent("No policy rows or state lookup for this home in this run's ledger."))
     schedule = data.table("schedule")
-    if schedule is None or "premise_id" not in schedule.columns:
+    if schedule is None and data.wrote("schedule"):
+        out.add(
+            page.absent(
+                "The run's schedule table is empty: no home is sent a policy, so no hourly setpoints are"
+                " computed. The residents' own hourly setpoints are not in the ledger."
+            )
+        )
+    elif schedule is None or "premise_id" not in schedule.columns:
         out.add(
             page.absent(
                 "No schedule table in this run's ledger: the hourly setpoints this home would be sent"
@@ -572,6 +711,12 @@ def home_page(data: RunData, out: _Page, premise: str, why: str, number: int) ->
                 .rename({name: "plan"})
             )
             out.chart(fig.schedule_lines(plans, slug))
+            out.add(
+                page.absent(
+                    "Setpoints are the mean over price tiers and outdoor bands where the plan depends on them"
+                    " (the schedule table has each); residents' own hourly setpoints aren't in the ledger."
+                )
+            )
     episodes = data.table("episode_summary")
     mine = episodes.filter(pl.col("premise_id") == premise) if episodes is not None else None
     if mine is None or mine.is_empty():

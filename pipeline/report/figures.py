@@ -72,6 +72,12 @@ class Chart:
 
 
 @contextmanager
+def _legend(ax, **options) -> None:
+    """A legend when the axes hold labelled series (a figure of empty data has none)."""
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(**options)
+
+
 def style() -> Iterator[None]:
     """The report's own look: plain, light grid, left titles, no math parsing of data text."""
     with matplotlib.rc_context(_STYLE):
@@ -89,51 +95,77 @@ def colours(names: list[str]) -> dict[str, str]:
     return {name: PALETTE[i % len(PALETTE)] for i, name in enumerate(names)}
 
 
-def savings_by_policy(rows: pl.DataFrame, level: float) -> Chart:
-    """Program savings per policy: estimate with its interval (bar) and its lower bound (tick)."""
+def savings_by_policy(rows: pl.DataFrame, level: float, with_comfort: bool = False) -> Chart:
+    """Program savings per policy: estimate with its interval (band) and lower bound (tick); beside it,
+    when the rows carry it, the comfort change (°C-hours of setback in force after the return)."""
     rows = rows.sort("policy_name", "mode")
     labels = [f"{p} ({m})" for p, m in zip(rows["policy_name"], rows["mode"], strict=True)]
+    palette = colours(rows["policy_name"].unique(maintain_order=True).to_list())
+    dots = [palette[p] for p in rows["policy_name"]]
     with style():
-        figure, (ax,) = _figure(0.55 * max(len(labels), 2) + 1.3)
+        figure = Figure(figsize=(WIDTH_IN, 0.55 * max(len(labels), 2) + 1.5), layout="constrained")
+        ratios = (2.2, 1.0) if with_comfort else (1.0,)
+        axes = figure.subplots(1, len(ratios), squeeze=False, width_ratios=ratios, sharey=True)[0]
+        ax = axes[0]
         y = np.arange(len(labels))
         est = rows["savings_usd_per_episode"].to_numpy().astype(float)
         low = rows["ci_low"].to_numpy().astype(float)
         high = rows["ci_high"].to_numpy().astype(float)
         bound = rows["lower_bound_usd"].to_numpy().astype(float)
-        palette = colours(rows["policy_name"].unique(maintain_order=True).to_list())
         for i, policy in enumerate(rows["policy_name"]):
             ax.plot([low[i], high[i]], [y[i], y[i]], color=palette[policy], linewidth=5, alpha=0.35)
-        ax.scatter(est, y, color=[palette[p] for p in rows["policy_name"]], zorder=3, label="estimate", s=40)
+        ax.scatter(est, y, color=dots, zorder=3, label="estimate", s=40)
         ax.scatter(bound, y, marker="|", color=INK, s=200, zorder=3, label="lower bound")
         ax.axvline(0.0, color=INK, linewidth=0.8)
         ax.set_yticks(y, labels)
         ax.invert_yaxis()
-        ax.set_xlabel("savings against the residents' current behaviour, USD per away episode")
-        ax.set_title(f"Program savings per policy ({level:.0%} interval as band, lower bound as tick)")
-        ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.18), ncol=2, frameon=False)
-    plotted = rows.select(
-        "policy_name", "mode", "savings_usd_per_episode", "ci_low", "ci_high", "lower_bound_usd"
-    )
-    return Chart("program-savings", "Program savings per policy", figure, plotted)
+        ax.set_xlabel("savings against current behaviour, USD per away episode")
+        ax.set_title(f"Savings ({level:.0%} interval as band, lower bound as tick)")
+        _legend(ax, loc="upper center", bbox_to_anchor=(0.5, -0.22), ncol=2, frameon=False)
+        plotted = rows.select(
+            "policy_name", "mode", "savings_usd_per_episode", "ci_low", "ci_high", "lower_bound_usd"
+        )
+        if with_comfort:
+            side = axes[1]
+            change = rows["comfort_change_degree_hours"].to_numpy().astype(float)
+            c_low = rows["comfort_change_ci_low"].to_numpy().astype(float)
+            c_high = rows["comfort_change_ci_high"].to_numpy().astype(float)
+            for i, policy in enumerate(rows["policy_name"]):
+                side.plot([c_low[i], c_high[i]], [y[i], y[i]], color=palette[policy], linewidth=5, alpha=0.35)
+            side.scatter(change, y, color=dots, zorder=3, s=40)
+            side.axvline(0.0, color=INK, linewidth=0.8)
+            side.set_xlabel("comfort change, °C-hours per episode")
+            side.set_title("Comfort change (+ = less comfort)")
+            plotted = plotted.with_columns(
+                rows.select("comfort_change_degree_hours", "comfort_change_ci_low", "comfort_change_ci_high")
+            )
+    return Chart("program-savings", "Program savings and comfort per policy", figure, plotted)
 
 
 def premise_distribution(rows: pl.DataFrame) -> Chart:
-    """Histogram of per-home savings (supported rows of the recommended estimator), one panel per policy."""
-    rows = rows.filter((pl.col("status") == "ok") & pl.col("savings_usd_per_episode").is_not_null())
-    policies = rows["policy_name"].unique(maintain_order=True).sort().to_list()
+    """Per-home savings (supported rows of the recommended estimator): a row of dots per policy, the
+    median as a tick; readable for any number of policies."""
+    rows = rows.filter((pl.col("status") == "ok") & pl.col("savings_usd_per_episode").is_not_null()).sort(
+        "policy_name", "key"
+    )
+    policies = rows["policy_name"].unique(maintain_order=True).to_list()
     palette = colours(policies)
-    values = rows["savings_usd_per_episode"].to_numpy().astype(float)
-    lo, hi = (float(values.min()), float(values.max())) if values.size else (-1.0, 1.0)
-    edges = np.linspace(lo, hi if hi > lo else lo + 1.0, 16)
+    # Spread the dots of a row over its height by a fixed pattern (no random draw), so they do not overlap.
+    spread = (np.arange(rows.height) % 7 - 3) * 0.07
     with style():
-        figure, axes = _figure(2.6, max(len(policies), 1))
-        for ax, policy in zip(axes, policies or ["(none)"], strict=False):
-            part = rows.filter(pl.col("policy_name") == policy)["savings_usd_per_episode"].to_numpy()
-            ax.hist(part, bins=edges, color=palette.get(policy, PALETTE[0]), edgecolor="white")
-            ax.axvline(0.0, color=INK, linewidth=0.8)
-            ax.set_title(policy)
-            ax.set_xlabel("savings, USD per episode")
-        axes[0].set_ylabel("homes")
+        figure, (ax,) = _figure(0.5 * max(len(policies), 2) + 1.3)
+        place = {p: i for i, p in enumerate(policies)}
+        y = np.array([place[p] for p in rows["policy_name"]], dtype=float) + spread
+        x = rows["savings_usd_per_episode"].to_numpy().astype(float)
+        ax.scatter(x, y, c=[palette[p] for p in rows["policy_name"]], s=16, alpha=0.75)
+        for policy, i in place.items():
+            median = float(np.median(x[rows["policy_name"].to_numpy() == policy]))
+            ax.plot([median, median], [i - 0.35, i + 0.35], color=INK, linewidth=2)
+        ax.axvline(0.0, color=INK, linewidth=0.8)
+        ax.set_yticks(np.arange(len(policies)), policies)
+        ax.invert_yaxis()
+        ax.set_xlabel("savings of one home, USD per away episode (tick: median over homes)")
+        ax.set_title("Per-home savings, homes with a supported estimate")
     plotted = rows.select("key", "policy_name", "savings_usd_per_episode")
     return Chart("home-savings", "Per-home savings, supported homes", figure, plotted)
 
@@ -181,7 +213,7 @@ def estimates_by_episodes(rows: pl.DataFrame) -> Chart:
             ax.set_title(f"{policy} ({mode})")
             ax.set_xlabel("episodes used, oldest first")
         axes[0].set_ylabel("savings, USD per episode")
-        axes[0].legend(frameon=False, fontsize=8)
+        _legend(axes[0], frameon=False, fontsize=8)
     plotted = rows.select(
         "policy_name", "mode", "estimator", "n_episodes", "savings_usd_per_episode", "ci_low", "ci_high"
     )
@@ -216,7 +248,7 @@ def weight_diagnostics(rows: pl.DataFrame) -> Chart:
         ax.set_ylabel("largest weight's share of all weight")
         ax.set_ylim(0, 1.02)
         ax.set_title("Importance-weight diagnostics per home (right and low is healthy)")
-        ax.legend(frameon=False, fontsize=8)
+        _legend(ax, frameon=False, fontsize=8)
     plotted = rows.select("policy_name", "key", "ess", "max_weight_share")
     return Chart("weight-diagnostics", "Importance-weight diagnostics", figure, plotted)
 
@@ -258,7 +290,7 @@ def estimator_agreement(rows: pl.DataFrame) -> Chart:
         ax.invert_yaxis()
         ax.set_xlabel("savings, USD per episode (bars: interval)")
         ax.set_title("Agreement between estimators, program and cohorts (rows with an estimate)")
-        ax.legend(frameon=False, fontsize=8, loc="best")
+        _legend(ax, frameon=False, fontsize=8, loc="best")
     plotted = rows.select(
         "policy_name", "mode", "scope", "key", "estimator", "savings_usd_per_episode", "ci_low", "ci_high"
     )
@@ -342,7 +374,7 @@ def schedule_lines(rows: pl.DataFrame, slug: str) -> Chart:
             ax.set_xlabel("local hour, h")
             ax.set_title(day)
         axes[0].set_ylabel("setpoint, °C")
-        axes[0].legend(frameon=False, fontsize=8)
+        _legend(axes[0], frameon=False, fontsize=8)
     return Chart(f"home-{slug}-schedule", "Hourly setpoint schedule", figure, rows)
 
 
@@ -368,7 +400,7 @@ def episode_costs(rows: pl.DataFrame, slug: str) -> Chart:
         ax.set_xlabel("episode start (UTC date)")
         ax.set_ylabel("cost incl. comfort penalty, USD")
         ax.set_title("The home's away episodes")
-        ax.legend(frameon=False, fontsize=8)
+        _legend(ax, frameon=False, fontsize=8)
         figure.autofmt_xdate()
     plotted = rows.select(
         "episode_id", "start_utc", (-pl.col("return_usd")).alias("cost_usd"), "excluded_reason"

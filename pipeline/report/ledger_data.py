@@ -46,6 +46,10 @@ class RunData:
             self._cache[name] = self._read(name)
         return self._cache[name]
 
+    def wrote(self, name: str) -> bool:
+        """Whether this run wrote ledger table ``name`` at all (perhaps with no rows)."""
+        return any((self.ledger / name).glob(f"run_date=*/{self.run_id}*.parquet"))
+
     def _read(self, name: str) -> pl.DataFrame | None:
         views = {row[0] for row in self.con.execute("select view_name from duckdb_views()").fetchall()}
         if name in views:
@@ -64,7 +68,8 @@ class RunData:
         return rows.drop([c for c in ("run_id", "run_date") if c in rows.columns])
 
     def _read_files(self, name: str) -> pl.DataFrame | None:
-        files = sorted((self.ledger / name).glob(f"run_date=*/{self.run_id}.parquet"))
+        # A stage may add a second file of the run's rows (``<run_id>-learned.parquet``).
+        files = sorted((self.ledger / name).glob(f"run_date=*/{self.run_id}*.parquet"))
         if not files:
             return None
         return store.frame(
@@ -116,13 +121,18 @@ def recommended_rows(data: RunData, scope: str) -> pl.DataFrame:
     )
 
 
+COMFORT_COLUMNS = {
+    "bill_savings_usd_per_episode": "bill savings USD/episode (energy only)",
+    "comfort_change_degree_hours": "comfort change °C-h/episode",
+    "comfort_change_ci_low": "comfort change low °C-h",
+    "comfort_change_ci_high": "comfort change high °C-h",
+}
+"""Savings columns of the energy-only bill and the comfort change, with the labels the report prints."""
+
+
 def comfort_columns(savings: pl.DataFrame) -> list[str]:
-    """Columns of the savings rows that carry a policy's comfort cost (not the penalty's price)."""
-    return [
-        c
-        for c in savings.columns
-        if "comfort" in c and c != "comfort_penalty_usd_per_degree_hour" and savings[c].dtype.is_numeric()
-    ]
+    """Those of ``COMFORT_COLUMNS`` the savings rows carry (runs before comfort was estimated have none)."""
+    return [c for c in COMFORT_COLUMNS if c in savings.columns]
 
 
 def premise_best(data: RunData) -> pl.DataFrame:

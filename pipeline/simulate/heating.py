@@ -27,6 +27,7 @@ from datetime import datetime
 import numpy as np
 
 from pipeline.simulate.params import HeatingParams, SimParams
+from pipeline.simulate.world import Clock, _ar1, stream
 
 STREAM_HEATING = 3
 """Stream key of each premise's heating-system draws (the summer streams are 0 to 2)."""
@@ -67,7 +68,9 @@ def heat_pump_capacity(capacity_kw: np.ndarray, t_out_c: np.ndarray, hp: Heating
     return capacity_kw * np.clip(1.0 + hp.capacity_slope * (np.asarray(t_out_c) - RATING_C), lo, hi)
 
 
-def draw_systems(params: SimParams, index: np.ndarray, r_k_per_kw: np.ndarray, comfort_c: np.ndarray):
+def draw_systems(
+    params: SimParams, index: np.ndarray, r_k_per_kw: np.ndarray, comfort_c: np.ndarray
+) -> HeatingSystems:
     """Each premise's heating system from its own heating stream, sized to its envelope and comfort.
 
     A heat pump's rated capacity is chosen so that its balance point (capacity at
@@ -75,8 +78,6 @@ def draw_systems(params: SimParams, index: np.ndarray, r_k_per_kw: np.ndarray, c
     the back-up covers the conduction load at ``design_c`` on its own. A furnace
     covers that load with a drawn margin.
     """
-    from pipeline.simulate.world import stream
-
     hp = params.heating
     n = len(index)
     cols = {name: np.empty(n) for name in HeatingSystems.__dataclass_fields__}
@@ -186,14 +187,14 @@ def run(
     return {"t_in_c": t_in, "q_heat_kw": q, "electric_kw": e, "fuel_kw": f, "running": on}
 
 
-def build_winter_weather(params: SimParams, clock, rng: np.random.Generator):
+def build_winter_weather(
+    params: SimParams, clock: Clock, rng: np.random.Generator
+) -> tuple[np.ndarray, np.ndarray]:
     """Invent cold winters: a seasonal low, shared cold snaps and thaws, clouds, a damped diurnal cycle.
 
     Returns (temperature °C, irradiance kW/m²), each (n_stations, n_hours + 1); the
     caller rounds and publishes them as in summer.
     """
-    from pipeline.simulate.world import _ar1
-
     hp = params.heating
     n_days = params.days + 2
     day_ord = params.start.toordinal() - 1 + np.arange(n_days)
