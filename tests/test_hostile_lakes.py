@@ -123,3 +123,42 @@ def test_a_lake_with_random_kinds_of_damage_is_ingested_without_losing_a_row(fil
             expected = _records(gzip.decompress(data) if name.endswith(".gz") else data)
             if expected is not None and not data.startswith(b"\xef\xbb\xbf"):
                 assert r.rows_read == expected, (source, r)
+
+
+HOSTILE_ID = "P1'; drop table meter_read; --\"</td><script>alert(1)</script>/../x"
+
+
+def test_a_hostile_premise_id_is_stored_verbatim_and_is_text_in_report_html(tmp_path):
+    """Quotes, semicolons, SQL, markup and path separators in an id stay data in the warehouse and HTML."""
+    from html.parser import HTMLParser
+
+    from pipeline.report import page
+
+    quoted = '"' + HOSTILE_ID.replace('"', '""') + '"'
+    premises = PREMISES.replace("\n    P1,", f"\n    {quoted},")
+    meter = f"premise_id,interval_start,interval_minutes,kwh\n{quoted},2026-06-01T12:00:00Z,60,1.0\n"
+    root = write_landing(
+        tmp_path, {"tariffs/t.csv": TARIFF, "premises/p.csv": premises, "meter/m.csv": meter}
+    )
+    config = lake_config(root)
+    ingest.ingest(config)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        assert con.execute("select premise_id from premise").fetchall() == [(HOSTILE_ID,)]
+        assert con.execute("select premise_id from meter_read").fetchall() == [(HOSTILE_ID,)]
+
+    # The standard library's HTML parser sees one table cell whose text is the id, and no script.
+    class Cells(HTMLParser):
+        def __init__(self):
+            super().__init__()
+            self.tags, self.text = [], []
+
+        def handle_starttag(self, tag, attrs):
+            self.tags.append(tag)
+
+        def handle_data(self, data):
+            self.text.append(data)
+
+    parsed = Cells()
+    parsed.feed(page.table(["premise"], [[HOSTILE_ID]]))
+    assert "script" not in parsed.tags and parsed.tags.count("td") == 1
+    assert "".join(parsed.text) == "premise" + HOSTILE_ID
