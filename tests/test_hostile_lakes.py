@@ -162,3 +162,53 @@ def test_a_hostile_premise_id_is_stored_verbatim_and_is_text_in_report_html(tmp_
     parsed.feed(page.table(["premise"], [[HOSTILE_ID]]))
     assert "script" not in parsed.tags and parsed.tags.count("td") == 1
     assert "".join(parsed.text) == "premise" + HOSTILE_ID
+
+
+def test_parquet_files_of_one_folder_with_different_schemas_each_load_by_their_own(tmp_path):
+    """Column order, kWh or Wh, text or typed columns differ per file: each file is read by its own schema.
+
+    (A Parquet file has one schema in its footer for all its row groups, so the differing
+    schemas a writer can produce are those of separate files or parts of a folder.)
+    """
+    import datetime as dt
+
+    import polars as pl
+
+    root = write_landing(tmp_path, {"tariffs/t.csv": TARIFF, "premises/p.csv": PREMISES})
+    meter = root / "landing/meter"
+    meter.mkdir()
+    starts = [dt.datetime(2026, 6, 1, h, tzinfo=dt.UTC) for h in range(6)]
+    pl.DataFrame(
+        {
+            "premise_id": ["P1"] * 2,
+            "interval_start": starts[:2],
+            "interval_minutes": [60, 60],
+            "kwh": [1.0, 2.0],
+        }
+    ).write_parquet(meter / "a.parquet")
+    pl.DataFrame(
+        {
+            "wh": [500, 700],
+            "interval_minutes": [60, 60],
+            "interval_start": starts[2:4],
+            "premise_id": ["P1"] * 2,
+        }
+    ).write_parquet(meter / "b.parquet")
+    pl.DataFrame(
+        {
+            "premise_id": ["P1"] * 2,
+            "interval_start": [s.isoformat() for s in starts[4:]],
+            "interval_minutes": ["60", "sixty"],
+            "kwh": ["0.5", "0.25"],
+        }
+    ).write_parquet(meter / "c.parquet", row_group_size=1)
+    config = lake_config(root)
+    results = {r.source_file: r for r in ingest.ingest(config)}
+    counts = {name[-9:]: (r.rows_read, r.rows_loaded, r.rows_quarantined) for name, r in results.items()}
+    assert counts["a.parquet"] == (2, 2, 0) and counts["b.parquet"] == (2, 2, 0)
+    assert counts["c.parquet"] == (2, 1, 1)
+    with store.warehouse(config.warehouse_path, read_only=True) as con:
+        _check_accounting(con)
+        kwh = con.execute("select sum(kwh) from meter_read").fetchall()[0][0]
+    # 1 + 2 kWh, 500 + 700 Wh = 1.2 kWh, 0.5 kWh.
+    assert kwh == pytest.approx(4.7)
