@@ -56,8 +56,11 @@ def test_wheel_holds_every_package_and_sql_file(wheel):
 
 
 def _savings(out: Path) -> pl.DataFrame:
-    (path,) = (out / "ledger" / "savings").rglob("*.parquet")
-    return pl.read_parquet(path).drop("run_id").sort("scope", "key", "mode", "policy_name", "estimator")
+    # One run: the candidates' file and the improve stage's learned rows beside it.
+    paths = sorted((out / "ledger" / "savings").rglob("*.parquet"))
+    assert len(paths) == 2, paths
+    frame = pl.concat([pl.read_parquet(p) for p in paths], how="diagonal_relaxed")
+    return frame.drop("run_id").sort("scope", "key", "mode", "policy_name", "estimator")
 
 
 def test_installed_copy_runs_from_another_folder_and_matches_the_checkout(wheel, tmp_path):
