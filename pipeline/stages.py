@@ -490,7 +490,9 @@ def improve(config: Config, run: Run) -> ImprovementSummary:
                 if frames[name].width:
                     store.replace_table(con, f"improvement_{name}", frames[name])
                 else:
-                    store.execute(con, f"drop table if exists {store.quote_identifier(f'improvement_{name}')}")
+                    store.execute(
+                        con, f"drop table if exists {store.quote_identifier(f'improvement_{name}')}"
+                    )
             lineage.record(con, "improve", config.stage_settings("improve"), _upstream("improve"), run.run_id)
     tables: dict[str, int] = {}
     tables |= run.write("policy", frames["policy"], part="learned")
