@@ -71,13 +71,13 @@ class Chart:
         return self._png
 
 
-@contextmanager
 def _legend(ax, **options) -> None:
     """A legend when the axes hold labelled series (a figure of empty data has none)."""
     if ax.get_legend_handles_labels()[0]:
         ax.legend(**options)
 
 
+@contextmanager
 def style() -> Iterator[None]:
     """The report's own look: plain, light grid, left titles, no math parsing of data text."""
     with matplotlib.rc_context(_STYLE):
