@@ -23,7 +23,7 @@ from pathlib import Path
 import duckdb
 import polars as pl
 
-from pipeline import store
+from pipeline import landing_checks, store
 from pipeline.config import Config
 
 
@@ -192,9 +192,16 @@ def ingest(config: Config, progress: Progress | None = None, reread: bool = Fals
     if not landing.is_dir():
         raise LakeNotFound(f"{landing} is not a folder: --lake must hold landing/")
     work = [(folder, path) for folder in FOLDERS for path in landing_files(config.lake, folder.name)]
+    # --- a symlink out of the lake is refused unread (pipeline/landing_checks.py) ---
+    outside = set(landing_checks.outside_lake([path for _, path in work], lake))
+    work = [(folder, path) for folder, path in work if path not in outside]
     by_name = {_relative(path, config): (folder, path) for folder, path in work}
     unknown = _unknown_folders(landing)
     results: dict[str, FileResult] = {r.source_file: r for r in unknown}
+    for path in sorted(outside):
+        name = str(path.relative_to(lake))
+        message = f"{name}: a link to a file outside the lake, not read; copy the file into the lake"
+        results[name] = FileResult(name, path.parent.name, "refused", 0, 0, 0, 0, message)
     with store.warehouse(config.warehouse_path, settings=config.duckdb) as con:
         store.run_sql(con, "schema")
         if not any(folder.name == "meter" for folder, _ in work):
@@ -285,6 +292,7 @@ def ingest_file(
     """
     started = time.perf_counter()
     name = _relative(path, config)
+    state = landing_checks.file_state(path)
     content_hash = _content_hash(path)
     seen = store.query(con, "logged_file", {"f": name}).rows()
     if seen and seen[0][0] == content_hash and not reread:
@@ -305,7 +313,7 @@ def ingest_file(
     except (duckdb.Error, OSError, EOFError, UnicodeError, ValueError, FileRefused) as exc:
         present, rejects = {}, 0
         failure = _unreadable(name, exc)
-    load = _Load(folder, path, name, content_hash, bool(seen), sorted(releasable or ()), started)
+    load = _Load(folder, path, name, content_hash, bool(seen), sorted(releasable or ()), started, state)
     try:
         try:
             return _replace_file(con, load, config, present, rejects, failure)
@@ -333,6 +341,8 @@ class _Load:
     """The file was loaded before (its old rows are replaced)."""
     releasable: list[str]
     started: float
+    state: landing_checks.FileState | None = None
+    """Size and modification time when ingest began reading it (see pipeline/landing_checks.py)."""
 
 
 def _unreadable(name: str, exc: BaseException) -> str:
@@ -404,6 +414,12 @@ def _replace_file(
             },
         )
         _refresh_log(con, folder, name, moved_from)
+        # --- a file still being written is rolled back unlogged (pipeline/landing_checks.py) ---
+        moving = landing_checks.changed_while_read(load.path, load.state, name) if load.state else None
+        if moving is not None:
+            store.execute(con, "rollback")
+            return FileResult(name, folder.name, "refused", 0, 0, 0, 0, moving), []
+        store.fault_point("ingest-file-commit")
         store.execute(con, "commit")
     except Exception:
         store.execute(con, "rollback")

@@ -399,6 +399,7 @@ def write_program_files(schedule: pl.DataFrame, folder: Path, programs: Sequence
     ):
         name = _file_name(program)
         part.drop("rate_plan_id").write_csv(scratch / name)
+        store.fault_point("schedule-file-write")
         names.append(name)
     for program in programs:
         name = _file_name(program)

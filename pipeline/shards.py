@@ -150,9 +150,11 @@ def build_shard(config: Config, shard: Shard, params: Mapping[str, object]) -> S
                         f"copy (select * from {store.quote_identifier(table)} order by {order})"
                         f" to {_literal(str(target))} (format parquet)",
                     )
+                store.fault_point("shard-file-write")
         (staging / "rows.json").write_text(json.dumps(rows))
         if shard.folder.exists():
             shutil.rmtree(shard.folder)
+        store.fault_point("shard-rename")
         staging.rename(shard.folder)
     finally:
         shutil.rmtree(staging, ignore_errors=True)

@@ -7,6 +7,7 @@ loaded by name; values always go in as bound parameters.
 from __future__ import annotations
 
 import datetime as dt
+import io
 import os
 import re
 import signal
@@ -182,7 +183,15 @@ def write_ledger(
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / (f"{run_id}-{part}.parquet" if part else f"{run_id}.parquet")
     tmp = path.with_suffix(".parquet.tmp")
-    frame.write_parquet(tmp)
+    buffer = io.BytesIO()
+    frame.write_parquet(buffer)
+    data = buffer.getvalue()
+    with open(tmp, "wb") as fh:
+        # Written in two halves so a fault test can stop it half-way through the file.
+        fh.write(data[: len(data) // 2])
+        fh.flush()
+        fault_point("ledger-write-partial")
+        fh.write(data[len(data) // 2 :])
     fault_point("ledger-write")
     tmp.replace(path)
     return path
@@ -196,18 +205,39 @@ def fault_point(name: str) -> None:
     """Kill this process with SIGKILL at the n-th pass of point ``name`` if the environment asks.
 
     For fault-injection tests: ``THERMAL_LEDGER_FAULT=ledger-write:3`` kills the process at its
-    third ledger write, after the temporary file is written and before it is renamed.
+    third ledger write, after the temporary file is written and before it is renamed;
+    ``any:N`` kills it at the N-th pass of any point. ``trace:FILE`` kills nothing and
+    appends each point's name to FILE, one a line (to count a run's points).
     Does nothing when the variable is unset.
     """
     spec = os.environ.get(FAULT_VARIABLE)
     if not spec:
         return
     point, _, nth = spec.partition(":")
-    if point != name:
+    if point == "trace":
+        with open(nth, "a") as fh:
+            fh.write(name + "\n")
         return
-    _fault_counts[name] = _fault_counts.get(name, 0) + 1
-    if _fault_counts[name] == int(nth or 1):
+    if point not in (name, "any"):
+        return
+    _fault_counts[point] = _fault_counts.get(point, 0) + 1
+    if _fault_counts[point] == int(nth or 1):
         os.kill(os.getpid(), signal.SIGKILL)
+
+
+FAULT_POINTS = (
+    "ledger-write-partial",
+    "ledger-write",
+    "warehouse-commit",
+    "ingest-file-commit",
+    "shard-file-write",
+    "shard-rename",
+    "schedule-file-write",
+    "report-write",
+)
+"""Every fault point: ledger Parquet half written / written but not renamed, a warehouse transaction
+before its commit (a stage's, one landing file's), a shard's file written / before its folder is
+renamed, an operations schedule file written, the report written but not renamed."""
 
 
 def view_files() -> list[str]:
@@ -266,4 +296,5 @@ def transaction(con: duckdb.DuckDBPyConnection) -> Iterator[duckdb.DuckDBPyConne
     except BaseException:
         execute(con, "rollback")
         raise
+    fault_point("warehouse-commit")
     execute(con, "commit")

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import polars as pl
 
-from pipeline import progress
+from pipeline import progress, store
 from pipeline.config import Config
 from pipeline.report import figures as fig
 from pipeline.report import page
@@ -794,6 +794,7 @@ def write_report(
         target = report_path(out, data.run_id)
         tmp = target.with_suffix(".html.tmp")
         tmp.write_text(html, encoding="utf-8")
+        store.fault_point("report-write")
         tmp.replace(target)
         return Report(data.run_id, target, pngs, built.charts, summary_rows(data), [h for h, _ in homes])
     finally:
