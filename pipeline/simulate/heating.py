@@ -22,12 +22,11 @@ exact exponential solution; the thermostat calls for heat with hysteresis of
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import datetime
 
 import numpy as np
 
 from pipeline.simulate.params import HeatingParams, SimParams
-from pipeline.simulate.world import Clock, _ar1, stream
+from pipeline.simulate.world import Clock, _ar1, add_spells, day_of_year, station_hours, stream
 
 STREAM_HEATING = 3
 """Stream key of each premise's heating-system draws (the summer streams are 0 to 2)."""
@@ -196,19 +195,16 @@ def build_winter_weather(
     caller rounds and publishes them as in summer.
     """
     hp = params.heating
-    n_days = params.days + 2
-    day_ord = params.start.toordinal() - 1 + np.arange(n_days)
-    doy = np.array([datetime.fromordinal(int(o)).timetuple().tm_yday for o in day_ord])
+    n_days, doy = day_of_year(params)
     # Coldest around January 20; the mean rises by up to 2 * seasonal_rise_c over the year.
     seasonal_rise = hp.seasonal_rise_c * (1.0 - np.cos(2 * np.pi * (doy - 20) / 365.0))
     regional = _ar1(rng, n_days, phi=0.8, sd=2.5)
-    spells = ((-1.0, hp.cold_snap_every_days, (3, 8), hp.cold_snap_depth_c), (1.0, 40.0, (2, 6), (3.0, 6.0)))
-    for sign, per_days, dur, amp in spells:
-        for _ in range(rng.poisson(params.days / per_days)):
-            first, length = rng.integers(0, n_days), rng.integers(*dur)
-            bump = np.sin(np.pi * (np.arange(length) + 0.5) / length) * rng.uniform(*amp)
-            stop = min(n_days, first + length)
-            regional[first:stop] += sign * bump[: stop - first]
+    add_spells(
+        rng,
+        regional,
+        params.days,
+        ((-1.0, hp.cold_snap_every_days, (3, 8), hp.cold_snap_depth_c), (1.0, 40.0, (2, 6), (3.0, 6.0))),
+    )
     n_st = len(params.stations)
     temp = np.zeros((n_st, clock.n_hours + 1))
     irr = np.zeros_like(temp)
@@ -218,14 +214,7 @@ def build_winter_weather(
         local = _ar1(rng, n_days, 0.6, 1.0) - 2.0 * (cloud - 0.5)
         mean_d = st.winter_mean_c + seasonal_rise + regional + local
         amp_d = 0.7 * st.diurnal_amplitude_c * (1.0 - 0.5 * cloud) * rng.uniform(0.9, 1.1, n_days)
-        hour = clock.local_hour[k].astype(float)
-        day = clock.local_day[k] + 1
-        x = day + hour / 24.0
-        centers = np.arange(n_days) + 0.5
-        mean_h = np.interp(x, centers, mean_d)
-        amp_h = np.interp(x, centers, amp_d)
-        noise = _ar1(rng, clock.n_hours + 1, 0.9, 0.3)
-        temp[j] = mean_h + amp_h * np.cos(2 * np.pi * (hour - 14.5) / 24.0) + noise
-        clear = np.clip(np.sin(np.pi * (hour - 7.5) / 9.0), 0.0, None) * (hour >= 7.5) * (hour <= 16.5)
-        irr[j] = 0.6 * clear * (1.0 - 0.7 * cloud[np.clip(day, 0, n_days - 1)])
+        temp[j], irr[j] = station_hours(
+            rng, clock, k, mean_d, amp_d, cloud, noise_sd=0.3, warmest_hour=14.5, sun=(7.5, 9.0, 0.6, 0.7)
+        )
     return temp, irr

@@ -99,17 +99,12 @@ def build_weather(params: SimParams, clock: Clock) -> Weather:
         from pipeline.simulate.heating import build_winter_weather
 
         return _published(params, *build_winter_weather(params, clock, rng))
-    n_days = params.days + 2
-    day_ord = params.start.toordinal() - 1 + np.arange(n_days)
-    doy = np.array([datetime.fromordinal(int(o)).timetuple().tm_yday for o in day_ord])
+    n_days, doy = day_of_year(params)
     seasonal_drop = 14.0 * (1.0 - np.cos(2 * np.pi * (doy - 200) / 365.0)) / 2.0
     regional = _ar1(rng, n_days, phi=0.75, sd=1.3)
-    for sign, per_days, dur, amp in ((1.0, 35.0, (3, 8), (3.0, 5.5)), (-1.0, 45.0, (2, 5), (3.0, 6.0))):
-        for _ in range(rng.poisson(params.days / per_days)):
-            first, length = rng.integers(0, n_days), rng.integers(*dur)
-            bump = np.sin(np.pi * (np.arange(length) + 0.5) / length) * rng.uniform(*amp)
-            stop = min(n_days, first + length)
-            regional[first:stop] += sign * bump[: stop - first]
+    add_spells(
+        rng, regional, params.days, ((1.0, 35.0, (3, 8), (3.0, 5.5)), (-1.0, 45.0, (2, 5), (3.0, 6.0)))
+    )
     n_st = len(params.stations)
     temp = np.zeros((n_st, clock.n_hours + 1))
     irr = np.zeros_like(temp)
@@ -118,17 +113,69 @@ def build_weather(params: SimParams, clock: Clock) -> Weather:
         cloud = rng.beta(2.0, 5.0, n_days)
         mean_d = st.peak_mean_c - seasonal_drop + regional + _ar1(rng, n_days, 0.6, 0.8) - 2.0 * (cloud - 0.3)
         amp_d = st.diurnal_amplitude_c * (1.0 - 0.45 * cloud) * rng.uniform(0.9, 1.1, n_days)
-        hour = clock.local_hour[k].astype(float)
-        day = clock.local_day[k] + 1
-        x = day + hour / 24.0
-        centers = np.arange(n_days) + 0.5
-        mean_h = np.interp(x, centers, mean_d)
-        amp_h = np.interp(x, centers, amp_d)
-        noise = _ar1(rng, clock.n_hours + 1, 0.9, 0.25)
-        temp[j] = mean_h + amp_h * np.cos(2 * np.pi * (hour - 16.0) / 24.0) + noise
-        clear = np.clip(np.sin(np.pi * (hour - 6.5) / 14.0), 0.0, None) * (hour >= 6.5) * (hour <= 20.5)
-        irr[j] = 0.85 * clear * (1.0 - 0.65 * cloud[np.clip(day, 0, n_days - 1)])
+        temp[j], irr[j] = station_hours(
+            rng, clock, k, mean_d, amp_d, cloud, noise_sd=0.25, warmest_hour=16.0, sun=(6.5, 14.0, 0.85, 0.65)
+        )
     return _published(params, temp, irr)
+
+
+def day_of_year(params: SimParams) -> tuple[int, np.ndarray]:
+    """The number of simulated days (the span plus a day either side) and each one's day of the year."""
+    n_days = params.days + 2
+    day_ord = params.start.toordinal() - 1 + np.arange(n_days)
+    return n_days, np.array([datetime.fromordinal(int(o)).timetuple().tm_yday for o in day_ord])
+
+
+def add_spells(
+    rng: np.random.Generator,
+    regional: np.ndarray,
+    days: int,
+    spells: tuple[tuple[float, float, tuple[int, int], tuple[float, float]], ...],
+) -> None:
+    """Add warm or cold spells to the regional daily anomaly, in place.
+
+    Each spell kind is (sign, mean days between spells, (shortest, longest + 1) days,
+    (smallest, largest) depth °C); a spell rises and falls as half a sine.
+    """
+    n_days = len(regional)
+    for sign, per_days, dur, amp in spells:
+        for _ in range(rng.poisson(days / per_days)):
+            first, length = rng.integers(0, n_days), rng.integers(*dur)
+            bump = np.sin(np.pi * (np.arange(length) + 0.5) / length) * rng.uniform(*amp)
+            stop = min(n_days, first + length)
+            regional[first:stop] += sign * bump[: stop - first]
+
+
+def station_hours(
+    rng: np.random.Generator,
+    clock: Clock,
+    k: int,
+    mean_d: np.ndarray,
+    amp_d: np.ndarray,
+    cloud: np.ndarray,
+    noise_sd: float,
+    warmest_hour: float,
+    sun: tuple[float, float, float, float],
+) -> tuple[np.ndarray, np.ndarray]:
+    """One station's hourly temperature (°C) and irradiance (kW/m²) from its daily mean and swing.
+
+    ``sun`` is (sunrise local hour, hours of daylight, clear-sky peak kW/m², share cut
+    by a fully clouded day).
+    """
+    n_days = len(mean_d)
+    hour = clock.local_hour[k].astype(float)
+    day = clock.local_day[k] + 1
+    x = day + hour / 24.0
+    centers = np.arange(n_days) + 0.5
+    mean_h = np.interp(x, centers, mean_d)
+    amp_h = np.interp(x, centers, amp_d)
+    noise = _ar1(rng, clock.n_hours + 1, 0.9, noise_sd)
+    temp = mean_h + amp_h * np.cos(2 * np.pi * (hour - warmest_hour) / 24.0) + noise
+    rise, length, peak, cloud_cut = sun
+    clear = (
+        np.clip(np.sin(np.pi * (hour - rise) / length), 0.0, None) * (hour >= rise) * (hour <= rise + length)
+    )
+    return temp, peak * clear * (1.0 - cloud_cut * cloud[np.clip(day, 0, n_days - 1)])
 
 
 def _published(params: SimParams, temp: np.ndarray, irr: np.ndarray) -> Weather:
