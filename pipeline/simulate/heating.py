@@ -26,6 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from pipeline.simulate.params import HeatingParams, SimParams
+from pipeline.simulate.physics import integrate, rc_step
 from pipeline.simulate.world import Clock, _ar1, add_spells, day_of_year, station_hours, stream
 
 STREAM_HEATING = 3
@@ -135,9 +136,7 @@ def substep(
     q_backup = np.where(enabled, np.clip(shortfall, 0.0, systems.backup_kw), 0.0)
     q_furnace = np.where(running & ~is_hp, systems.capacity_kw, 0.0)
     q_heat = q_pump + q_backup + q_furnace
-    t_eq = t_out_c + r_k_per_kw * (gains_kw + q_heat)
-    decay = np.exp(-dt_h / (r_k_per_kw * c_kwh_per_k))
-    t_new = t_eq + (t_in_c - t_eq) * decay
+    t_new = rc_step(t_in_c, t_out_c, r_k_per_kw, c_kwh_per_k, gains_kw + q_heat, dt_h)
     cop = np.where(is_hp, heat_pump_cop(np.where(is_hp, systems.cop_rated, 1.0), t_out_c, hp), 1.0)
     electric = q_pump / cop + q_backup + np.where(running, systems.fan_kw, 0.0)
     fuel = np.where(is_hp, 0.0, q_furnace / np.where(is_hp, 1.0, systems.efficiency))
@@ -162,28 +161,13 @@ def run(
     and ``running`` (n_steps, n_homes).
     """
     hp = hp or HeatingParams()
-    n_steps, n_homes = np.shape(t_out_c)
-    t_in = np.empty((n_steps + 1, n_homes))
-    t_in[0] = t_in0_c
-    q, e, f = (np.empty((n_steps, n_homes)) for _ in range(3))
-    on = np.zeros((n_steps, n_homes), dtype=bool)
-    state = np.zeros(n_homes, dtype=bool)
-    for k in range(n_steps):
-        t_in[k + 1], state, q[k], e[k], f[k] = substep(
-            r_k_per_kw,
-            c_kwh_per_k,
-            systems,
-            hp,
-            t_in[k],
-            state,
-            t_out_c[k],
-            gains_kw[k],
-            setpoint_c[k],
-            dt_h,
-            deadband_c,
+
+    def step(t_in, state, t_out, gains, setpoint):
+        return substep(
+            r_k_per_kw, c_kwh_per_k, systems, hp, t_in, state, t_out, gains, setpoint, dt_h, deadband_c
         )
-        on[k] = state
-    return {"t_in_c": t_in, "q_heat_kw": q, "electric_kw": e, "fuel_kw": f, "running": on}
+
+    return integrate(step, t_in0_c, t_out_c, gains_kw, setpoint_c, ("q_heat_kw", "electric_kw", "fuel_kw"))
 
 
 def build_winter_weather(

@@ -59,9 +59,7 @@ def substep(
     """
     running = (t_in_c > setpoint_c + deadband_c) | (running & (t_in_c > setpoint_c - deadband_c))
     q_cool = np.where(running, available_capacity(homes.capacity_kw, t_out_c), 0.0)
-    t_eq = t_out_c + homes.r_k_per_kw * (gains_kw - q_cool)
-    decay = np.exp(-dt_h / (homes.r_k_per_kw * homes.c_kwh_per_k))
-    t_new = t_eq + (t_in_c - t_eq) * decay
+    t_new = rc_step(t_in_c, t_out_c, homes.r_k_per_kw, homes.c_kwh_per_k, gains_kw - q_cool, dt_h)
     electric = q_cool / cop(homes.cop_nominal, t_out_c) + np.where(running, homes.fan_kw, 0.0)
     return t_new, running, q_cool, electric
 
@@ -80,16 +78,44 @@ def run(
     Returns ``t_in_c`` (n_steps + 1, n_homes), ``q_cool_kw``, ``electric_kw`` and
     ``running`` (n_steps, n_homes).
     """
+
+    def step(t_in, state, t_out, gains, setpoint):
+        return substep(homes, t_in, state, t_out, gains, setpoint, dt_h, deadband_c)
+
+    return integrate(step, t_in0_c, t_out_c, gains_kw, setpoint_c, ("q_cool_kw", "electric_kw"))
+
+
+def rc_step(
+    t_in_c: np.ndarray,
+    t_out_c: np.ndarray,
+    r_k_per_kw: np.ndarray,
+    c_kwh_per_k: np.ndarray,
+    net_gain_kw: np.ndarray,
+    dt_h: float,
+) -> np.ndarray:
+    """The exact step of the lumped RC model over ``dt_h`` with constant inputs.
+
+    C dT/dt = (T_out - T) / R + Q: T relaxes to T_eq = T_out + R Q with time constant R C.
+    """
+    t_eq = t_out_c + r_k_per_kw * net_gain_kw
+    return t_eq + (t_in_c - t_eq) * np.exp(-dt_h / (r_k_per_kw * c_kwh_per_k))
+
+
+def integrate(step, t_in0_c, t_out_c, gains_kw, setpoint_c, flows: tuple[str, ...]) -> dict[str, np.ndarray]:
+    """Run ``step(t_in, running, t_out, gains, setpoint) -> (t_new, running, *flows)`` over the inputs.
+
+    Inputs are (n_steps, n_homes); returns ``t_in_c`` (n_steps + 1, n_homes), one
+    (n_steps, n_homes) array per name in ``flows`` and ``running``.
+    """
     n_steps, n_homes = np.shape(t_out_c)
     t_in = np.empty((n_steps + 1, n_homes))
     t_in[0] = t_in0_c
-    q = np.empty((n_steps, n_homes))
-    e = np.empty((n_steps, n_homes))
+    out = {name: np.empty((n_steps, n_homes)) for name in flows}
     on = np.zeros((n_steps, n_homes), dtype=bool)
     state = np.zeros(n_homes, dtype=bool)
     for k in range(n_steps):
-        t_in[k + 1], state, q[k], e[k] = substep(
-            homes, t_in[k], state, t_out_c[k], gains_kw[k], setpoint_c[k], dt_h, deadband_c
-        )
+        t_in[k + 1], state, *values = step(t_in[k], state, t_out_c[k], gains_kw[k], setpoint_c[k])
+        for name, value in zip(flows, values, strict=True):
+            out[name][k] = value
         on[k] = state
-    return {"t_in_c": t_in, "q_cool_kw": q, "electric_kw": e, "running": on}
+    return {"t_in_c": t_in, **out, "running": on}
